@@ -1,0 +1,211 @@
+"""The ``tracelab`` command: a thin typer shell over tracelab.workflow.
+
+Exit codes: 0 ok, 2 usage, 3 input error (bad log, catalog, query), 4 internal error.
+Each command parses options, calls one library function and prints.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import sys
+from pathlib import Path
+from typing import Any
+
+import click
+import typer
+
+from tracelab.errors import EXIT_INTERNAL, EXIT_USAGE, TracelabError
+
+app = typer.Typer(
+    add_completion=False,
+    no_args_is_help=True,
+    help="Timing, bus-load and fault-confinement forensics for CAN / CAN FD frame logs.",
+)
+
+
+def _print_json(payload: Any) -> None:
+    typer.echo(json.dumps(payload, indent=2, default=str))
+
+
+@app.command()
+def ingest(
+    logs: list[Path] = typer.Argument(..., help="Frame logs (.frames, .frames.gz, .frames.zst)."),
+    output: Path = typer.Option(..., "-o", "--output", help="Dataset directory to create or extend."),
+    strict: bool = typer.Option(False, "--strict", help="Stop at the first bad line (exit 3)."),
+    force: bool = typer.Option(False, "--force", help="Re-ingest files already in the dataset."),
+    quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar, summary only."),
+) -> None:
+    """Ingest frame logs into a Parquet dataset; every line is ingested or recorded as rejected."""
+    from tracelab import workflow
+
+    summary = workflow.ingest(logs, output, strict=strict, force=force, quiet=quiet)
+    typer.echo(summary.describe())
+
+
+@app.command()
+def info(
+    dataset: Path = typer.Argument(..., help="Dataset directory."),
+    as_json: bool = typer.Option(False, "--json", help="Print JSON."),
+) -> None:
+    """Runs, files, time span, buses, counts per record kind, rejects, backward time steps."""
+    from tracelab import workflow
+
+    result = workflow.info(dataset)
+    _print_json(result.as_dict()) if as_json else typer.echo(result.describe())
+
+
+@app.command()
+def simulate(
+    scenario: Path = typer.Argument(..., help="Scenario TOML (catalog + run + faults)."),
+    output: Path = typer.Option(..., "-o", "--output", help="Log to write (.frames[.gz|.zst])."),
+    duration: str | None = typer.Option(None, "--duration", help="Override run duration, e.g. 90s."),
+    seed: int | None = typer.Option(None, "--seed", help="Override the scenario seed."),
+    quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar."),
+) -> None:
+    """Simulate a bus scenario; writes LOG and LOG.truth.json (the ground truth)."""
+    from tracelab import workflow
+
+    summary = workflow.simulate(scenario, output, duration=duration, seed=seed, quiet=quiet)
+    typer.echo(summary.describe())
+
+
+@app.command()
+def timing(
+    dataset: Path = typer.Argument(..., help="Dataset directory."),
+    catalog: Path | None = typer.Option(None, "--catalog", help="Network catalog TOML."),
+    run: str | None = typer.Option(None, "--run", help="Only this run."),
+    gap_factor: float = typer.Option(1.5, "--gap-factor", help="Gap when inter-arrival > factor x period."),
+    as_json: bool = typer.Option(False, "--json", help="Print JSON."),
+) -> None:
+    """Period, jitter, drift and gaps per message."""
+    from tracelab import workflow
+
+    result = workflow.timing(dataset, catalog=catalog, run=run, gap_factor=gap_factor)
+    _print_json(result.as_json()) if as_json else typer.echo(result.describe())
+
+
+@app.command()
+def load(
+    dataset: Path = typer.Argument(..., help="Dataset directory."),
+    window: str = typer.Option("100ms", "--window", help="Window length, 1ms .. 1h."),
+    run: str | None = typer.Option(None, "--run", help="Only this run."),
+    as_json: bool = typer.Option(False, "--json", help="Print JSON."),
+) -> None:
+    """Bus load over time per bus, from exact frame durations."""
+    from tracelab import workflow
+
+    result = workflow.load(dataset, window=window, run=run)
+    _print_json(result.as_json()) if as_json else typer.echo(result.describe())
+
+
+@app.command()
+def sql(
+    dataset: Path = typer.Argument(..., help="Dataset or fleet directory."),
+    query: str | None = typer.Argument(None, help="SQL; omit for an interactive prompt."),
+    fmt: str = typer.Option("table", "--format", help="table | csv | json | parquet"),
+    out: Path | None = typer.Option(None, "--out", help="Write the result to this file."),
+) -> None:
+    """Read-only DuckDB SQL over a dataset (or a fleet) with ready-made views and macros."""
+    from tracelab import workflow
+
+    workflow.sql(dataset, query, fmt=fmt, out=out)
+
+
+@app.command()
+def faults(
+    dataset: Path = typer.Argument(..., help="Dataset directory."),
+    catalog: Path = typer.Option(..., "--catalog", help="Network catalog TOML (who sends what)."),
+    run: str | None = typer.Option(None, "--run", help="Only this run."),
+    as_json: bool = typer.Option(False, "--json", help="Print JSON."),
+) -> None:
+    """Replay error counters and name the node that degraded first, with the evidence."""
+    from tracelab import workflow
+
+    result = workflow.faults(dataset, catalog=catalog, run=run)
+    _print_json(result.as_json()) if as_json else typer.echo(result.describe())
+
+
+@app.command()
+def report(
+    dataset: Path = typer.Argument(..., help="Dataset directory."),
+    output: Path = typer.Option(..., "-o", "--output", help="HTML file (or directory for many runs)."),
+    catalog: Path | None = typer.Option(None, "--catalog", help="Network catalog TOML."),
+    run: str | None = typer.Option(None, "--run", help="Only this run."),
+    shared_plotly: bool = typer.Option(False, "--shared-plotly",
+                                       help="Write plotly.js once beside the reports instead of embedding it."),
+    load_limit: float = typer.Option(0.5, "--load-limit", help="Recommended maximum bus load (reference line)."),
+) -> None:
+    """Write an interactive, self-contained HTML dashboard per run."""
+    from tracelab import workflow
+
+    paths = workflow.report(dataset, output, catalog=catalog, run=run,
+                            shared_plotly=shared_plotly, load_limit=load_limit)
+    for path in paths:
+        typer.echo(f"report: {path}")
+
+
+@app.command()
+def demo(
+    output: Path = typer.Option(Path("demo_out"), "-o", "--output", help="Working directory."),
+    quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bars."),
+) -> None:
+    """Run the whole job on the bundled demo scenario and print the verdict and report path."""
+    from tracelab import workflow
+
+    typer.echo(workflow.demo(output, quiet=quiet))
+
+
+@app.command()
+def batch(
+    root: Path = typer.Argument(..., help="Folder tree of frame logs."),
+    output: Path = typer.Option(..., "-o", "--output", help="Fleet directory."),
+    catalog: Path | None = typer.Option(None, "--catalog", help="Catalog for all logs (else catalog.toml nearest each log)."),
+    executor: str = typer.Option("local", "--executor", help="local | dask"),
+    scheduler: str | None = typer.Option(None, "--scheduler", help="Dask scheduler address."),
+    workers: int | None = typer.Option(None, "--workers", help="Worker processes (default: cores)."),
+    previous: int = typer.Option(5, "--previous", help="Runs per vehicle the regression flags compare with."),
+    quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar."),
+) -> None:
+    """Nightly fleet batch: ingest, analyse and report every run; fleet summary and index."""
+    from tracelab import workflow
+
+    summary = workflow.batch(root, output, catalog=catalog, executor=executor,
+                             scheduler=scheduler, workers=workers, previous=previous, quiet=quiet)
+    typer.echo(summary.describe())
+    if summary.failed:
+        raise typer.Exit(3)
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Entry point: one line and a documented exit code for every user error."""
+    try:
+        result = app(args=argv, standalone_mode=False)
+    except TracelabError as error:
+        typer.echo(f"tracelab: {error}", err=True)
+        return error.exit_code
+    except click.exceptions.UsageError as error:
+        error.show()
+        return EXIT_USAGE
+    except click.exceptions.Abort:
+        typer.echo("tracelab: interrupted", err=True)
+        return 130
+    except KeyboardInterrupt:
+        typer.echo("tracelab: interrupted", err=True)
+        return 130
+    except Exception as error:  # a bug: keep the one-line promise, traceback on request
+        if os.environ.get("TRACELAB_DEBUG"):
+            raise
+        typer.echo(f"tracelab: internal error: {type(error).__name__}: {error} "
+                   "(set TRACELAB_DEBUG=1 for a traceback)", err=True)
+        return EXIT_INTERNAL
+    return result if isinstance(result, int) else 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
+
+
+def console() -> None:
+    """Console-script shim: exit with main()'s code."""
+    sys.exit(main())

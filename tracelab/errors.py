@@ -1,0 +1,67 @@
+"""The one exception tree of tracelab; every message is written for the user.
+
+    TracelabError                 exit 4 unless a subclass says otherwise
+     +-- UsageError               exit 2  bad option values, missing paths
+     +-- InputError               exit 3  the user's data is wrong
+     |    +-- LogFormatError      FILE:LINE: reason (frame-log format v1)
+     |    +-- CatalogError        FILE: [where] reason (network catalog / scenario)
+     |    +-- QueryError          a SQL statement DuckDB refused
+     +-- StoreError               exit 4  the dataset on disk cannot be read or written
+
+The CLI catches TracelabError once, prints ``str(error)`` on one line and exits with
+``error.exit_code``. Anything else is a bug (exit 4, traceback only with TRACELAB_DEBUG=1).
+"""
+
+from __future__ import annotations
+
+import difflib
+from collections.abc import Iterable
+
+EXIT_OK = 0
+EXIT_USAGE = 2
+EXIT_INPUT = 3
+EXIT_INTERNAL = 4
+
+
+class TracelabError(Exception):
+    exit_code = EXIT_INTERNAL
+
+
+class UsageError(TracelabError):
+    exit_code = EXIT_USAGE
+
+
+class InputError(TracelabError):
+    exit_code = EXIT_INPUT
+
+
+class LogFormatError(InputError):
+    """A line of a frame log breaks the format; ``str()`` is ``FILE:LINE: reason``."""
+
+    def __init__(self, path: str, line: int | None, reason: str) -> None:
+        self.path, self.line, self.reason = str(path), line, reason
+        where = f"{self.path}:{line}" if line is not None else self.path
+        super().__init__(f"{where}: {reason}")
+
+
+class CatalogError(InputError):
+    """A network catalog or scenario is invalid; ``str()`` is ``FILE: [where] reason``."""
+
+    def __init__(self, path: str, where: str | None, reason: str) -> None:
+        self.path, self.where, self.reason = str(path), where, reason
+        loc = f" [{where}]" if where else ""
+        super().__init__(f"{self.path}:{loc} {reason}")
+
+
+class QueryError(InputError):
+    pass
+
+
+class StoreError(TracelabError):
+    pass
+
+
+def did_you_mean(word: str, choices: Iterable[str]) -> str:
+    """Return "; did you mean 'x'?" for the closest choice, or "" when nothing is close."""
+    close = difflib.get_close_matches(word, list(choices), n=1, cutoff=0.6)
+    return f"; did you mean '{close[0]}'?" if close else ""
