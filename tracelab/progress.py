@@ -22,8 +22,14 @@ def progress(description: str, total: float | None, quiet: bool = False) -> Iter
     if not progress_enabled(quiet):
         yield lambda amount=1: None
         return
-    from rich.progress import (BarColumn, MofNCompleteColumn, Progress, TextColumn,
-                               TimeElapsedColumn, TimeRemainingColumn)
+    from rich.progress import (
+        BarColumn,
+        MofNCompleteColumn,
+        Progress,
+        TextColumn,
+        TimeElapsedColumn,
+        TimeRemainingColumn,
+    )
 
     columns = (TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
                TimeElapsedColumn(), TimeRemainingColumn())
