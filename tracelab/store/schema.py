@@ -1,0 +1,64 @@
+"""Column names and types of every dataset table: the contract between ingest and readers.
+
+Each part folder holds every table (possibly with zero rows), written with these schemas, so
+the DuckDB views always have the same columns whatever was ingested.
+"""
+
+from __future__ import annotations
+
+import polars as pl
+
+FRAMES = pl.Schema({
+    "run": pl.String, "bus": pl.String, "t_ns": pl.Int64, "start_ns": pl.Int64,
+    "end_ns": pl.Int64, "id": pl.UInt32, "ext": pl.Boolean, "rtr": pl.Boolean,
+    "fd": pl.Boolean, "brs": pl.Boolean, "esi": pl.Boolean, "dlc": pl.UInt8,
+    "data": pl.Binary, "bits": pl.UInt16, "duration_ns": pl.Int64, "file": pl.String,
+    "line": pl.Int64,
+})
+ERRORS = pl.Schema({
+    "run": pl.String, "bus": pl.String, "t_ns": pl.Int64, "type": pl.String,
+    "field": pl.String, "id": pl.UInt32, "ext": pl.Boolean, "form": pl.String,
+    "by": pl.String, "file": pl.String, "line": pl.Int64,
+})
+STATUS = pl.Schema({
+    "run": pl.String, "bus": pl.String, "t_ns": pl.Int64, "node": pl.String,
+    "tec": pl.Int32, "rec": pl.Int32, "file": pl.String, "line": pl.Int64,
+})
+MARKS = pl.Schema({
+    "run": pl.String, "bus": pl.String, "t_ns": pl.Int64, "text": pl.String,
+    "file": pl.String, "line": pl.Int64,
+})
+LOSSES = pl.Schema({
+    "run": pl.String, "bus": pl.String, "t_ns": pl.Int64, "count": pl.Int64,
+    "until_ns": pl.Int64, "file": pl.String, "line": pl.Int64,
+})
+REJECTS = pl.Schema({
+    "run": pl.String, "file": pl.String, "line": pl.Int64, "raw": pl.String,
+    "reason": pl.String,
+})
+MANIFEST = pl.Schema({
+    "file": pl.String, "sha256": pl.String, "bytes": pl.Int64, "lines": pl.Int64,
+    "header_lines": pl.Int64, "frames": pl.Int64, "errors": pl.Int64, "status": pl.Int64,
+    "marks": pl.Int64, "losses": pl.Int64, "rejects": pl.Int64, "first_t_ns": pl.Int64,
+    "last_t_ns": pl.Int64, "backward_steps": pl.Int64, "first_backward_line": pl.Int64,
+    "origin": pl.String, "buses": pl.String, "meta": pl.String, "run": pl.String,
+    "vehicle": pl.String, "tracelab_version": pl.String, "ingested_at": pl.String,
+})
+
+#: The record tables of a part folder, in the order they are written.
+TABLES: dict[str, pl.Schema] = {
+    "frames": FRAMES, "errors": ERRORS, "status": STATUS, "marks": MARKS,
+    "losses": LOSSES, "rejects": REJECTS,
+}
+
+
+def empty(table: str) -> pl.DataFrame:
+    """A zero-row frame with the table's schema."""
+    schema = MANIFEST if table == "manifest" else TABLES[table]
+    return pl.DataFrame(schema=schema)
+
+
+def conform(frame: pl.DataFrame, table: str) -> pl.DataFrame:
+    """Select and cast the table's columns in schema order (extra columns are dropped)."""
+    schema = MANIFEST if table == "manifest" else TABLES[table]
+    return frame.select(pl.col(name).cast(dtype) for name, dtype in schema.items())
