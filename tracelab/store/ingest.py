@@ -1,0 +1,272 @@
+"""Ingest frame logs into a dataset: reader chunks -> physics -> staged parts -> manifest.
+
+Every line of a file is accounted for (header/directive/comment/blank + records + rejects);
+the dataset changes only at the final commit, so an interrupted or failed ingest (``--strict``
+stop, corrupt file, crash) leaves it as it was.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import shutil
+from dataclasses import dataclass, field
+from datetime import UTC, datetime
+from pathlib import Path
+
+import numpy as np
+import polars as pl
+
+import tracelab
+from tracelab.errors import TracelabError, UsageError
+from tracelab.format.reader import Chunk, LogReader
+from tracelab.format.writer import LogHeader
+from tracelab.physics.bitlength import frame_bits, frame_durations_ns
+from tracelab.progress import progress
+from tracelab.store import schema
+from tracelab.store.dataset import Dataset, create_or_open
+
+RECORD_TABLES = ("frames", "errors", "status", "marks", "losses")
+SHOWN_REJECTS = 3
+
+
+@dataclass
+class FileSummary:
+    """What one file contributed; ``row()`` is its manifest row."""
+
+    file: str
+    sha256: str
+    bytes: int
+    run: str
+    header: LogHeader
+    lines: int = 0
+    header_lines: int = 0
+    counts: dict[str, int] = field(default_factory=lambda: dict.fromkeys(RECORD_TABLES, 0))
+    rejects: int = 0
+    first_t_ns: int | None = None
+    last_t_ns: int | None = None
+    backward_steps: int = 0
+    first_backward_line: int | None = None
+    first_rejects: list[tuple[int, str]] = field(default_factory=list)
+
+    @property
+    def records(self) -> int:
+        return sum(self.counts.values())
+
+    def add(self, chunk: Chunk) -> None:
+        self.lines += chunk.lines
+        self.header_lines += chunk.other_lines
+        for table in RECORD_TABLES:
+            self.counts[table] += getattr(chunk, table).height
+        self.rejects += chunk.rejects.height
+        if len(self.first_rejects) < SHOWN_REJECTS and chunk.rejects.height:
+            head = chunk.rejects.head(SHOWN_REJECTS - len(self.first_rejects))
+            self.first_rejects.extend(zip(head["line"].to_list(), head["reason"].to_list(),
+                                          strict=True))
+        if chunk.first_t_ns is not None:
+            self.first_t_ns = min(chunk.first_t_ns, self.first_t_ns if self.first_t_ns
+                                  is not None else chunk.first_t_ns)
+        if chunk.last_t_ns is not None:
+            self.last_t_ns = max(chunk.last_t_ns, self.last_t_ns or 0)
+        if chunk.backward_steps and self.first_backward_line is None:
+            self.first_backward_line = chunk.first_backward_line
+        self.backward_steps += chunk.backward_steps
+
+    def reconciliation(self) -> str:
+        c = self.counts
+        return (f"{self.file}: {self.lines:,} lines = {self.header_lines:,} header/comment/blank"
+                f" + {self.records:,} records ({c['frames']:,} frames, {c['errors']:,} errors, "
+                f"{c['status']:,} status, {c['marks']:,} marks, {c['losses']:,} losses)"
+                f" + {self.rejects:,} rejects")
+
+    def row(self) -> dict[str, object]:
+        buses = [{"alias": b.alias, "nominal_bps": b.nominal_bps, "data_bps": b.data_bps,
+                  "stamp": b.stamp, "name": b.name} for b in self.header.buses]
+        return {
+            "file": self.file, "sha256": self.sha256, "bytes": self.bytes, "lines": self.lines,
+            "header_lines": self.header_lines, **self.counts, "rejects": self.rejects,
+            "first_t_ns": self.first_t_ns, "last_t_ns": self.last_t_ns,
+            "backward_steps": self.backward_steps,
+            "first_backward_line": self.first_backward_line, "origin": self.header.origin,
+            "buses": json.dumps(buses), "meta": json.dumps(self.header.meta), "run": self.run,
+            "vehicle": self.header.meta.get("vehicle"),
+            "tracelab_version": tracelab.__version__,
+            "ingested_at": datetime.now(UTC).isoformat(timespec="seconds"),
+        }
+
+
+@dataclass
+class IngestSummary:
+    """Result of ``ingest_logs``: per-file reconciliation, skips and the first rejects."""
+
+    dataset: Path
+    files: list[FileSummary] = field(default_factory=list)
+    skipped: list[str] = field(default_factory=list)
+
+    @property
+    def lines(self) -> int:
+        return sum(f.lines for f in self.files)
+
+    @property
+    def records(self) -> int:
+        return sum(f.records for f in self.files)
+
+    @property
+    def frames(self) -> int:
+        return sum(f.counts["frames"] for f in self.files)
+
+    @property
+    def rejects(self) -> int:
+        return sum(f.rejects for f in self.files)
+
+    @property
+    def backward_steps(self) -> int:
+        return sum(f.backward_steps for f in self.files)
+
+    def describe(self) -> str:
+        out = [f"ingested {len(self.files)} file(s) into {self.dataset}"]
+        if self.skipped:
+            out[0] += (f"; skipped {len(self.skipped)} already ingested (use --force to "
+                       f"replace): {', '.join(self.skipped)}")
+        for f in self.files:
+            out.append(f.reconciliation())
+            if f.backward_steps:
+                out.append(f"{f.file}: {f.backward_steps:,} backward time step(s), first at "
+                           f"line {f.first_backward_line} (kept; analyses order by time)")
+        if self.rejects:
+            first = [f"{f.file}:{line}: {reason}" for f in self.files
+                     for line, reason in f.first_rejects][:SHOWN_REJECTS]
+            out.append(f"{self.rejects:,} line(s) rejected (see the rejects table); first: "
+                       + " | ".join(first))
+        return "\n".join(out)
+
+
+def _sha256(path: Path) -> str:
+    with open(path, "rb") as handle:
+        return hashlib.file_digest(handle, "sha256").hexdigest()
+
+
+def run_name(path: Path, header: LogHeader) -> str:
+    """``%meta run=``, else the file name without extensions."""
+    return header.meta.get("run") or path.name.split(".")[0]
+
+
+def _with_physics(frames: pl.DataFrame, header: LogHeader) -> pl.DataFrame:
+    """Add bits, duration_ns, start_ns, end_ns (vectorised; a loop over the few buses)."""
+    lengths = frame_bits(frames)
+    bits = lengths["bits"].to_numpy()
+    data_phase = lengths["data_phase_bits"].to_numpy()
+    t_ns = frames["t_ns"].to_numpy()
+    bus = frames["bus"].to_numpy()
+    duration = np.zeros(frames.height, dtype=np.int64)
+    start = np.zeros(frames.height, dtype=np.int64)
+    for decl in header.buses:  # loop over buses, not frames
+        mask = bus == decl.alias
+        if not mask.any():
+            continue
+        duration[mask] = frame_durations_ns(bits[mask], data_phase[mask], decl.nominal_bps,
+                                            decl.data_bps)
+        if decl.stamp == "end":  # t_ns is the end of EOF: the 3-bit intermission follows
+            ifs_ns = frame_durations_ns(np.array([3]), np.array([0]), decl.nominal_bps,
+                                        decl.data_bps)[0]
+            start[mask] = t_ns[mask] - (duration[mask] - ifs_ns)
+        else:
+            start[mask] = t_ns[mask]
+    return frames.with_columns(
+        bits=lengths["bits"].cast(pl.UInt16), duration_ns=pl.Series(duration),
+        start_ns=pl.Series(start), end_ns=pl.Series(start + duration))
+
+
+class _PartWriter:
+    """Writes one file's tables into a staging folder, one Parquet file per chunk."""
+
+    def __init__(self, folder: Path, run: str, file: str) -> None:
+        self.folder, self.run, self.file = folder, run, file
+        self.written = dict.fromkeys(schema.TABLES, 0)
+        for table in schema.TABLES:
+            (folder / table).mkdir()
+
+    def write(self, table: str, frame: pl.DataFrame) -> None:
+        frame = frame.with_columns(run=pl.lit(self.run), file=pl.lit(self.file))
+        frame = schema.conform(frame, table)
+        frame.write_parquet(self.folder / table / f"{self.written[table]}.parquet",
+                            compression="zstd", statistics=True)
+        self.written[table] += 1
+
+    def close(self) -> None:
+        """Every table gets at least one (possibly empty) file so views keep their schema."""
+        for table, count in self.written.items():
+            if count == 0:
+                self.write(table, schema.empty(table))
+
+
+def _check_paths(logs: list[Path]) -> None:
+    for path in logs:
+        if not path.exists():
+            raise UsageError(f"{path}: no such file")
+        if not path.is_file():
+            raise UsageError(f"{path}: not a file")
+
+
+def _ingest_file(path: Path, sha: str, ds: Dataset, strict: bool, advance: object
+                 ) -> tuple[FileSummary, Path]:
+    folder = ds.new_staging_dir()
+    with LogReader(path) as reader:
+        header = reader.header
+        summary = FileSummary(file=str(path), sha256=sha, bytes=path.stat().st_size,
+                              run=run_name(path, header), header=header,
+                              lines=reader.header_lines, header_lines=reader.header_lines)
+        parts = _PartWriter(folder, summary.run, summary.file)
+        done = 0
+        for chunk in reader.chunks(strict=strict):
+            summary.add(chunk)
+            if chunk.frames.height:
+                parts.write("frames", _with_physics(chunk.frames, header))
+            for table in ("errors", "status", "marks", "losses", "rejects"):
+                if getattr(chunk, table).height:
+                    parts.write(table, getattr(chunk, table))
+            advance(chunk.bytes_read - done)  # type: ignore[operator]
+            done = chunk.bytes_read
+        parts.close()
+    if summary.lines != summary.header_lines + summary.records + summary.rejects:
+        raise AssertionError(f"{path}: line reconciliation failed ({summary.reconciliation()})")
+    return summary, folder
+
+
+def ingest_logs(logs: list[Path] | list[str], dataset: Path | str, strict: bool = False,
+                force: bool = False, quiet: bool = False) -> IngestSummary:
+    """Ingest ``logs`` into ``dataset`` (created when missing) in one atomic commit.
+
+    Files whose sha256 is already in the manifest are skipped unless ``force``. Bad lines go
+    to ``rejects``; with ``strict`` the first one raises LogFormatError (exit 3) instead.
+    """
+    paths = [Path(p) for p in logs]
+    _check_paths(paths)
+    created = not Path(dataset).exists()
+    ds = create_or_open(dataset)
+    ds.remove_leftovers()
+    known = set(ds.manifest()["sha256"].to_list())
+    result = IngestSummary(dataset=Path(dataset))
+    staged: dict[str, Path] = {}
+    try:
+        total = sum(p.stat().st_size for p in paths)
+        with progress("ingest", total=total, quiet=quiet) as advance:
+            for path in paths:
+                sha = _sha256(path)
+                if sha in staged or (sha in known and not force):
+                    result.skipped.append(str(path))
+                    advance(path.stat().st_size)
+                    continue
+                summary, folder = _ingest_file(path, sha, ds, strict, advance)
+                staged[sha] = folder
+                result.files.append(summary)
+        rows = pl.DataFrame([f.row() for f in result.files], schema=schema.MANIFEST)
+        ds.commit(staged, rows)
+    except (TracelabError, Exception, KeyboardInterrupt):
+        for folder in staged.values():
+            shutil.rmtree(folder, ignore_errors=True)
+        ds.remove_leftovers()
+        if created:  # nothing was committed: leave no empty dataset behind
+            shutil.rmtree(ds.path, ignore_errors=True)
+        raise
+    return result
