@@ -1,1 +1,77 @@
-"""analyses layer."""
+"""analyses layer: pure functions over the dataset's DuckDB views.
+
+The SQL lives beside the code in ``analyses/sql/*.sql`` (the same SQL `tracelab sql` users can
+read); ``run_sql`` executes one named file, statement by statement, with named parameters.
+"""
+
+from __future__ import annotations
+
+import re
+from functools import cache
+from importlib import resources
+from typing import Any
+
+import duckdb
+import polars as pl
+
+from tracelab.errors import QueryError
+
+_PARAM_RE = re.compile(r"\$([A-Za-z_][A-Za-z0-9_]*)")
+
+
+@cache
+def sql_text(name: str) -> str:
+    """The text of ``analyses/sql/<name>.sql``."""
+    return resources.files("tracelab.analyses").joinpath("sql", f"{name}.sql").read_text("utf-8")
+
+
+def statements(name: str) -> list[str]:
+    """The statements of one SQL file, in order."""
+    return [s.query for s in duckdb.extract_statements(sql_text(name))]
+
+
+def run_sql(con: duckdb.DuckDBPyConnection, name: str,
+            params: dict[str, Any] | None = None) -> duckdb.DuckDBPyRelation | None:
+    """Execute every statement of ``sql/<name>.sql``; each gets the parameters it names.
+
+    Returns the relation of the last statement when it is a query (else None).
+    """
+    params = params or {}
+    relation = None
+    for text in statements(name):
+        wanted = {p: params[p] for p in set(_PARAM_RE.findall(text)) if p in params}
+        try:
+            relation = con.sql(text, params=wanted or None)
+        except duckdb.Error as error:
+            raise QueryError(f"analyses/sql/{name}.sql: {error}".splitlines()[0]) from error
+    return relation
+
+
+def run_sql_frame(con: duckdb.DuckDBPyConnection, name: str,
+                  params: dict[str, Any] | None = None) -> pl.DataFrame:
+    """Run ``sql/<name>.sql`` and return the result of its final query as a polars frame."""
+    relation = run_sql(con, name, params)
+    if relation is None:
+        raise QueryError(f"analyses/sql/{name}.sql: does not end with a query")
+    try:
+        return relation.pl()
+    except duckdb.Error as error:
+        raise QueryError(f"analyses/sql/{name}.sql: {error}".splitlines()[0]) from error
+
+
+def install_macros(con: duckdb.DuckDBPyConnection) -> None:
+    """Create the documented macros (sql/macros.sql) as temporary macros on ``con``."""
+    run_sql(con, "macros")
+
+
+def query_frame(con: duckdb.DuckDBPyConnection, sql: str,
+                params: dict[str, Any] | None = None) -> pl.DataFrame:
+    """Run one statement and return its result as a polars frame."""
+    return con.sql(sql, params=params or None).pl()
+
+
+def query_scalar(con: duckdb.DuckDBPyConnection, sql: str,
+                 params: dict[str, Any] | None = None) -> Any:
+    """The first column of the first row of one query (None when it returns no rows)."""
+    rows = con.sql(sql, params=params or None).fetchall()
+    return rows[0][0] if rows else None
