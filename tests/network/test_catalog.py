@@ -176,7 +176,6 @@ def test_scenario_keys_are_accepted(tmp_path: Path) -> None:
 
 
 def test_period_shorter_than_frame(tmp_path: Path) -> None:
-    pytest.importorskip("tracelab.physics.bitlength")
     # An 8-byte base frame is at least 111 bits = 222 us at 500 kbit/s.
     # source: Davis et al. 2007, Real-Time Systems 35(3), eq. for C_m (47 + 8n bits unstuffed)
     text = broken(GOOD, 'period = "10ms"', 'period = "200us"')

@@ -16,6 +16,7 @@ from fractions import Fraction
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import polars as pl
 
 from tracelab.errors import CatalogError, did_you_mean
@@ -29,6 +30,7 @@ from tracelab.format.grammar import (
     parse_form,
     payload_bytes,
 )
+from tracelab.physics.bitlength import frame_bits_reference, frame_durations_ns
 
 #: Duration units and their length in nanoseconds.
 DURATION_UNITS_NS: dict[str, int] = {
@@ -370,7 +372,7 @@ def _load_messages(path: str, raw: list[Any], buses: dict[str, BusSpec],
                                + (f" ({first})" if first else ""))
         seen[ident] = index
         duration_ns = _heavy_duration_ns(buses[bus], frame_id, ext, rtr, fd, brs, dlc)
-        if period_ns is not None and duration_ns is not None and period_ns < duration_ns:
+        if period_ns is not None and period_ns < duration_ns:
             raise CatalogError(path, where, f"period {table['period']} is shorter than "
                                f"the frame itself ({duration_ns} ns on the bus)")
         out.append(MessageSpec(bus, frame_id, ext, rtr, fd, brs, dlc, sender, period_ns,
@@ -379,23 +381,10 @@ def _load_messages(path: str, raw: list[Any], buses: dict[str, BusSpec],
 
 
 def _heavy_duration_ns(bus: BusSpec, frame_id: int, ext: bool, rtr: bool, fd: bool, brs: bool,
-                       dlc: int) -> int | None:
+                       dlc: int) -> int:
     """Bus time of this frame with an all-zero payload (close to the most stuff bits)."""
-    try:
-        from tracelab.physics.bitlength import frame_bits_reference
-    except ImportError:  # physics lands in parallel; until then the check is skipped
-        return None
     bits, data_bits = frame_bits_reference(frame_id, ext, rtr, fd, brs, False, dlc,
                                            bytes(payload_bytes(dlc, fd, rtr)))
-    return _duration_ns(bits, data_bits, bus.nominal_bps, bus.data_bps if brs else None)
-
-
-def _duration_ns(bits: int, data_phase_bits: int, nominal_bps: int,
-                 data_bps: int | None) -> int:
-    """Nanoseconds of one frame: nominal bits at the nominal rate, data-phase bits faster."""
-    nominal_bits = bits - data_phase_bits
-    t = Fraction(nominal_bits * 1_000_000_000, nominal_bps)
-    if data_phase_bits:
-        assert data_bps is not None
-        t += Fraction(data_phase_bits * 1_000_000_000, data_bps)
-    return round(t)
+    durations = frame_durations_ns(np.array([bits]), np.array([data_bits]), bus.nominal_bps,
+                                   bus.data_bps if brs else None)
+    return int(durations[0])
