@@ -48,7 +48,7 @@ from tracelab.format.writer import BusDecl, LogHeader
 CHUNK_BYTES = 16 * 1024 * 1024
 _HEADER_LINE_LIMIT = 64 * 1024  # a longer line cannot be a directive: it ends the header
 _MAX_FIELDS = 3 + max(len(v) for v in RECORD_FIELDS.values())
-_DIGITS = r"^[0-9]{1,18}$"  # fits int64 whatever the digits
+_DIGITS = r"^[0-9]{1,19}$"  # up to int64; to_integer(strict=False) nulls an overflow
 _HEX_ID = r"^[0-9A-Fa-f]{1,8}$"
 _CORRUPT = (OSError, EOFError, zlib.error, zstandard.ZstdError)
 
@@ -82,6 +82,40 @@ class Chunk:
 # --- opening and the header ---------------------------------------------------------------
 
 
+class _ZstdStream(io.RawIOBase):
+    """Decompress zstd frames one after another; a stream cut inside a frame is an error
+    (the library's stream reader reports a cut stream as a quiet end of file)."""
+
+    def __init__(self, raw: BinaryIO) -> None:
+        self._raw = raw
+        self._obj = zstandard.ZstdDecompressor().decompressobj()
+        self._pending = b""
+        self._in_frame = False
+
+    def readable(self) -> bool:
+        return True
+
+    def readinto(self, buffer: Any) -> int:
+        while not self._pending:
+            block = self._raw.read(1 << 20)
+            if not block:
+                if self._in_frame:
+                    raise zstandard.ZstdError("stream ends inside a zstd frame")
+                return 0
+            while block:
+                self._in_frame = True
+                self._pending += self._obj.decompress(block)
+                block = b""
+                if self._obj.eof:
+                    block = self._obj.unused_data
+                    self._obj = zstandard.ZstdDecompressor().decompressobj()
+                    self._in_frame = False
+        size = min(len(buffer), len(self._pending))
+        buffer[:size] = self._pending[:size]
+        self._pending = self._pending[size:]
+        return size
+
+
 def _open(path: Path) -> tuple[BinaryIO, BinaryIO]:
     """(decompressed stream, raw file); compression is recognised by the first bytes."""
     raw = open(path, "rb")  # noqa: SIM115 - closed by the caller
@@ -90,8 +124,7 @@ def _open(path: Path) -> tuple[BinaryIO, BinaryIO]:
     if head.startswith(GZIP_MAGIC):
         return gzip.GzipFile(fileobj=raw, mode="rb"), raw  # type: ignore[return-value]
     if head.startswith(ZSTD_MAGIC):
-        reader = zstandard.ZstdDecompressor().stream_reader(raw, closefd=False)
-        return io.BufferedReader(reader), raw  # type: ignore[arg-type]
+        return io.BufferedReader(_ZstdStream(raw), 1 << 20), raw  # type: ignore[return-value]
     return raw, raw
 
 
@@ -414,17 +447,17 @@ class LogReader:
         line_no = self.header_lines
         while True:
             block = self._read()
-            if not block:
-                break
             data = carry + block if carry else block
             cut = data.rfind(b"\n")
             if cut < 0:
                 carry = data
-                continue
-            body, carry = data[: cut + 1], data[cut + 1:]
-            chunk = self._chunk(body, line_no + 1, strict, terminated=True)
-            line_no += chunk.lines
-            yield chunk
+            else:
+                body, carry = data[: cut + 1], data[cut + 1:]
+                chunk = self._chunk(body, line_no + 1, strict, terminated=True)
+                line_no += chunk.lines
+                yield chunk
+            if not block:
+                break
         if carry:
             yield self._chunk(carry, line_no + 1, strict, terminated=False)
 

@@ -1,0 +1,169 @@
+"""Reader: every bad-input case gets its reason and line; header faults are fatal."""
+
+from __future__ import annotations
+
+import gzip
+from pathlib import Path
+
+import polars as pl
+import pytest
+import zstandard
+
+from tests.format.cases import (BAD_LINE, FATAL_CASES, GOOD, HEADER, RECORD_CASES,
+                                record_log)
+from tracelab.errors import LogFormatError
+from tracelab.format.reader import LogReader, read_header, read_log
+
+EXAMPLE = """%tracelab-frames 1
+%origin 2026-11-30T21:04:05.000000000Z
+%bus P nominal=500000 stamp=end name=powertrain
+%bus C nominal=500000 data=2000000 name=chassis
+%meta vehicle=utv-07 run=endurance-114
+0\tP\tframe\t0C0\ts\t8\t11223344556677FF
+1250000\tP\tframe\t18DAF110\tx\t8\t0210030000000000
+2000000\tC\tframe\t123\tsfb\t9\t00112233445566778899AABB
+2500000\tP\terror\tstuff\tdata\t0C0\ts\t-
+2500100\tP\tstatus\tinv\t136\t0
+3000000\t*\tmark\thill climb, step 4
+4000000\tP\tloss\t17\t4100000
+"""
+
+
+def _write(tmp_path: Path, content: str | bytes, name: str = "run.frames") -> Path:
+    path = tmp_path / name
+    path.write_bytes(content.encode() if isinstance(content, str) else content)
+    return path
+
+
+def test_example_of_the_spec_reads_into_typed_tables(tmp_path: Path) -> None:
+    log = read_log(_write(tmp_path, EXAMPLE))
+    assert log.header.origin == "2026-11-30T21:04:05.000000000Z"
+    assert [(b.alias, b.nominal_bps, b.data_bps, b.stamp, b.name) for b in log.header.buses] == [
+        ("P", 500000, None, "end", "powertrain"), ("C", 500000, 2000000, "end", "chassis")]
+    assert log.header.meta == {"vehicle": "utv-07", "run": "endurance-114"}
+    f = log.frames
+    assert f["id"].to_list() == [0x0C0, 0x18DAF110, 0x123]
+    assert f["ext"].to_list() == [False, True, False]
+    assert f.select("fd", "brs", "esi").row(2) == (True, True, False)
+    assert f["data"][2] == bytes.fromhex("00112233445566778899AABB")
+    assert f["line"].to_list() == [6, 7, 8]
+    assert log.errors.select("type", "field", "id", "ext", "form", "by").row(0) == (
+        "stuff", "data", 0x0C0, False, "s", None)
+    assert log.status.select("node", "tec", "rec").row(0) == ("inv", 136, 0)
+    assert log.marks.select("bus", "text").row(0) == ("*", "hill climb, step 4")
+    assert log.losses.select("count", "until_ns").row(0) == (17, 4100000)
+    assert log.rejects.height == 0 and log.lines == 12
+
+
+@pytest.mark.parametrize(("name", "bad", "reason"), RECORD_CASES, ids=[c[0] for c in RECORD_CASES])
+def test_bad_record_is_rejected_with_reason_and_line(tmp_path: Path, name: str, bad: str,
+                                                     reason: str) -> None:
+    log = read_log(_write(tmp_path, record_log(bad)))
+    assert log.rejects.height == 1, log.rejects
+    assert log.rejects["line"][0] == BAD_LINE
+    assert reason in log.rejects["reason"][0]
+    assert log.rejects["raw"][0] == bad
+    assert log.frames["line"].to_list() == [4] and log.marks["line"].to_list() == [6]
+
+
+@pytest.mark.parametrize(("name", "bad", "reason"), RECORD_CASES[:6], ids=[c[0] for c in RECORD_CASES[:6]])
+def test_strict_stops_at_the_first_bad_line(tmp_path: Path, name: str, bad: str,
+                                            reason: str) -> None:
+    path = _write(tmp_path, record_log(bad))
+    with pytest.raises(LogFormatError) as caught:
+        read_log(path, strict=True)
+    assert caught.value.line == BAD_LINE and reason in caught.value.reason
+    assert str(caught.value).startswith(f"{path}:{BAD_LINE}: ")
+
+
+def test_non_utf8_line_is_rejected_alone(tmp_path: Path) -> None:
+    content = (HEADER + GOOD).encode() + b"5\tP\tmark\tcaf\xe9\n" + b"6\tP\tmark\tok\n"
+    log = read_log(_write(tmp_path, content))
+    assert log.rejects.select("line", "reason").row(0) == (
+        5, "not valid UTF-8 text (byte 0xE9 at column 13)")
+    assert log.marks["text"].to_list() == ["ok"]
+    assert log.frames.height == 1
+
+
+def test_truncated_final_line_is_rejected(tmp_path: Path) -> None:
+    log = read_log(_write(tmp_path, HEADER + GOOD + "5\tP\tframe\t0C0\ts\t8\t1122"))
+    assert log.rejects["line"].to_list() == [5]
+    assert log.rejects["reason"][0].startswith("truncated final line (no line end")
+    assert log.lines == 5
+
+
+def test_truncated_final_line_is_rejected_even_when_it_parses(tmp_path: Path) -> None:
+    log = read_log(_write(tmp_path, HEADER + GOOD + "5\tP\tmark\thill clim"))
+    assert log.rejects["reason"][0].startswith("truncated final line")
+    assert log.marks.height == 0
+
+
+@pytest.mark.parametrize(("name", "content", "line", "reason"), FATAL_CASES,
+                         ids=[c[0] for c in FATAL_CASES])
+def test_header_level_fault_is_fatal(tmp_path: Path, name: str, content: bytes,
+                                     line: int | None, reason: str) -> None:
+    with pytest.raises(LogFormatError) as caught:
+        read_log(_write(tmp_path, content))
+    assert caught.value.line == line
+    assert reason in caught.value.reason
+
+
+@pytest.mark.parametrize("suffix", [".gz", ".zst"])
+def test_corrupt_compressed_file_is_fatal(tmp_path: Path, suffix: str) -> None:
+    body = (HEADER + GOOD * 5000).encode()
+    packed = gzip.compress(body) if suffix == ".gz" else zstandard.compress(body)
+    path = _write(tmp_path, packed[: len(packed) // 2], "cut.frames" + suffix)
+    kind = "gzip" if suffix == ".gz" else "zstd"
+    with pytest.raises(LogFormatError, match=f"corrupt or truncated {kind} data"):
+        read_log(path)
+    garbled = packed[:20] + bytes(b ^ 0x5A for b in packed[20:])
+    with pytest.raises(LogFormatError, match="corrupt or truncated"):
+        read_log(_write(tmp_path, garbled, "bad.frames" + suffix))
+
+
+@pytest.mark.parametrize("suffix", [".gz", ".zst"])
+def test_compressed_logs_read_like_plain_ones(tmp_path: Path, suffix: str) -> None:
+    body = EXAMPLE.encode()
+    packed = gzip.compress(body) if suffix == ".gz" else zstandard.compress(body)
+    plain = read_log(_write(tmp_path, body))
+    packed_log = read_log(_write(tmp_path, packed, "run.frames" + suffix))
+    assert packed_log.frames.equals(plain.frames) and packed_log.lines == plain.lines
+
+
+def test_crlf_comments_and_blanks(tmp_path: Path) -> None:
+    text = EXAMPLE.replace("\n", "\r\n").replace("1250000", "# note\r\n\r\n  \r\n1250000", 1)
+    text = text.replace("\r\n", "\r\n# top\r\n", 1)
+    log = read_log(_write(tmp_path, text))
+    assert log.frames["data"][0] == bytes.fromhex("11223344556677FF")
+    assert log.marks["text"][0] == "hill climb, step 4"
+    assert log.lines == 16 and log.header_lines == 6 and log.other_lines == 3
+    assert log.lines == log.header_lines + log.other_lines + 7 + log.rejects.height
+
+
+def test_small_chunks_give_the_same_tables(tmp_path: Path) -> None:
+    lines = [f"{t * 1000}\t{'PC'[t % 2]}\tframe\t{t % 0x7FF:03X}\ts\t2\t{t % 256:02X}00"
+             for t in range(3000)]
+    path = _write(tmp_path, HEADER + "\n".join(lines) + "\n")
+    whole = read_log(path)
+    with LogReader(path, chunk_bytes=97) as reader:
+        parts = list(reader.chunks())
+    assert len(parts) > 100
+    assert pl.concat([c.frames for c in parts]).equals(whole.frames)
+    assert whole.frames["line"].to_list() == list(range(4, 3004))
+
+
+def test_backward_time_steps_are_counted_per_bus_across_chunks(tmp_path: Path) -> None:
+    records = ["100\tP\tmark\ta", "50\tC\tmark\tb", "90\tP\tmark\tc", "60\tC\tmark\td",
+               "10\t*\tmark\tall", "80\tP\tmark\te"]
+    path = _write(tmp_path, HEADER + "\n".join(records) + "\n")
+    with LogReader(path, chunk_bytes=16) as reader:
+        chunks = list(reader.chunks())
+    # P: 100 -> 90 (line 6) and 90 -> 80 (line 9) go back; C: 50 -> 60 does not; '*' ignored
+    assert sum(c.backward_steps for c in chunks) == 2
+    assert [c.first_backward_line for c in chunks if c.backward_steps][0] == 6
+    assert read_log(path).marks.height == 6  # kept, not rejected
+
+
+def test_read_header_stops_before_the_records(tmp_path: Path) -> None:
+    header = read_header(_write(tmp_path, EXAMPLE + "junk without tabs\n"))
+    assert header.meta["run"] == "endurance-114" and len(header.buses) == 2
