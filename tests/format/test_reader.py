@@ -9,8 +9,7 @@ import polars as pl
 import pytest
 import zstandard
 
-from tests.format.cases import (BAD_LINE, FATAL_CASES, GOOD, HEADER, RECORD_CASES,
-                                record_log)
+from tests.format.cases import BAD_LINE, FATAL_CASES, GOOD, HEADER, RECORD_CASES, record_log
 from tracelab.errors import LogFormatError
 from tracelab.format.reader import LogReader, read_header, read_log
 

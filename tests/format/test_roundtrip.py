@@ -11,8 +11,16 @@ from hypothesis import strategies as st
 
 from tracelab.format.grammar import ERROR_FIELDS, ERROR_TYPES, payload_bytes
 from tracelab.format.reader import read_log
-from tracelab.format.writer import (BusDecl, LogHeader, LogWriter, error_line, frame_line,
-                                    loss_line, mark_line, status_line)
+from tracelab.format.writer import (
+    BusDecl,
+    LogHeader,
+    LogWriter,
+    error_line,
+    frame_line,
+    loss_line,
+    mark_line,
+    status_line,
+)
 
 HEADER = LogHeader(buses=[BusDecl("P", 500000), BusDecl("C", 500000, 2000000, "start", "body")],
                    origin="2026-11-30T21:04:05.25Z", meta={"vehicle": "utv-07", "run": "r1"})
