@@ -1,0 +1,326 @@
+"""The aggregates a run report draws, computed in DuckDB so figures never see raw frames.
+
+Every time series is reduced to at most ``points`` display buckets per trace (min / max /
+mean per bucket for bus load, peak and trough for error counters, counts for error events,
+cells for the gap raster), so a 24 h run gives the same few thousand points as a 90 s one.
+The report layer only lays these frames out; it computes nothing.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from dataclasses import dataclass, field
+from datetime import UTC, datetime, timedelta
+from functools import cache
+from importlib import resources
+from typing import Any
+
+import duckdb
+import polars as pl
+
+#: Bus-load windows a reader can pick in the report (each a multiple of the stored window).
+LOAD_WINDOWS_NS = (10_000_000, 100_000_000, 1_000_000_000, 10_000_000_000, 60_000_000_000)
+#: A window is offered only when the run holds at least this many of it.
+MIN_WINDOWS_PER_RUN = 5
+
+
+@cache
+def envelope_sql(name: str) -> str:
+    """The named SQL in analyses/sql/envelope_<name>.sql."""
+    return resources.files("tracelab.analyses").joinpath(f"sql/envelope_{name}.sql").read_text()
+
+
+@dataclass
+class ReportData:
+    """Everything one run's report shows; frames are small (display-sized) aggregates."""
+
+    run: str
+    header: dict[str, Any]
+    t0_ns: int
+    t1_ns: int
+    bucket_ns: int
+    faults: dict[str, Any] | None = None
+    load: pl.DataFrame = field(default_factory=pl.DataFrame)
+    load_stats: pl.DataFrame = field(default_factory=pl.DataFrame)
+    timing: pl.DataFrame = field(default_factory=pl.DataFrame)
+    drift: pl.DataFrame = field(default_factory=pl.DataFrame)
+    gaps: pl.DataFrame = field(default_factory=pl.DataFrame)
+    gap_bucket_ns: int = 1
+    losses: pl.DataFrame = field(default_factory=pl.DataFrame)
+    errors: pl.DataFrame = field(default_factory=pl.DataFrame)
+    counters: pl.DataFrame = field(default_factory=pl.DataFrame)
+    states: pl.DataFrame = field(default_factory=pl.DataFrame)
+    marks: pl.DataFrame = field(default_factory=pl.DataFrame)
+    marks_total: int = 0
+    rejects: pl.DataFrame = field(default_factory=pl.DataFrame)
+    notes: list[str] = field(default_factory=list)
+
+
+def _views(con: duckdb.DuckDBPyConnection) -> set[str]:
+    rows = con.execute("SELECT table_name FROM information_schema.tables").fetchall()
+    return {r[0] for r in rows}
+
+
+def _columns(con: duckdb.DuckDBPyConnection, view: str) -> list[str]:
+    return [r[0] for r in con.execute(f'DESCRIBE "{view}"').fetchall()]
+
+
+def _pick(columns: list[str], *candidates: str) -> str | None:
+    return next((c for c in candidates if c in columns), None)
+
+
+def _frame(con: duckdb.DuckDBPyConnection, sql: str, params: dict[str, Any]) -> pl.DataFrame:
+    """Run ``sql`` with named parameters; the result as a polars frame."""
+    return con.sql(sql, params=params).pl()
+
+
+def _one(con: duckdb.DuckDBPyConnection, sql: str, params: dict[str, Any]) -> tuple[Any, ...]:
+    """The single row of an aggregate query."""
+    rows = con.sql(sql, params=params).fetchall()
+    return tuple(rows[0]) if rows else ()
+
+
+def _nice_bucket_ns(span_ns: int, points: int, multiple_of: int = 1) -> int:
+    """The smallest multiple of ``multiple_of`` that splits the span into <= points buckets."""
+    raw = max(1, math.ceil(span_ns / max(1, points)))
+    return max(multiple_of, math.ceil(raw / multiple_of) * multiple_of)
+
+
+def _json_obj(text: Any) -> Any:
+    if text is None:
+        return None
+    try:
+        return json.loads(text)
+    except (TypeError, ValueError):
+        return None
+
+
+def _buses(raw: Any) -> list[dict[str, Any]]:
+    """Normalise the manifest's buses JSON (a list or an alias-keyed object) to a list."""
+    if isinstance(raw, dict):
+        raw = [{"alias": k, **(v if isinstance(v, dict) else {})} for k, v in raw.items()]
+    out = []
+    for bus in raw or []:
+        if not isinstance(bus, dict):
+            continue
+        out.append({
+            "alias": bus.get("alias"),
+            "name": bus.get("name"),
+            "nominal_bps": bus.get("nominal_bps", bus.get("nominal")),
+            "data_bps": bus.get("data_bps", bus.get("data")),
+        })
+    return out
+
+
+def _wall(origin: str | None, t_ns: int | None) -> str | None:
+    if not origin or t_ns is None:
+        return None
+    try:
+        base = datetime.fromisoformat(origin.replace("Z", "+00:00"))
+    except ValueError:
+        return None
+    moment = base + timedelta(microseconds=t_ns / 1000)
+    return moment.astimezone(UTC).isoformat(timespec="milliseconds").replace(
+        "+00:00", "Z")
+
+
+def header(con: duckdb.DuckDBPyConnection, run: str) -> dict[str, Any]:
+    """Run, meta, wall-clock span, buses and counts from the manifest rows of one run."""
+    rows = _frame(con, "SELECT * FROM manifest WHERE run = $run ORDER BY first_t_ns",
+                  {"run": run})
+    if rows.is_empty():
+        return {"run": run, "files": [], "buses": [], "meta": {}}
+    buses: dict[str, dict[str, Any]] = {}
+    meta: dict[str, Any] = {}
+    for row in rows.iter_rows(named=True):  # one row per ingested file: few
+        for bus in _buses(_json_obj(row["buses"])):
+            buses.setdefault(str(bus["alias"]), bus)
+        found = _json_obj(row["meta"])
+        if isinstance(found, dict):
+            meta.update(found)
+    origin = rows["origin"].drop_nulls().first() if rows["origin"].null_count() < len(rows) \
+        else None
+    first = rows["first_t_ns"].min()
+    last = rows["last_t_ns"].max()
+    sums = {k: int(rows[k].fill_null(0).sum()) for k in
+            ("frames", "errors", "status", "marks", "losses", "rejects", "backward_steps")}
+    backward_lines = rows.filter(pl.col("backward_steps").fill_null(0) > 0).select(
+        "file", "first_backward_line").rows()
+    return {
+        "run": run,
+        "vehicle": rows["vehicle"].drop_nulls().first() if "vehicle" in rows.columns else None,
+        "meta": meta,
+        "origin": origin,
+        "first_t_ns": first,
+        "last_t_ns": last,
+        "wall_start": _wall(origin, first),  # type: ignore[arg-type]
+        "wall_end": _wall(origin, last),  # type: ignore[arg-type]
+        "buses": list(buses.values()),
+        "files": rows["file"].to_list(),
+        "backward_at": [(f, ln) for f, ln in backward_lines],
+        **sums,
+    }
+
+
+def _span(con: duckdb.DuckDBPyConnection, run: str, hdr: dict[str, Any]) -> tuple[int, int]:
+    t0, t1 = hdr.get("first_t_ns"), hdr.get("last_t_ns")
+    if t0 is None or t1 is None:
+        t0, t1 = _one(con, "SELECT min(t_ns), max(t_ns) FROM frames WHERE run = $run",
+                      {"run": run})
+    t0, t1 = int(t0 or 0), int(t1 or 0)
+    return t0, max(t1, t0 + 1)
+
+
+def load_windows(con: duckdb.DuckDBPyConnection, run: str, span_ns: int) -> list[int]:
+    """The selectable window sizes: multiples of the stored window that fit the run."""
+    (base,) = _one(con, "SELECT min(window_ns) FROM load WHERE run = $run", {"run": run})
+    if base is None:
+        return []
+    base = int(base)
+    sizes = [w for w in LOAD_WINDOWS_NS if w >= base and w % base == 0
+             and span_ns >= MIN_WINDOWS_PER_RUN * w]
+    return sizes or [base]
+
+
+def load_envelopes(con: duckdb.DuckDBPyConnection, run: str, span_ns: int,
+                   points: int) -> tuple[pl.DataFrame, pl.DataFrame]:
+    """Per bus and selectable window: bucket envelopes, and mean / peak."""
+    envelopes, stats = [], []
+    for window_ns in load_windows(con, run, span_ns):  # a handful of window sizes
+        bucket_ns = _nice_bucket_ns(span_ns, points, multiple_of=window_ns)
+        params = {"run": run, "window_ns": window_ns, "bucket_ns": bucket_ns}
+        envelopes.append(_frame(con, envelope_sql("load"), params))
+        stats.append(_frame(con, envelope_sql("load_stats"),
+                            {"run": run, "window_ns": window_ns}))
+    if not envelopes:
+        return pl.DataFrame(), pl.DataFrame()
+    return pl.concat(envelopes), pl.concat(stats)
+
+
+def timing_table(con: duckdb.DuckDBPyConnection, run: str, limit: int = 500) -> pl.DataFrame:
+    """The timing analysis of one run, worst message first (most missing frames, then the
+    largest phase jitter relative to the period, then the largest drift), with the period
+    deviation in percent for the chart: the median inter-arrival against the period, and the
+    1st / 99th percentile of the cycle deviation as the error bar."""
+    cols = _columns(con, "timing")
+    wanted = {
+        "bus": ("bus",), "id": ("id",), "ext": ("ext",), "name": ("name",),
+        "sender": ("sender",), "period_ns": ("period_ns",),
+        "median_ns": ("median_ns", "mean_ns"), "cycle_std_ns": ("cycle_std_ns",),
+        "cycle_p01_ns": ("cycle_p01_ns",), "cycle_p99_ns": ("cycle_p99_ns",),
+        "phase_std_ns": ("phase_std_ns",), "phase_max_abs_ns": ("phase_max_abs_ns",),
+        "drift_ppm": ("drift_ppm",), "frames": ("count", "frames"),
+        "missing": ("missing",), "missing_in_loss": ("missing_in_loss",), "gaps": ("gaps",),
+        "bursts": ("bursts",),
+    }
+    select = []
+    for out, candidates in wanted.items():
+        src = _pick(cols, *candidates)
+        select.append(f'"{src}" AS {out}' if src else f"NULL AS {out}")
+    run_filter = "WHERE run = $run" if "run" in cols else ""
+    sql = f"""
+        WITH t AS (SELECT {", ".join(select)} FROM timing {run_filter}),
+        pct AS (
+            SELECT *,
+                   CASE WHEN period_ns > 0
+                        THEN 100.0 * (median_ns - period_ns) / period_ns END AS deviation_pct,
+                   CASE WHEN period_ns > 0 THEN 100.0 * cycle_p01_ns / period_ns END AS p01_pct,
+                   CASE WHEN period_ns > 0 THEN 100.0 * cycle_p99_ns / period_ns END AS p99_pct
+            FROM t
+        )
+        SELECT * EXCLUDE (p01_pct, p99_pct),
+               greatest(p99_pct - deviation_pct, 0) AS err_plus_pct,
+               greatest(deviation_pct - p01_pct, 0) AS err_minus_pct
+        FROM pct
+        ORDER BY coalesce(missing, 0) DESC,
+                 coalesce(phase_std_ns / nullif(period_ns, 0), 0) DESC,
+                 abs(coalesce(drift_ppm, 0)) DESC, bus, id
+        LIMIT {int(limit)}
+    """
+    return _frame(con, sql, {"run": run} if run_filter else {})
+
+
+def drift_table(con: duckdb.DuckDBPyConnection, run: str) -> pl.DataFrame:
+    cols = _columns(con, "node_drift")
+    drift = _pick(cols, "drift_ppm", "clock_drift_ppm")
+    if drift is None or "node" not in cols:
+        return pl.DataFrame()
+    bus = "bus" if "bus" in cols else "NULL"
+    lo = "min_drift_ppm" if "min_drift_ppm" in cols else "NULL"
+    hi = "max_drift_ppm" if "max_drift_ppm" in cols else "NULL"
+    messages = "messages" if "messages" in cols else "NULL"
+    run_filter = "WHERE run = $run" if "run" in cols else ""
+    sql = (f'SELECT {bus} AS bus, node, "{drift}" AS drift_ppm, {lo} AS min_drift_ppm, '
+           f"{hi} AS max_drift_ppm, {hi} - \"{drift}\" AS spread_plus_ppm, "
+           f"\"{drift}\" - {lo} AS spread_minus_ppm, {messages} AS messages "
+           f"FROM node_drift {run_filter} ORDER BY abs(drift_ppm) DESC NULLS LAST, node")
+    return _frame(con, sql, {"run": run} if run_filter else {})
+
+
+def gap_cells(con: duckdb.DuckDBPyConnection, run: str, bucket_ns: int) -> pl.DataFrame:
+    cols = _columns(con, "gaps")
+    start = _pick(cols, "from_ns", "start_ns", "t_ns", "after_ns", "last_seen_ns")
+    end = _pick(cols, "to_ns", "end_ns", "until_ns", "next_ns", "resumed_ns")
+    if start is None or end is None or "id" not in cols:
+        return pl.DataFrame()
+    ext = "ext" if "ext" in cols else "false"
+    run_col = "run" if "run" in cols else "'" + run.replace("'", "''") + "'"
+    logger = "in_loss" if "in_loss" in cols else "NULL"
+    con.execute(f'CREATE OR REPLACE TEMP VIEW gap_source AS SELECT {run_col} AS run, bus, id, '
+                f'{ext} AS ext, "{start}" AS from_ns, "{end}" AS to_ns, {logger} AS in_loss '
+                "FROM gaps")
+    return _frame(con, envelope_sql("gaps"), {"run": run, "bucket_ns": bucket_ns})
+
+
+def counter_envelopes(con: duckdb.DuckDBPyConnection, run: str, bucket_ns: int,
+                      views: set[str]) -> pl.DataFrame:
+    source = "counters" if "counters" in views else "status"
+    con.execute(f"CREATE OR REPLACE TEMP VIEW counter_source AS "
+                f"SELECT run, bus, node, t_ns, tec, rec FROM {source}")
+    return _frame(con, envelope_sql("counters"), {"run": run, "bucket_ns": bucket_ns})
+
+
+def _run_faults(faults: dict[str, Any] | None, run: str) -> dict[str, Any] | None:
+    """The faults.json object restricted to this run's results."""
+    if not isinstance(faults, dict):
+        return None
+    results = [r for r in faults.get("results", []) if r.get("run") in (None, run)]
+    return {**faults, "results": results}
+
+
+def report_data(con: duckdb.DuckDBPyConnection, run: str, faults: dict[str, Any] | None = None,
+                points: int = 2000, raster_buckets: int = 600, marks_limit: int = 200,
+                reject_rows: int = 10) -> ReportData:
+    """All aggregates of one run's report; ``faults`` is the stored faults.json object."""
+    views = _views(con)
+    hdr = header(con, run)
+    t0, t1 = _span(con, run, hdr)
+    span = t1 - t0
+    bucket_ns = _nice_bucket_ns(span, points)
+    data = ReportData(run=run, header=hdr, t0_ns=t0, t1_ns=t1, bucket_ns=bucket_ns,
+                      faults=_run_faults(faults, run))
+    if "load" in views:
+        data.load, data.load_stats = load_envelopes(con, run, span, points)
+    else:
+        data.notes.append("bus load: no load analysis in the dataset")
+    if "timing" in views:
+        data.timing = timing_table(con, run)
+    if "node_drift" in views:
+        data.drift = drift_table(con, run)
+    if "gaps" in views:
+        data.gap_bucket_ns = _nice_bucket_ns(span, raster_buckets)
+        data.gaps = gap_cells(con, run, data.gap_bucket_ns)
+    data.losses = _frame(con, "SELECT bus, t_ns AS from_ns, until_ns AS to_ns, count FROM losses "
+                              "WHERE run = $run ORDER BY t_ns", {"run": run})
+    data.errors = _frame(con, envelope_sql("errors"), {"run": run, "bucket_ns": bucket_ns})
+    data.counters = counter_envelopes(con, run, bucket_ns, views)
+    if "node_states" in views:
+        data.states = _frame(con, "SELECT bus, node, state, from_ns, to_ns FROM node_states "
+                                  "WHERE run = $run ORDER BY bus, node, from_ns", {"run": run})
+    data.marks = _frame(con, envelope_sql("marks"), {"run": run, "limit": marks_limit})
+    (total,) = _one(con, "SELECT count(*) FROM marks WHERE run = $run", {"run": run})
+    data.marks_total = int(total or 0)
+    data.rejects = _frame(con, "SELECT file, line, reason, raw FROM rejects WHERE run = $run "
+                               "ORDER BY file, line LIMIT $n", {"run": run, "n": reject_rows})
+    return data

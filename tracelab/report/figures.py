@@ -1,0 +1,345 @@
+"""Plotly figure builders: each lays out one prepared aggregate and computes nothing.
+
+Time axes are seconds of log time (t_ns / 1e9) and all start on the run's span, so the page
+script can keep them linked. Every string that came from a log or a catalog is HTML-escaped
+before it reaches Plotly (Plotly renders a subset of HTML in labels).
+"""
+
+from __future__ import annotations
+
+import html
+from collections.abc import Sequence
+from typing import Any
+
+import numpy as np
+import plotly.graph_objects as go
+import polars as pl
+from plotly.subplots import make_subplots
+
+from tracelab.report import style
+
+NS_PER_S = 1e9
+#: Counter levels of ISO 11898-1 fault confinement: warning limit (common controller
+#: choice), error-passive above 127, bus-off above 255.
+COUNTER_LEVELS = ((96, "warning 96"), (128, "error-passive 128"), (256, "bus-off 256"))
+STATE_ORDER = ("error-active", "warning", "error-passive", "bus-off")
+MARK_LABEL_CHARS = 28
+
+
+def esc(text: Any) -> str:
+    return html.escape("" if text is None else str(text), quote=True)
+
+
+def seconds(t_ns: Any) -> np.ndarray:
+    return np.asarray(t_ns, dtype=np.float64) / NS_PER_S
+
+
+def message_label(bus: Any, frame_id: Any, ext: Any, name: Any = None) -> str:
+    ident = "-" if frame_id is None else (f"{int(frame_id):08X}" if ext else f"{int(frame_id):03X}")
+    label = f"{ident} {name}" if name else ident
+    return f"{bus} {label}" if bus is not None else label
+
+
+def window_label(window_ns: int) -> str:
+    for unit, size in (("min", 60_000_000_000), ("s", 1_000_000_000), ("ms", 1_000_000),
+                       ("us", 1_000)):
+        if window_ns >= size and window_ns % size == 0:
+            return f"{window_ns // size} {unit}"
+    return f"{window_ns} ns"
+
+
+def _time_axis(t0_ns: int, t1_ns: int) -> dict[str, Any]:
+    return {"title": {"text": "log time [s]"}, "range": [t0_ns / NS_PER_S, t1_ns / NS_PER_S],
+            "gridcolor": style.GRID, "zeroline": False, "showline": True,
+            "linecolor": style.GRID}
+
+
+def add_marks(fig: go.Figure, marks: pl.DataFrame, label_row_yref: str = "paper") -> None:
+    """Vertical lines over the whole figure at each mark, labelled at the top."""
+    if marks.is_empty():
+        return
+    for row in marks.iter_rows(named=True):  # marks are test steps: a few hundred at most
+        x = row["t_ns"] / NS_PER_S
+        fig.add_shape(type="line", xref="x", yref="paper", x0=x, x1=x, y0=0, y1=1,
+                      line={"color": style.MUTED, "width": 1, "dash": "dot"}, layer="above")
+        text = row["text"] or ""
+        short = text if len(text) <= MARK_LABEL_CHARS else text[: MARK_LABEL_CHARS - 1] + "…"
+        fig.add_annotation(x=x, xref="x", y=1, yref=label_row_yref, yanchor="bottom",
+                           text=esc(short), hovertext=esc(f"{x:.3f} s  {text}"),
+                           showarrow=False, textangle=0, xanchor="left",
+                           font={"size": 10, "color": style.MUTED})
+
+
+def load_figure(load: pl.DataFrame, stats: pl.DataFrame, buses: Sequence[str], t0_ns: int,
+                t1_ns: int, load_limit: float, marks: pl.DataFrame) -> go.Figure:
+    """Bus load per bus; one button per window size; mean (dashed) and peak (dot) marked;
+    a reference line at the recommended maximum."""
+    fig = go.Figure()
+    windows = sorted(load["window_ns"].unique().to_list()) if not load.is_empty() else []
+    default = 100_000_000 if 100_000_000 in windows else (windows[0] if windows else None)
+    owners: list[int] = []  # the window of each trace, for the buttons
+    for window_ns in windows:
+        visible = window_ns == default
+        for index, bus in enumerate(buses):
+            part = load.filter((pl.col("window_ns") == window_ns) & (pl.col("bus") == bus))
+            if part.is_empty():
+                continue
+            colour = style.bus_colour(index)
+            x = seconds(part["t_ns"])
+            name = esc(bus)
+            enveloped = bool((part["load_max"] != part["load_min"]).any())
+            if enveloped:  # the bucket spans several windows: shade their min..max
+                fig.add_trace(go.Scatter(x=x, y=part["load_max"].to_numpy(), mode="lines",
+                                         line={"width": 0, "color": colour}, hoverinfo="skip",
+                                         showlegend=False, visible=visible, legendgroup=name))
+                fig.add_trace(go.Scatter(x=x, y=part["load_min"].to_numpy(), mode="lines",
+                                         line={"width": 0, "color": colour}, fill="tonexty",
+                                         fillcolor=_alpha(colour, 0.18), hoverinfo="skip",
+                                         showlegend=False, visible=visible, legendgroup=name))
+                owners += [window_ns, window_ns]
+            fig.add_trace(go.Scatter(
+                x=x, y=part["load_mean"].to_numpy(), mode="lines", name=name,
+                line={"width": 1.6, "color": colour}, visible=visible, legendgroup=name,
+                hovertemplate=f"{name} %{{y:.1%}} at %{{x:.3f}} s<extra></extra>"))
+            owners.append(window_ns)
+            st = stats.filter((pl.col("window_ns") == window_ns) & (pl.col("bus") == bus))
+            if not st.is_empty():
+                mean, peak = st["mean_ratio"][0], st["peak_ratio"][0]
+                peak_x = st["peak_t_ns"][0] / NS_PER_S
+                fig.add_trace(go.Scatter(
+                    x=[t0_ns / NS_PER_S, t1_ns / NS_PER_S], y=[mean, mean], mode="lines",
+                    line={"width": 1, "dash": "dash", "color": colour}, visible=visible,
+                    name=f"{name} mean {mean:.1%}", legendgroup=name, showlegend=True,
+                    hovertemplate=f"{name} mean {mean:.1%}<extra></extra>"))
+                fig.add_trace(go.Scatter(
+                    x=[peak_x], y=[peak], mode="markers+text", text=[f"peak {peak:.1%}"],
+                    textposition="top center", textfont={"size": 10, "color": colour},
+                    marker={"size": 8, "color": colour, "line": {"width": 1, "color": "white"}},
+                    visible=visible, showlegend=False, legendgroup=name,
+                    hovertemplate=f"{name} peak {peak:.1%} at %{{x:.3f}} s<extra></extra>"))
+                owners += [window_ns, window_ns]
+    buttons = [{"label": window_label(w), "method": "restyle",
+                "args": [{"visible": [o == w for o in owners]}]} for w in windows]
+    peak_all = float(load["load_max"].max()) if not load.is_empty() else 0.0  # type: ignore[arg-type]
+    layout = style.base_layout(
+        340, xaxis=_time_axis(t0_ns, t1_ns),
+        yaxis={"title": {"text": "bus load"}, "tickformat": ".0%", "gridcolor": style.GRID,
+               "rangemode": "tozero", "range": [0, max(load_limit, peak_all) * 1.15 or 1]})
+    if len(buttons) > 1:
+        layout["updatemenus"] = [{
+            "type": "buttons", "direction": "right", "x": 1, "xanchor": "right", "y": 1.16,
+            "yanchor": "bottom", "buttons": buttons, "showactive": True,
+            "active": windows.index(default) if default in windows else 0,
+            "bgcolor": style.PAGE, "bordercolor": style.GRID, "font": {"size": 11}}]
+        layout["margin"] = {"l": 64, "r": 24, "t": 56, "b": 44}
+    fig.update_layout(**layout)
+    fig.add_hline(y=load_limit, line={"color": style.RULE, "width": 1.2, "dash": "longdash"},
+                  annotation_text=f"recommended max {load_limit:.0%}",
+                  annotation_position="top left", annotation_font_size=10,
+                  annotation_font_color=style.MUTED)
+    add_marks(fig, marks)
+    return fig
+
+
+def _alpha(hex_colour: str, alpha: float) -> str:
+    r, g, b = (int(hex_colour[i:i + 2], 16) for i in (1, 3, 5))
+    return f"rgba({r},{g},{b},{alpha})"
+
+
+def deviation_figure(timing: pl.DataFrame, buses: Sequence[str], limit: int = 60) -> go.Figure:
+    """Median interval minus the period (percent of the period) per message, the bar from
+    the 1st to the 99th percentile of the cycle deviation; messages in worst-first order."""
+    fig = go.Figure()
+    rows = timing.filter(pl.col("deviation_pct").is_not_null()).head(limit) \
+        if "deviation_pct" in timing.columns else pl.DataFrame()
+    if not rows.is_empty():
+        labels = [esc(message_label(b, i, e, n)) for b, i, e, n in
+                  rows.select("bus", "id", "ext", "name").iter_rows()]
+        colours = [style.bus_colour(list(buses).index(b)) if b in buses else style.MUTED
+                   for b in rows["bus"].to_list()]
+        fig.add_trace(go.Scatter(
+            x=labels, y=rows["deviation_pct"].to_numpy(), mode="markers",
+            name="period deviation", marker={"size": 8, "color": colours},
+            error_y={"type": "data", "symmetric": False,
+                     "array": rows["err_plus_pct"].fill_null(0).to_numpy(),
+                     "arrayminus": rows["err_minus_pct"].fill_null(0).to_numpy(),
+                     "color": style.MUTED, "thickness": 1.2, "width": 4},
+            hovertemplate="%{x}<br>median interval %{y:+.3f}% of the period"
+                          "<extra></extra>"))
+    fig.update_layout(**style.base_layout(
+        320, showlegend=False,
+        xaxis={"title": {"text": "message (worst first)"}, "tickangle": -40,
+               "automargin": True, "gridcolor": style.GRID},
+        yaxis={"title": {"text": "deviation [% of period]"}, "gridcolor": style.GRID,
+               "zeroline": True, "zerolinecolor": style.RULE}))
+    return fig
+
+
+def drift_figure(drift: pl.DataFrame) -> go.Figure:
+    """Clock drift per node in ppm (from its messages' period drift)."""
+    fig = go.Figure()
+    if not drift.is_empty():
+        labels = [esc(n if b is None else f"{b} {n}") for b, n in
+                  drift.select("bus", "node").iter_rows()]
+        spread = {}
+        if drift["min_drift_ppm"].null_count() < len(drift):
+            spread = {"error_y": {"type": "data", "symmetric": False,
+                                  "array": drift["spread_plus_ppm"].fill_null(0).to_numpy(),
+                                  "arrayminus": drift["spread_minus_ppm"].fill_null(0)
+                                  .to_numpy(), "color": style.MUTED, "thickness": 1.2}}
+        fig.add_trace(go.Bar(x=labels, y=drift["drift_ppm"].to_numpy(), name="clock drift",
+                             marker={"color": style.BUS_ACCENTS[1]}, width=0.5, **spread,
+                             hovertemplate="%{x}: %{y:+.1f} ppm (median over its messages)"
+                                           "<extra></extra>"))
+    fig.update_layout(**style.base_layout(
+        260, showlegend=False, xaxis={"title": {"text": "node"}, "gridcolor": style.GRID},
+        yaxis={"title": {"text": "clock drift [ppm]"}, "gridcolor": style.GRID,
+               "zeroline": True, "zerolinecolor": style.RULE}))
+    return fig
+
+
+def gaps_figure(cells: pl.DataFrame, bucket_ns: int, losses: pl.DataFrame, t0_ns: int,
+                t1_ns: int, marks: pl.DataFrame, names: dict[tuple[Any, Any, Any], str]
+                | None = None) -> go.Figure:
+    """Time x message raster: dark cells where a message was missing on the bus, light cells
+    where the logger lost it; logger-loss intervals shaded over the whole raster."""
+    fig = go.Figure()
+    names = names or {}
+    n_buckets = max(1, -(-(t1_ns - t0_ns) // bucket_ns) + 1)
+    first_bucket = (t0_ns // bucket_ns) * bucket_ns
+    height = 240
+    if not cells.is_empty():
+        keys = cells.select("bus", "id", "ext").unique(maintain_order=True).rows()
+        row_of = {k: i for i, k in enumerate(keys)}
+        z = np.full((len(keys), n_buckets), np.nan)
+        rows = np.array([row_of[k] for k in cells.select("bus", "id", "ext").iter_rows()],
+                        dtype=np.int64)
+        cols = np.clip((cells["t_ns"].to_numpy() - first_bucket) // bucket_ns, 0,
+                       n_buckets - 1).astype(np.int64)
+        z[rows, cols] = np.where(cells["logger"].to_numpy(), 2.0, 1.0)
+        labels = [esc(message_label(b, i, e, names.get((b, i, e)))) for b, i, e in keys]
+        x = seconds(first_bucket + bucket_ns * np.arange(n_buckets) + bucket_ns // 2)
+        fig.add_trace(go.Heatmap(
+            z=z, x=x, y=labels, zmin=1, zmax=2, showscale=False, xgap=0, ygap=1,
+            colorscale=[[0, style.GAP_BUS], [0.5, style.GAP_BUS], [0.5, style.GAP_LOGGER],
+                        [1, style.GAP_LOGGER]],
+            hovertemplate="%{y}<br>missing around %{x:.2f} s<extra></extra>"))
+        height = max(240, min(900, 60 + 18 * len(keys)))
+    # legend entries for the two cell kinds and the logger-loss shading
+    for name, colour in (("missing on the bus", style.GAP_BUS),
+                         ("lost by the logger", style.GAP_LOGGER)):
+        fig.add_trace(go.Scatter(x=[None], y=[None], mode="markers", name=name,
+                                 marker={"symbol": "square", "size": 10, "color": colour}))
+    if not losses.is_empty():
+        fig.add_trace(go.Scatter(x=[None], y=[None], mode="markers", name="logger-loss interval",
+                                 marker={"symbol": "square", "size": 10,
+                                         "color": _alpha(style.LOGGER_SHADE, 0.35)}))
+        for row in losses.iter_rows(named=True):  # logger losses are rare events
+            fig.add_vrect(x0=row["from_ns"] / NS_PER_S, x1=row["to_ns"] / NS_PER_S,
+                          fillcolor=style.LOGGER_SHADE, opacity=0.3, line_width=0,
+                          layer="below")
+    fig.update_layout(**style.base_layout(
+        height, xaxis=_time_axis(t0_ns, t1_ns),
+        yaxis={"title": {"text": ""}, "automargin": True, "autorange": "reversed",
+               "gridcolor": style.GRID, "type": "category"},
+        legend={"orientation": "h", "y": 1.02, "yanchor": "bottom", "x": 0,
+                "font": {"size": 11}},
+        margin={"l": 64, "r": 24, "t": 48, "b": 44}))
+    add_marks(fig, marks)
+    return fig
+
+
+def errors_figure(errors: pl.DataFrame, bucket_ns: int, t0_ns: int, t1_ns: int,
+                  marks: pl.DataFrame) -> go.Figure:
+    """Error events per time bucket, stacked by error type (shades of red)."""
+    fig = go.Figure()
+    if not errors.is_empty():
+        several = errors["bus"].n_unique() > 1
+        for bus, kind in errors.select("bus", "type").unique().sort("type", "bus").rows():
+            part = errors.filter((pl.col("bus") == bus) & (pl.col("type") == kind))
+            name = esc(f"{bus} {kind}" if several else kind)
+            fig.add_trace(go.Bar(
+                x=seconds(part["t_ns"] + bucket_ns // 2), y=part["errors"].to_numpy(),
+                width=bucket_ns / NS_PER_S, name=name,
+                marker={"color": style.ERROR_TYPE_COLOURS.get(kind, style.ERROR_RED),
+                        "line": {"width": 0}},
+                hovertemplate=f"{name} errors: %{{y}} around %{{x:.2f}} s<extra></extra>"))
+    fig.update_layout(**style.base_layout(
+        260, barmode="stack", bargap=0, xaxis=_time_axis(t0_ns, t1_ns),
+        yaxis={"title": {"text": f"errors per {window_label(bucket_ns)}"},
+               "gridcolor": style.GRID, "rangemode": "tozero"}))
+    add_marks(fig, marks)
+    return fig
+
+
+def counters_figure(counters: pl.DataFrame, states: pl.DataFrame, t0_ns: int, t1_ns: int,
+                    marks: pl.DataFrame) -> go.Figure:
+    """TEC and REC per node (bucket peaks, step lines) with the 96 / 128 / 256 levels and
+    state bands behind them, and a per-node state timeline below; one shared time axis."""
+    fig = make_subplots(rows=3, cols=1, shared_xaxes=True, vertical_spacing=0.05,
+                        row_heights=[0.4, 0.4, 0.2])
+    nodes = (counters.select("bus", "node").unique(maintain_order=True).rows()
+             if not counters.is_empty() else [])
+    if not states.is_empty():
+        for key in states.select("bus", "node").unique(maintain_order=True).rows():
+            if key not in nodes:
+                nodes.append(key)
+    labels = {k: esc(k[1] if len({b for b, _ in nodes}) <= 1 else f"{k[0]} {k[1]}")
+              for k in nodes}
+    top = 300
+    for row_index, prefix in ((1, "tec"), (2, "rec")):
+        if not counters.is_empty():
+            peak = counters[f"{prefix}_max"].max()
+            top = max(top, int(peak) + 20 if isinstance(peak, int | float) else top)
+        bounds = (0, 96, 128, 256, top)
+        for state, lo, hi in zip(STATE_ORDER, bounds[:-1], bounds[1:], strict=True):
+            fig.add_hrect(y0=lo, y1=hi, fillcolor=style.STATE_COLOURS[state], opacity=0.28,
+                          line_width=0, layer="below", row=row_index, col=1)
+        for level, text in COUNTER_LEVELS:
+            fig.add_hline(y=level, line={"color": style.RULE, "width": 1, "dash": "dot"},
+                          annotation_text=text, annotation_position="top right",
+                          annotation_font_size=9, annotation_font_color=style.MUTED,
+                          row=row_index, col=1)
+    for index, key in enumerate(nodes):  # one trace pair per node: a handful
+        part = counters.filter((pl.col("bus") == key[0]) & (pl.col("node") == key[1])) \
+            if not counters.is_empty() else pl.DataFrame()
+        if part.is_empty():
+            continue
+        colour = style.node_colour(index)
+        x = seconds(part["t_ns"])
+        for row_index, prefix in ((1, "tec"), (2, "rec")):
+            fig.add_trace(go.Scatter(
+                x=x, y=part[f"{prefix}_max"].to_numpy(), mode="lines", name=labels[key],
+                line={"color": colour, "width": 1.6, "shape": "hv"}, legendgroup=labels[key],
+                showlegend=row_index == 1,
+                hovertemplate=f"{labels[key]} {prefix.upper()} %{{y}} at %{{x:.3f}} s"
+                              "<extra></extra>"), row=row_index, col=1)
+    if not states.is_empty():
+        for row in states.iter_rows(named=True):  # state intervals: rare events
+            key = (row["bus"], row["node"])
+            start = row["from_ns"] / NS_PER_S
+            end = (row["to_ns"] if row["to_ns"] is not None else t1_ns) / NS_PER_S
+            fig.add_trace(go.Bar(
+                x=[end - start], base=[start], y=[labels.get(key, esc(row["node"]))],
+                orientation="h", showlegend=False,
+                marker={"color": style.STATE_COLOURS.get(row["state"], style.MUTED),
+                        "line": {"width": 0}},
+                hovertemplate=f"{labels.get(key, '')} {esc(row['state'])}<br>"
+                              f"{start:.3f} s .. {end:.3f} s<extra></extra>"), row=3, col=1)
+        for state in STATE_ORDER:  # a legend for the state colours
+            fig.add_trace(go.Bar(x=[None], y=[None], name=state, orientation="h",
+                                 marker={"color": style.STATE_COLOURS[state]},
+                                 legendgroup="states"), row=3, col=1)
+    height = 520 + 14 * len(nodes)
+    fig.update_layout(**style.base_layout(height, barmode="overlay", bargap=0.3))
+    fig.update_layout(legend={"orientation": "h", "y": -0.08, "x": 0})
+    time_axis = _time_axis(t0_ns, t1_ns)
+    for axis in ("xaxis", "xaxis2"):
+        fig.layout[axis].update(range=time_axis["range"], gridcolor=style.GRID)
+    fig.layout["xaxis3"].update(**time_axis)
+    fig.layout["yaxis"].update(title={"text": "TEC (transmit)"}, range=[0, top], gridcolor=style.GRID)
+    fig.layout["yaxis2"].update(title={"text": "REC (receive)"}, range=[0, top], gridcolor=style.GRID)
+    fig.layout["yaxis3"].update(type="category", automargin=True, autorange="reversed",
+                                title={"text": "state"})
+    add_marks(fig, marks)
+    return fig
