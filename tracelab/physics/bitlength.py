@@ -250,25 +250,32 @@ def _columns(frames: pl.DataFrame) -> _Columns:
     values = (np.frombuffer(bufs[2], dtype=np.uint8) if bufs[2] is not None
               else np.zeros(0, dtype=np.uint8))
     lengths = np.diff(offsets)
+    if values.size == 0:  # masked reads of short payloads still need one readable byte
+        values = np.zeros(1, dtype=np.uint8)
     if arr.null_count:
         lengths = np.where(np.asarray(arr.is_null()), 0, lengths)
     return _Columns(ident, ext, rtr, fd, brs, esi, dlc, n_bytes, offsets[:-1], lengths, values)
 
 
+def _data_columns(cols: _Columns, idx: np.ndarray, n: int) -> list[np.ndarray]:
+    """Payload byte j of every frame in ``idx``, for j < n (uint8 columns, contiguous);
+    short payloads are padded with zero bytes."""
+    off = cols.offsets[idx]
+    lengths = cols.lengths[idx]
+    short = bool(len(idx)) and int(lengths.min()) < n
+    out = []
+    for j in range(n):  # bytes of a frame, not frames
+        col = cols.values[off + j] if not short else np.where(
+            lengths > j, cols.values[np.where(lengths > j, off + j, 0)], 0).astype(np.uint8)
+        out.append(col)
+    return out
+
+
 def _data_matrix(cols: _Columns, idx: np.ndarray, n: int) -> np.ndarray:
-    """(len(idx), n) uint8 payload matrix; short payloads are padded with zero bytes."""
+    """(len(idx), n) uint8 payload matrix."""
     if n == 0:
         return np.zeros((len(idx), 0), dtype=np.uint8)
-    col = np.arange(n, dtype=np.int64)
-    pos = cols.offsets[idx][:, None] + col
-    lengths = cols.lengths[idx]
-    if lengths.min() >= n:
-        return cols.values[pos]
-    ok = col < lengths[:, None]
-    safe = np.where(ok, pos, 0)
-    if cols.values.size == 0:
-        return np.zeros((len(idx), n), dtype=np.uint8)
-    return np.where(ok, cols.values[safe], 0).astype(np.uint8)
+    return np.stack(_data_columns(cols, idx, n), axis=1)
 
 
 def _groups(cols: _Columns) -> list[tuple[bool, bool, int, np.ndarray]]:
@@ -423,14 +430,14 @@ def _group_table(cols: _Columns, idx: np.ndarray, fd: bool, ext: bool, n_bytes: 
     hdr_crc = [((hv >> (8 * (n_hdr - 1 - j))) & 0xFF).astype(np.int16) for j in range(n_hdr)]
     hdr_stuff = list(hdr_crc)
     hdr_stuff[0] = hdr_stuff[0] | np.int16(pad_value << (8 - pad))
-    data_t = np.ascontiguousarray(_data_matrix(cols, idx, n_bytes).T).astype(np.int16)
-    stream = hdr_stuff + list(data_t)
+    data_t = _data_columns(cols, idx, n_bytes)
+    stream = hdr_stuff + data_t
     acc = np.full(m, _START_STATE, dtype=np.int16)
     s8 = step[8]
     if not fd:
         n_msg = n_hdr + n_bytes
         crc = np.zeros(m, dtype=np.int16)
-        for j, chunk in enumerate(hdr_crc + list(data_t)):  # bytes of the frame, not frames
+        for j, chunk in enumerate(hdr_crc + data_t):  # bytes of the frame, not frames
             crc ^= _crc15_position_table(n_msg - 1 - j)[chunk]
         for chunk in stream:  # bytes of the frame, not frames
             acc = _stuff_step(acc, chunk, s8)
