@@ -1,0 +1,132 @@
+"""The fleet index page: every run with its report link, the regression flags, and per-vehicle
+trend charts. It lays out numbers the summary computed; it computes nothing new."""
+
+from __future__ import annotations
+
+import html
+from pathlib import Path
+from typing import Any
+
+import polars as pl
+
+from tracelab.fleet import layout
+
+PLOTLY_FILE = "plotly.min.js"
+
+_STYLE = """
+body { font: 14px/1.45 system-ui, sans-serif; margin: 0; color: #26292c; background: #f6f6f4; }
+header { padding: 18px 28px; background: #ecebe7; border-bottom: 1px solid #d9d7d0; }
+h1 { font-size: 20px; margin: 0 0 4px; font-weight: 600; }
+h2 { font-size: 16px; margin: 28px 0 8px; font-weight: 600; }
+main { padding: 4px 28px 40px; }
+.muted { color: #6b6e70; }
+table { border-collapse: collapse; background: #fff; border: 1px solid #dedcd5; }
+th, td { padding: 5px 10px; border-bottom: 1px solid #ebe9e3; text-align: left; }
+th { background: #f1f0ec; font-weight: 600; }
+td.num { text-align: right; font-variant-numeric: tabular-nums; }
+tr.failed td { background: #fbf1ee; }
+.flag { color: #8a4b14; font-weight: 600; }
+.chart { background: #fff; border: 1px solid #dedcd5; margin: 8px 0 18px; }
+a { color: #2f5d7c; }
+"""
+
+_COLUMNS = ("vehicle", "date", "run", "status", "frames", "missing", "errors", "rejects",
+            "max_load_ratio", "first_degraded_node", "first_degraded_state", "cause_kind",
+            "confidence", "regressions")
+
+
+def _cell(name: str, value: Any) -> str:
+    if value is None:
+        return '<td class="muted">-</td>'
+    if isinstance(value, float):
+        text = f"{value:.1%}" if name.endswith("_ratio") else f"{value:.3g}"
+        return f'<td class="num">{html.escape(text)}</td>'
+    if isinstance(value, int) and not isinstance(value, bool):
+        css = ' class="num flag"' if name == "regressions" and value else ' class="num"'
+        return f"<td{css}>{value}</td>"
+    return f"<td>{html.escape(str(value))}</td>"
+
+
+def _runs_table(runs: pl.DataFrame) -> str:
+    head = "".join(f"<th>{html.escape(c)}</th>" for c in (*_COLUMNS, "report / reason"))
+    rows = []
+    for row in runs.iter_rows(named=True):  # one row per run, not per frame
+        cells = "".join(_cell(c, row.get(c)) for c in _COLUMNS)
+        if row["status"] == "ok" and row.get("report"):
+            link = f'<td><a href="{html.escape(row["report"], quote=True)}">report</a></td>'
+        else:
+            link = f'<td>{html.escape(row.get("reason") or "")}</td>'
+        css = ' class="failed"' if row["status"] != "ok" else ""
+        rows.append(f"<tr{css}>{cells}{link}</tr>")
+    return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(rows)}</tbody></table>"
+
+
+def _flags_table(flags: pl.DataFrame) -> str:
+    if flags.is_empty():
+        return '<p class="muted">No regressions flagged.</p>'
+    cols = ("vehicle", "date", "run", "bus", "name", "metric", "value", "baseline", "history")
+    head = "".join(f"<th>{c}</th>" for c in cols)
+    body = "".join(
+        "<tr>" + "".join(_cell(c, r.get(c)) for c in cols) + "</tr>"
+        for r in flags.iter_rows(named=True))  # flags are rare
+    return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
+
+
+def _trend_chart(vehicle: str, runs: pl.DataFrame, flags: pl.DataFrame) -> str:
+    import plotly.graph_objects as go
+    from plotly.subplots import make_subplots
+
+    ok = runs.filter(pl.col("status") == "ok").sort("date", "origin", "run", nulls_last=False)
+    labels = [f"{d} {r}" for d, r in zip(ok["date"].cast(pl.String).to_list(),
+                                         ok["run"].to_list(), strict=True)]
+    fig = make_subplots(rows=3, cols=1, shared_xaxes=True, vertical_spacing=0.07,
+                        subplot_titles=("missing frames", "error frames", "max bus load"))
+    fig.add_trace(go.Scatter(x=labels, y=ok["missing"].to_list(), mode="lines+markers",
+                             name="missing", line={"color": "#5b7a8c"}), row=1, col=1)
+    flagged = ok.filter(pl.col("regressions") > 0)
+    if not flagged.is_empty():
+        fig.add_trace(go.Scatter(
+            x=[f"{d} {r}" for d, r in zip(flagged["date"].cast(pl.String).to_list(),
+                                          flagged["run"].to_list(), strict=True)],
+            y=flagged["missing"].to_list(), mode="markers", name="regression flagged",
+            marker={"color": "#b5651d", "size": 11, "symbol": "diamond"}), row=1, col=1)
+    fig.add_trace(go.Scatter(x=labels, y=ok["errors"].to_list(), mode="lines+markers",
+                             name="errors", line={"color": "#8c7b5b"}), row=2, col=1)
+    fig.add_trace(go.Scatter(x=labels, y=ok["max_load_ratio"].to_list(), mode="lines+markers",
+                             name="max load", line={"color": "#6b8c5b"}), row=3, col=1)
+    fig.update_yaxes(tickformat=".0%", row=3, col=1)
+    fig.update_layout(height=520, margin={"l": 50, "r": 20, "t": 40, "b": 40},
+                      paper_bgcolor="#ffffff", plot_bgcolor="#fafaf8", showlegend=False,
+                      font={"family": "system-ui, sans-serif", "size": 12, "color": "#26292c"})
+    div_id = "trend-" + "".join(ch if ch.isalnum() else "-" for ch in vehicle)
+    return fig.to_html(full_html=False, include_plotlyjs=False, div_id=div_id)
+
+
+def write_index(fleet: Path, runs: pl.DataFrame, flags: pl.DataFrame) -> Path:
+    """Write FLEET/index.html (and plotly.js once beside it)."""
+    import plotly.offline
+
+    script = fleet / PLOTLY_FILE
+    if not script.exists():
+        js = plotly.offline.get_plotlyjs()
+        layout.replace_atomically(script, lambda tmp: tmp.write_text(js, encoding="utf-8"))
+    ordered = runs.sort("vehicle", "date", "origin", "run", nulls_last=False)
+    failed = ordered.filter(pl.col("status") != "ok").height
+    charts = []
+    for vehicle in ordered["vehicle"].unique(maintain_order=True).to_list():  # a few vehicles
+        mine = ordered.filter(pl.col("vehicle") == vehicle)
+        charts.append(f"<h2>Vehicle {html.escape(vehicle)}: trend over runs</h2>"
+                      f'<div class="chart">{_trend_chart(vehicle, mine, flags)}</div>')
+    page = f"""<!doctype html>
+<html lang="en"><head><meta charset="utf-8"><title>tracelab fleet</title>
+<style>{_STYLE}</style><script src="{PLOTLY_FILE}"></script></head>
+<body><header><h1>Fleet overview</h1>
+<div class="muted">{ordered.height} runs, {failed} failed, {flags.height} regression flags</div>
+</header><main>
+<h2>Regression flags</h2>{_flags_table(flags)}
+<h2>Runs</h2>{_runs_table(ordered)}
+{''.join(charts)}
+</main></body></html>
+"""
+    return layout.replace_atomically(fleet / layout.INDEX_FILE,
+                                     lambda tmp: tmp.write_text(page, encoding="utf-8"))
