@@ -74,4 +74,10 @@ def demo(output: Path, quiet: bool = False) -> str:
 def batch(root: Path, fleet: Path, catalog: Path | None = None, executor: str = "local",
           scheduler: str | None = None, workers: int | None = None, previous: int = 5,
           quiet: bool = False) -> Any:
-    raise NotImplementedError("batch")
+    # The fleet layer sits below this module, so the per-run steps are handed down to it.
+    from tracelab.fleet.batch import run_batch
+    from tracelab.fleet.job import PipelineSteps
+
+    steps = PipelineSteps(ingest=ingest, timing=timing, load=load, faults=faults, report=report)
+    return run_batch(root, fleet, steps, catalog=catalog, executor=executor,
+                     scheduler=scheduler, workers=workers, previous=previous, quiet=quiet)
