@@ -409,9 +409,9 @@ def _suggest(rejects: pl.DataFrame, header: LogHeader) -> pl.DataFrame:
 class LogReader:
     """Read one log: ``header`` on construction, then ``chunks()`` in line order."""
 
-    def __init__(self, path: str | Path, chunk_bytes: int = CHUNK_BYTES) -> None:
+    def __init__(self, path: str | Path, chunk_bytes: int | None = None) -> None:
         self.path = Path(path)
-        self.chunk_bytes = chunk_bytes
+        self.chunk_bytes = chunk_bytes or CHUNK_BYTES
         self._stream, self._raw = _open(self.path)
         try:
             self.header, self.header_lines, self._first = _read_header(self.path, self._stream)
