@@ -36,17 +36,75 @@ def simulate(scenario: Path, output: Path, duration: str | None = None, seed: in
 # --- timing / load / sql ------------------------------------------------------------------
 
 
+def _check_run(ds: Any, run: str | None) -> None:
+    """UsageError naming the dataset's runs when ``run`` is not one of them."""
+    from tracelab.errors import UsageError, did_you_mean
+
+    if run is not None and run not in (runs := ds.runs()):
+        raise UsageError(f"{ds.path}: no run {run!r}{did_you_mean(run, runs)} "
+                         f"(runs: {', '.join(runs) or 'none'})")
+
+
+def _store(ds: Any, name: str, frame: Any, run: str | None) -> None:
+    """Write an analysis; with --run, keep the other runs' rows of an earlier output."""
+    import contextlib
+
+    import polars as pl
+
+    if run is not None and (old := ds.read_analysis(name)) is not None and "run" in old.columns:
+        # an output of an older layout cannot be merged: then it is replaced
+        with contextlib.suppress(pl.exceptions.PolarsError):
+            frame = pl.concat([old.filter(pl.col("run") != run), frame], how="vertical_relaxed")
+    ds.write_analysis(name, frame)
+
+
 def timing(dataset: Path, catalog: Path | None = None, run: str | None = None,
            gap_factor: float = 1.5) -> Any:
-    raise NotImplementedError("timing")
+    from tracelab.analyses.timing import timing as compute_timing
+    from tracelab.network.catalog import load_catalog
+    from tracelab.store.dataset import open_dataset
+
+    ds = open_dataset(dataset)
+    cat = load_catalog(catalog) if catalog is not None else None
+    _check_run(ds, run)
+    con = ds.connect()
+    try:
+        result = compute_timing(con, cat, run=run, gap_factor=gap_factor)
+    finally:
+        con.close()
+    _store(ds, "timing", result.timing, run)
+    _store(ds, "gaps", result.gaps, run)
+    _store(ds, "node_drift", result.node_drift, run)
+    return result
 
 
 def load(dataset: Path, window: str = "100ms", run: str | None = None) -> Any:
-    raise NotImplementedError("load")
+    from tracelab.analyses.load import bus_load
+    from tracelab.errors import UsageError
+    from tracelab.network.catalog import parse_duration_ns
+    from tracelab.store.dataset import open_dataset
+
+    try:
+        window_ns = parse_duration_ns(window)
+    except ValueError as error:
+        raise UsageError(f"--window: {error}") from None
+    ds = open_dataset(dataset)
+    _check_run(ds, run)
+    con = ds.connect()
+    try:
+        result = bus_load(con, window_ns=window_ns, run=run)
+    finally:
+        con.close()
+    _store(ds, "load", result.windows, run)
+    _store(ds, "load_summary", result.summary, run)
+    _store(ds, "load_top_ids", result.top_ids, run)
+    return result
 
 
 def sql(dataset: Path, query: str | None, fmt: str = "table", out: Path | None = None) -> None:
-    raise NotImplementedError("sql")
+    from tracelab.query import sql_command
+
+    sql_command(dataset, query, fmt=fmt, out=out)
 
 
 # --- forensics ----------------------------------------------------------------------------

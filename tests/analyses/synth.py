@@ -66,3 +66,53 @@ def errors_table(t_ns: Sequence[int], field: str | Sequence[str], bus: str = "P"
         "field": fields, "id": [0x123] * n, "ext": [ext] * n, "form": ["s"] * n,
         "by": [None] * n, "file": ["synthetic.frames"] * n, "line": list(range(1, n + 1)),
     }, schema=schema.ERRORS)
+
+
+def write_demo_log(path, run: str = "bench-07", seconds: int = 4, seed: int = 3):  # type: ignore[no-untyped-def]
+    """A small frame log: two periodic messages (one with a 3-frame silence), an event-driven
+    one, a logger loss and two bus errors; returns the path."""
+    from tracelab.format.writer import (
+        BusDecl,
+        LogHeader,
+        LogWriter,
+        error_line,
+        frame_line,
+        loss_line,
+        mark_line,
+    )
+
+    rng = np.random.default_rng(seed)
+    header = LogHeader(buses=[BusDecl("P", 500_000)], origin="2026-03-01T08:00:00Z",
+                       meta={"run": run})
+    records: list[tuple[int, str]] = []
+    for frame_id, period in ((0x0C0, 10_000_000), (0x18FF0010, 100_000_000)):
+        ext = frame_id > 0x7FF
+        for k in range(seconds * 1_000_000_000 // period):
+            if frame_id == 0x0C0 and k in (150, 151, 152):
+                continue  # silent sender
+            t = 1_000_000 + k * period + int(rng.integers(0, 20_000))
+            records.append((t, frame_line(t, "P", frame_id, ext, False, False, False, False, 8,
+                                          bytes(8))))
+    for t in np.sort(rng.integers(0, seconds * 1_000_000_000, 40)):
+        records.append((int(t), frame_line(int(t), "P", 0x3A0, False, False, False, False,
+                                           False, 2, b"\x01\x02")))
+    records.append((2_500_000_000, loss_line(2_500_000_000, "P", 12, 2_530_000_000)))
+    records.append((3_000_000_000, error_line(3_000_000_000, "P", "crc", "crc", 0x0C0, False,
+                                              "s", None)))
+    records.append((3_100_000_000, mark_line(3_100_000_000, "P", "door opened")))
+    records.sort(key=lambda r: r[0])
+    # the logger really lost the 0C0 frames inside the loss interval
+    records = [r for r in records if not (2_500_000_000 < r[0] < 2_530_000_000
+                                          and "\t0C0\t" in r[1])]
+    with LogWriter(path, header) as writer:
+        writer.lines([line for _, line in records])
+    return path
+
+
+def make_dataset(tmp_path):  # type: ignore[no-untyped-def]
+    """Ingest write_demo_log() into tmp_path/ds and return the dataset path."""
+    from tracelab.store.ingest import ingest_logs
+
+    log = write_demo_log(tmp_path / "bench-07.frames")
+    ingest_logs([log], tmp_path / "ds", quiet=True)
+    return tmp_path / "ds"

@@ -75,3 +75,24 @@ def query_scalar(con: duckdb.DuckDBPyConnection, sql: str,
     """The first column of the first row of one query (None when it returns no rows)."""
     rows = con.sql(sql, params=params or None).fetchall()
     return rows[0][0] if rows else None
+
+
+def text_table(frame: pl.DataFrame, max_rows: int = 200) -> str:
+    """A plain readable table for describe() output (markdown-like, no dtypes)."""
+    with pl.Config(tbl_rows=max_rows, tbl_cols=-1, tbl_width_chars=1000,
+                   tbl_formatting="ASCII_MARKDOWN", tbl_hide_column_data_types=True,
+                   tbl_hide_dataframe_shape=True, fmt_str_lengths=40):
+        text = str(frame)
+    if frame.height > max_rows:
+        text += f"\n... {frame.height - max_rows} more rows (see the parquet output)"
+    return text
+
+
+def hex_id_expr() -> pl.Expr:
+    """The identifier as the frame log writes it (3 or 8 hex digits); for describe() tables
+    (one row per message, so the per-row formatting is cheap)."""
+    return (pl.when(pl.col("ext"))
+            .then(pl.col("id").cast(pl.Int64).map_elements(lambda v: f"{v:08X}",
+                                                            return_dtype=pl.String))
+            .otherwise(pl.col("id").cast(pl.Int64).map_elements(lambda v: f"{v:03X}",
+                                                                 return_dtype=pl.String)))

@@ -7,11 +7,20 @@ docs/analyses.md); this module runs the steps and returns polars frames.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 import duckdb
 import polars as pl
 
-from tracelab.analyses import install_macros, query_frame, query_scalar, run_sql, run_sql_frame
+from tracelab.analyses import (
+    hex_id_expr,
+    install_macros,
+    query_frame,
+    query_scalar,
+    run_sql,
+    run_sql_frame,
+    text_table,
+)
 from tracelab.errors import UsageError
 
 MIN_WINDOW_NS = 1_000_000             # 1 ms
@@ -26,6 +35,25 @@ class LoadResult:
     windows: pl.DataFrame   # one row per (run, bus, window): load.parquet
     summary: pl.DataFrame   # one row per (run, bus): load_summary.parquet
     top_ids: pl.DataFrame   # the identifiers with the largest busy share per (run, bus)
+
+    def as_json(self) -> list[dict[str, Any]]:
+        """One object per (run, bus): the load_summary columns (ratios in 0..1)."""
+        return self.summary.to_dicts()
+
+    def describe(self) -> str:
+        if self.summary.is_empty():
+            return "load: no frames"
+        pct = [(pl.col(c) * 100).round(2).alias(f"{c}_%") for c in
+               ("mean", "p50", "p95", "p99", "max")]
+        view = self.summary.select(
+            "run", "bus", (pl.col("window_ns") / 1e6).alias("window_ms"), *pct,
+            (pl.col("max_t_ns") / 1e9).round(3).alias("max_at_s"),
+            pl.col("frames_per_s").round(1), "frames", "error_frames")
+        top = self.top_ids.filter(pl.col("rank") <= 5).select(
+            "run", "bus", "rank", hex_id_expr().alias("id"), "frames",
+            (pl.col("share") * 100).round(2).alias("share_%"))
+        return "\n".join(["bus load per window:", text_table(view), "",
+                          "top identifiers by share of busy time:", text_table(top)])
 
 
 def check_window(window_ns: int) -> None:

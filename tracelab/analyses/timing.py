@@ -8,11 +8,19 @@ steps and returns polars frames.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 import duckdb
 import polars as pl
 
-from tracelab.analyses import install_macros, query_frame, run_sql, run_sql_frame
+from tracelab.analyses import (
+    hex_id_expr,
+    install_macros,
+    query_frame,
+    run_sql,
+    run_sql_frame,
+    text_table,
+)
 from tracelab.errors import UsageError
 from tracelab.network.catalog import Catalog
 
@@ -36,6 +44,42 @@ class TimingResult:
     node_drift: pl.DataFrame   # per (run, node): median drift over its catalogued messages
     unseen: pl.DataFrame       # catalog messages never seen in a run
     unknown: pl.DataFrame      # identifiers seen but not in the catalog
+
+    def as_json(self) -> list[dict[str, Any]]:
+        """One object per (run, bus, id, ext) with exactly the timing.parquet columns."""
+        return self.timing.select(TIMING_COLUMNS).to_dicts()
+
+    def describe(self) -> str:
+        """The timing table in readable units (ms, us), then gaps and catalog coverage."""
+        if self.timing.is_empty():
+            return "timing: no frames"
+        us = 1e3
+        view = self.timing.select(
+            "run", "bus", hex_id_expr().alias("id"), pl.col("name").fill_null(""),
+            pl.col("sender").fill_null(""), "count",
+            (pl.col("period_ns") / 1e6).round(3).alias("period_ms"),
+            pl.col("period_source").fill_null("event").alias("source"),
+            (pl.col("cycle_std_ns") / us).round(1).alias("cycle_std_us"),
+            (pl.col("cycle_max_abs_ns") / us).round(1).alias("cycle_max_us"),
+            (pl.col("phase_std_ns") / us).round(1).alias("phase_std_us"),
+            pl.col("drift_ppm").round(1), "gaps", "missing", "missing_in_loss", "bursts")
+        lines = [f"timing: {self.timing.height} messages, "
+                 f"{int(self.timing['gaps'].fill_null(0).sum())} gaps, "
+                 f"{int(self.timing['missing'].fill_null(0).sum())} missing frames "
+                 f"(+{int(self.timing['missing_in_loss'].fill_null(0).sum())} in logger losses)",
+                 text_table(view)]
+        if not self.node_drift.is_empty():
+            lines += ["", "clock drift per sender (median over its messages):",
+                      text_table(self.node_drift.with_columns(
+                          pl.col("drift_ppm", "min_drift_ppm", "max_drift_ppm").round(2)))]
+        if not self.unknown.is_empty():
+            lines += ["", f"not in the catalog: {self.unknown.height} identifiers",
+                      text_table(self.unknown.with_columns(hex_id_expr().alias("id")))]
+        if not self.unseen.is_empty():
+            lines += ["", f"in the catalog, never seen: {self.unseen.height} messages",
+                      text_table(self.unseen.select("run", "bus", hex_id_expr().alias("id"),
+                                                    "name", "sender"))]
+        return "\n".join(lines)
 
 
 def _catalog_frame(catalog: Catalog | None) -> pl.DataFrame:
