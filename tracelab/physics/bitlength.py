@@ -17,6 +17,7 @@ from functools import cache
 
 import numpy as np
 import polars as pl
+import pyarrow as pa
 
 from tracelab.physics import crc as crcmod
 
@@ -245,6 +246,8 @@ def _columns(frames: pl.DataFrame) -> _Columns:
     arr = frames["data"].cast(pl.Binary).to_arrow()
     if hasattr(arr, "combine_chunks"):
         arr = arr.combine_chunks()
+    if arr.type != pa.large_binary():  # int64 offsets, whatever the producer used
+        arr = arr.cast(pa.large_binary())
     bufs = arr.buffers()
     offsets = np.frombuffer(bufs[1], dtype=np.int64)[arr.offset: arr.offset + len(arr) + 1]
     values = (np.frombuffer(bufs[2], dtype=np.uint8) if bufs[2] is not None
@@ -325,37 +328,33 @@ def _group_bitwise(cols: _Columns, idx: np.ndarray, fd: bool, ext: bool, n_bytes
     m = len(idx)
     hw = header_bits(fd, ext)
     hv = _header_values(cols, idx, fd, ext)
-    shifts = np.arange(hw - 1, -1, -1, dtype=np.int64)
-    hdr = ((hv[:, None] >> shifts) & 1).astype(np.int8)
-    data = np.unpackbits(_data_matrix(cols, idx, n_bytes), axis=1).astype(np.int8)
-    src = np.concatenate([hdr, data], axis=1)
+    src = [((hv >> (hw - 1 - j)) & 1).astype(np.int16) for j in range(hw)]
+    for byte in _data_columns(cols, idx, n_bytes):  # bytes of a frame, not frames
+        src += [((byte >> (7 - j)) & 1).astype(np.int16) for j in range(8)]
     if not fd:
-        crc = np.zeros(m, dtype=np.int64)
-        for j in range(src.shape[1]):  # bit positions, not frames
-            feedback = src[:, j] ^ ((crc >> 14) & 1)
-            crc = ((crc << 1) & 0x7FFF) ^ (feedback * crcmod.CRC15_POLY)
-        crc_shifts = np.arange(CLASSIC_CRC_BITS - 1, -1, -1, dtype=np.int64)
-        src = np.concatenate([src, ((crc[:, None] >> crc_shifts) & 1).astype(np.int8)], axis=1)
-    last = np.full(m, -1, dtype=np.int8)
-    run = np.zeros(m, dtype=np.int8)
-    dyn = np.zeros(m, dtype=np.int64)
-    fast_dyn = np.zeros(m, dtype=np.int64)
-    n_src = src.shape[1]
+        crc = np.zeros(m, dtype=np.int16)
+        for bit in src:  # bit positions, not frames
+            feedback = bit ^ (crc >> 14)
+            crc = ((crc << 1) & 0x7FFF) ^ (feedback * np.int16(crcmod.CRC15_POLY))
+        src += [(crc >> (CLASSIC_CRC_BITS - 1 - j)) & 1 for j in range(CLASSIC_CRC_BITS)]
+    last = np.full(m, -1, dtype=np.int16)
+    run = np.zeros(m, dtype=np.int16)
+    dyn = np.zeros(m, dtype=np.int16)
+    fast_dyn = np.zeros(m, dtype=np.int16)
+    n_src = len(src)
     switch_at = brs_index(ext) if fd else n_src
-    for j in range(n_src):  # bit positions, not frames
-        bit = src[:, j]
-        run = np.where(bit == last, run + 1, 1).astype(np.int8)
-        last = bit
+    for j, bit in enumerate(src):  # bit positions, not frames
+        run = run * (bit == last) + 1  # same bit: run + 1, else a new run of 1
         if fd and j == n_src - 1:
             break  # no dynamic stuff bit right before the stuff count
-        stuffed = run == STUFF_RUN
+        stuffed = (run == STUFF_RUN).astype(np.int16)
         dyn += stuffed
         if j >= switch_at:
             fast_dyn += stuffed
-        last = np.where(stuffed, 1 - bit, bit).astype(np.int8)
-        run = np.where(stuffed, 1, run).astype(np.int8)
+        last = bit ^ stuffed  # after a stuff bit the complement is the last bit
+        run -= (STUFF_RUN - 1) * stuffed  # the stuff bit starts a run of 1
     if not fd:
-        return n_src + dyn + TRAILER_BITS, np.zeros(m, dtype=np.int64)
+        return n_src + dyn + TRAILER_BITS, np.zeros(m, dtype=np.int16)
     fixed = _fd_fixed_part(n_bytes)
     bits = n_src + dyn + fixed + TRAILER_BITS
     after_brs = hw - switch_at - 1 + 8 * n_bytes
