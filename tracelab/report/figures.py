@@ -294,12 +294,13 @@ def counters_figure(counters: pl.DataFrame, states: pl.DataFrame, t0_ns: int, t1
         bounds = (0, 96, 128, 256, top)
         for state, lo, hi in zip(STATE_ORDER, bounds[:-1], bounds[1:], strict=True):
             fig.add_hrect(y0=lo, y1=hi, fillcolor=style.STATE_COLOURS[state], opacity=0.28,
-                          line_width=0, layer="below", row=row_index, col=1)
+                          line_width=0, layer="below", row=row_index, col=1,
+                          exclude_empty_subplots=False)
         for level, text in COUNTER_LEVELS:
             fig.add_hline(y=level, line={"color": style.RULE, "width": 1, "dash": "dot"},
                           annotation_text=text, annotation_position="top right",
                           annotation_font_size=9, annotation_font_color=style.MUTED,
-                          row=row_index, col=1)
+                          row=row_index, col=1, exclude_empty_subplots=False)
     for index, key in enumerate(nodes):  # one trace pair per node: a handful
         part = counters.filter((pl.col("bus") == key[0]) & (pl.col("node") == key[1])) \
             if not counters.is_empty() else pl.DataFrame()

@@ -43,40 +43,47 @@ def _bps(value: Any) -> str:
 
 
 def _confidence(value: Any) -> str:
+    """A probability as a percentage; other values as given (plain text)."""
     if isinstance(value, int | float):
         return f"{value:.0%}" if value <= 1 else f"{value:g}"
-    return esc(value)
+    return "-" if value is None else str(value)
 
 
 def _results(data: ReportData) -> list[dict[str, Any]]:
     return list((data.faults or {}).get("results", []) or [])
 
 
-def verdict(data: ReportData) -> tuple[str, str]:
-    """The one-sentence verdict (already HTML-escaped) and its tone: ok / bad / unknown."""
-    results = _results(data)
-    if data.faults is None:
-        errors = data.header.get("errors", 0)
+def verdict_sentence(faults: dict[str, Any] | None, errors: int = 0) -> tuple[str, str]:
+    """The verdict in one plain-text sentence, and its tone: ok / bad / unknown.
+
+    ``faults`` is the faults.json object (None when the replay has not run)."""
+    if faults is None:
         if not errors:
             return ("No error frames in this run; fault-confinement replay not run "
                     "(give a catalog to replay the counters).", "unknown")
-        return (f"{errors} error frames; fault-confinement replay not run "
+        return (f"{errors:,} error frames; fault-confinement replay not run "
                 "(give a catalog to name the node that degraded first).", "unknown")
-    degraded = [r for r in results if r.get("first_degraded")]
+    degraded = [r for r in faults.get("results", []) or [] if r.get("first_degraded")]
     if not degraded:
         return "Clean run: no node left error-active.", "ok"
     first = min(degraded, key=lambda r: r["first_degraded"].get("t_ns") or 0)
     fd = first["first_degraded"]
     when = _secs(fd.get("t_ns"))
     if fd.get("wall_time"):
-        when += f" ({esc(fd['wall_time'])})"
+        when += f" ({fd['wall_time']})"
     cause = (first.get("cause") or {}).get("kind")
-    text = (f"{esc(fd.get('node'))} on bus {esc(first.get('bus'))} degraded first: reached "
-            f"{esc(STATE_WORDS.get(fd.get('state'), fd.get('state')))} at {when}, confidence "
-            f"{_confidence(fd.get('confidence'))}")
+    state = STATE_WORDS.get(fd.get("state"), fd.get("state"))
+    text = (f"{fd.get('node')} on bus {first.get('bus')} degraded first: reached {state} at "
+            f"{when}, confidence {_confidence(fd.get('confidence'))}")
     if cause:
-        text += f"; most likely cause: {esc(cause)}"
+        text += f"; most likely cause: {cause}"
     return text + ".", "bad"
+
+
+def verdict(data: ReportData) -> tuple[str, str]:
+    """The verdict sentence HTML-escaped, and its tone."""
+    text, tone = verdict_sentence(data.faults, int(data.header.get("errors", 0) or 0))
+    return esc(text), tone
 
 
 def _facts(items: list[tuple[str, str]]) -> str:
@@ -142,7 +149,7 @@ def verdict_section(data: ReportData) -> str:
             parts.append(_facts([
                 ("first degraded node", f"<b>{esc(fd.get('node'))}</b>"),
                 ("state reached", esc(fd.get("state"))), ("when", when),
-                ("confidence", _confidence(fd.get("confidence"))),
+                ("confidence", esc(_confidence(fd.get("confidence")))),
                 ("cause", esc(" ".join(str(v) for v in (result.get("cause") or {}).values()
                                        if v))),
             ]))
@@ -151,11 +158,11 @@ def verdict_section(data: ReportData) -> str:
         if len(hypotheses) > 1:
             runner = hypotheses[1]
             parts.append(f"<p>Runner-up hypothesis: <b>{esc(runner.get('name'))}</b> (score "
-                         f"{_confidence(runner.get('score'))}): {esc(runner.get('why'))}</p>")
+                         f"{esc(_confidence(runner.get('score')))}): {esc(runner.get('why'))}</p>")
         if hypotheses:
             rows = "".join(
                 f"<tr><td>{'best' if i == 0 else 'runner-up' if i == 1 else ''}</td>"
-                f"<td>{esc(h.get('name'))}</td><td class='num'>{_confidence(h.get('score'))}</td>"
+                f"<td>{esc(h.get('name'))}</td><td class='num'>{esc(_confidence(h.get('score')))}</td>"
                 f"<td>{esc(h.get('why'))}</td></tr>" for i, h in enumerate(hypotheses[:4]))
             parts.append("<h3>hypotheses</h3><table><thead><tr><th></th><th>hypothesis</th>"
                          f"<th class='num'>score</th><th>why</th></tr></thead>{rows}</table>")

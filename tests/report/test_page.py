@@ -1,0 +1,104 @@
+"""The report page: section order, escaping, plotly.js once, size, and the report job."""
+
+from __future__ import annotations
+
+import json
+import re
+from pathlib import Path
+
+import pytest
+
+from tests.report.synthetic import FAULTS, RUN, SCRIPT_MARK, build_dataset
+from tracelab import workflow
+from tracelab.errors import UsageError
+from tracelab.report.page import PLOTLY_FILE, verdict_sentence
+
+SECTIONS = ("header", "verdict", "load", "timing", "gaps", "errors", "quality", "caution")
+
+
+@pytest.fixture(scope="module")
+def dataset(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    return build_dataset(tmp_path_factory.mktemp("report") / "ds", duration_s=60.0)
+
+
+@pytest.fixture(scope="module")
+def page(dataset: Path, tmp_path_factory: pytest.TempPathFactory) -> str:
+    out = tmp_path_factory.mktemp("html") / "run.html"
+    (path,) = workflow.report(dataset, out, load_limit=0.4)
+    assert path == out
+    return out.read_text(encoding="utf-8")
+
+
+def _figures(page: str) -> dict:
+    raw = re.search(r'<script type="application/json" id="tl-figures">(.*?)</script>', page,
+                    re.S)
+    assert raw
+    return json.loads(raw.group(1))
+
+
+def test_sections_come_in_the_agreed_order(page: str) -> None:
+    positions = [page.index(f'id="{s}"') for s in SECTIONS]
+    assert positions == sorted(positions)
+    assert "do not replace, the engineer's judgement and the applicable functional-safety" \
+        in page
+
+
+def test_log_strings_are_escaped_everywhere(page: str) -> None:
+    assert SCRIPT_MARK not in page
+    assert "<script>window.__tl_injected" not in page
+    assert "&lt;i&gt;night shift&lt;/i&gt;" in page  # %meta value
+    assert "&lt;b&gt;bad&lt;/b&gt;" in page  # rejected raw line
+    assert "&lt;b&gt;vcu&lt;/b&gt;" in page  # hypothesis name from faults.json
+    # the mark reaches Plotly as entity-escaped text, inside JSON that cannot end a script
+    figures = _figures(page)
+    texts = [a.get("text") for a in figures["fig-load"]["figure"]["layout"]["annotations"]]
+    assert any(t and t.startswith("&lt;script&gt;window.__tl_") for t in texts)
+
+
+def test_every_figure_is_embedded_and_time_axes_share_the_run_span(page: str) -> None:
+    figures = _figures(page)
+    assert set(figures) == {"fig-load", "fig-deviation", "fig-drift", "fig-gaps", "fig-errors",
+                            "fig-counters"}
+    timed = [f for f in figures.values() if f["time"]]
+    assert len(timed) == 4
+    for fig in timed:
+        assert fig["figure"]["layout"]["xaxis"]["range"] == [0.0, 60.0]
+    assert all(f["figure"]["data"] for f in figures.values())
+
+
+def test_plotly_is_embedded_once_and_the_page_is_small(page: str) -> None:
+    assert page.count("<script src=") == 0
+    assert page.count("Plotly.newPlot") == 1  # our loop, once
+    assert len(page.encode()) < 10_000_000
+
+
+def test_shared_plotly_writes_the_bundle_once_beside_the_reports(dataset: Path,
+                                                               tmp_path: Path) -> None:
+    (first,) = workflow.report(dataset, tmp_path / "a.html", shared_plotly=True)
+    bundle = tmp_path / PLOTLY_FILE
+    stamp = bundle.stat().st_mtime_ns
+    workflow.report(dataset, tmp_path / "b.html", shared_plotly=True)
+    assert bundle.stat().st_mtime_ns == stamp
+    text = first.read_text(encoding="utf-8")
+    assert f'<script src="{PLOTLY_FILE}"></script>' in text
+    assert len(text.encode()) < bundle.stat().st_size / 4
+
+
+def test_report_job_refuses_unknown_runs_and_bad_limits(dataset: Path, tmp_path: Path) -> None:
+    with pytest.raises(UsageError, match="no run 'synthetic-rnu'; did you mean 'synthetic-run'"):
+        workflow.report(dataset, tmp_path / "x.html", run="synthetic-rnu")
+    with pytest.raises(UsageError, match="--load-limit"):
+        workflow.report(dataset, tmp_path / "x.html", load_limit=50)
+    (path,) = workflow.report(dataset, tmp_path / "dir", run=RUN)
+    assert path == tmp_path / "dir" / f"{RUN}.html"
+
+
+def test_verdict_sentence() -> None:
+    text, tone = verdict_sentence(FAULTS)
+    assert tone == "bad"
+    assert text == ("bcm on bus body degraded first: reached error-passive at 40.640 s "
+                    "(2026-03-01T08:00:40.640Z), confidence 86%; most likely cause: "
+                    "transmitter fault.")
+    assert verdict_sentence({"results": [{"bus": "a", "first_degraded": None}]}) == (
+        "Clean run: no node left error-active.", "ok")
+    assert verdict_sentence(None, errors=3)[1] == "unknown"
