@@ -79,6 +79,7 @@ def write_demo_log(path, run: str = "bench-07", seconds: int = 4, seed: int = 3)
         frame_line,
         loss_line,
         mark_line,
+        status_line,
     )
 
     rng = np.random.default_rng(seed)
@@ -100,6 +101,8 @@ def write_demo_log(path, run: str = "bench-07", seconds: int = 4, seed: int = 3)
     records.append((3_000_000_000, error_line(3_000_000_000, "P", "crc", "crc", 0x0C0, False,
                                               "s", None)))
     records.append((3_100_000_000, mark_line(3_100_000_000, "P", "door opened")))
+    records.append((3_200_000_000, status_line(3_200_000_000, "P", "vcu", 96, 0)))
+    records.append((3_300_000_000, status_line(3_300_000_000, "P", "vcu", 136, 0)))
     records.sort(key=lambda r: r[0])
     # the logger really lost the 0C0 frames inside the loss interval
     records = [r for r in records if not (2_500_000_000 < r[0] < 2_530_000_000

@@ -1,0 +1,47 @@
+"""Bench: `tracelab load --window 100ms` end to end vs a bare DuckDB sum-per-window query on
+the same dataset. Target: ratio <= 2.
+
+    .venv/bin/python bench/load.py --frames 20000000
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
+
+from bench._dataset import write_dataset  # noqa: E402
+from tracelab import workflow  # noqa: E402
+from tracelab.store.dataset import open_dataset  # noqa: E402
+
+BARE = """
+SELECT run, bus, start_ns // 100000000 AS k, sum(duration_ns) AS busy_ns, count(*) AS frames
+FROM frames GROUP BY run, bus, k
+"""
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__)
+    parser.add_argument("--frames", type=int, default=2_000_000)
+    args = parser.parse_args()
+    with tempfile.TemporaryDirectory() as tmp:
+        ds = write_dataset(Path(tmp) / "ds", args.frames)
+        con = open_dataset(ds).connect()
+        t0 = time.perf_counter()
+        rows = con.sql(BARE).fetchall()
+        bare_s = time.perf_counter() - t0
+        con.close()
+        t0 = time.perf_counter()
+        result = workflow.load(ds, "100ms")
+        load_s = time.perf_counter() - t0
+        assert abs(result.windows.height - len(rows)) <= 2 * result.summary.height
+        print(f"bare sum-per-window query: {bare_s:.2f} s   load end to end: {load_s:.2f} s   "
+              f"ratio {load_s / bare_s:.2f} (target <= 2)")
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,49 @@
+"""Bench: `tracelab timing` end to end vs a bare DuckDB LAG query (count, median, p99 of the
+inter-arrival per (bus, id)) on the same dataset. Target: ratio <= 2.
+
+    .venv/bin/python bench/timing.py --frames 20000000
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
+
+from bench._dataset import write_dataset  # noqa: E402
+from tracelab import workflow  # noqa: E402
+from tracelab.store.dataset import open_dataset  # noqa: E402
+
+BARE = """
+SELECT bus, id, count(*) AS n, median(dt) AS median_ns, quantile_cont(dt, 0.99) AS p99_ns
+FROM (SELECT bus, id, t_ns - lag(t_ns) OVER (PARTITION BY bus, id ORDER BY t_ns) AS dt
+      FROM frames)
+GROUP BY bus, id
+"""
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__)
+    parser.add_argument("--frames", type=int, default=2_000_000)
+    args = parser.parse_args()
+    with tempfile.TemporaryDirectory() as tmp:
+        ds = write_dataset(Path(tmp) / "ds", args.frames)
+        con = open_dataset(ds).connect()
+        t0 = time.perf_counter()
+        rows = con.sql(BARE).fetchall()
+        bare_s = time.perf_counter() - t0
+        con.close()
+        t0 = time.perf_counter()
+        result = workflow.timing(ds)
+        timing_s = time.perf_counter() - t0
+        assert result.timing.height == len(rows)
+        print(f"bare LAG query: {bare_s:.2f} s   timing end to end: {timing_s:.2f} s   "
+              f"ratio {timing_s / bare_s:.2f} (target <= 2)")
+
+
+if __name__ == "__main__":
+    main()
