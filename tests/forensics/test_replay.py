@@ -1,0 +1,92 @@
+"""Event-driven replay against a frame-by-frame application of the same rules.
+
+source of the rules: ISO 11898-1:2015 clause 12.1.4 (fault confinement); the reference in
+tests/forensics/synth.py applies them at every frame, the replay only at error events.
+"""
+
+from __future__ import annotations
+
+import pytest
+
+from tests.forensics import synth
+from tracelab.forensics import replay_faults
+from tracelab.forensics.replay import load_bus_evidence, recovery_end_ns, replay_node
+from tracelab.physics.confinement import DEFAULT_CONFIG
+
+
+def _strip_recovery(transitions: list[dict]) -> list[tuple]:
+    """Transitions without the exact time of bus-off recovery (compared separately)."""
+    return [(tr["from"], tr["to"]) if tr["from"] == "bus-off" else
+            (tr["t_ns"], tr["from"], tr["to"]) for tr in transitions]
+
+
+@pytest.mark.parametrize("fault,p,seed", [("tx", 0.6, 1), ("tx", 0.3, 2), ("rx", 0.4, 3),
+                                          ("rx", 0.2, 4), ("ack", 1.0, 5), ("bus", 0.3, 6),
+                                          ("bus", 0.15, 7)])
+def test_attributed_replay_equals_frame_by_frame_reference(fault: str, p: float,
+                                                           seed: int) -> None:
+    s = synth.generate(5000, fault=fault, culprit="bravo", p=p, seed=seed, fault_from_slot=300)
+    result = replay_faults(s.connect(), synth.catalog()).as_json()["results"][0]
+    assert any(s.transitions.values())  # the scenario does degrade someone
+    for node in result["nodes"]:
+        truth = s.transitions[node["node"]]
+        assert _strip_recovery(node["transitions"]) == _strip_recovery(truth), node["node"]
+        assert node["max_tec"] == s.max_tec[node["node"]]
+
+
+def test_lone_node_without_ack_stays_error_passive_at_128() -> None:
+    # source: ISO 11898-1 rule c exception 1: TEC stops at 128, the node never goes bus-off
+    s = synth.generate(2000, fault="ack", culprit="delta", seed=1)
+    result = replay_faults(s.connect(), synth.catalog()).as_json()["results"][0]
+    delta = next(n for n in result["nodes"] if n["node"] == "delta")
+    assert delta["max_tec"] == 128 and delta["bus_off"] == []
+    assert [tr["to"] for tr in delta["transitions"]] == ["warning", "error-passive"]
+    acks = [e["t_ns"] for e in s.errors]
+    assert delta["transitions"][1]["t_ns"] == acks[15]  # the 16th attempt
+
+
+def test_persistent_transmit_error_bus_off_at_32nd_and_recovery_takes_1408_bits() -> None:
+    # source: ISO 11898-1 rules c, j, l: bus-off after 32 errors, then 128 x 11 recessive bits
+    s = synth.generate(1000, fault="tx", culprit="alpha", p=1.0, seed=1)
+    con = s.connect()
+    ev = load_bus_evidence(con, synth.catalog(), "r1", "can0")
+    rep = replay_node(ev, ev.nodes.index("alpha"))
+    errors = [e["t_ns"] for e in s.errors]
+    passive = next(tr for tr in rep.transitions if tr["to"] == "error-passive")
+    assert passive["t_ns"] == errors[15]
+    assert rep.bus_off[0]["from_ns"] == errors[31]
+    took_ns = rep.bus_off[0]["to_ns"] - rep.bus_off[0]["from_ns"]
+    assert took_ns >= 1408 * synth.BIT_NS  # 2.816 ms at 500 kbit/s
+    # 128 frame ends (frames back to back, no idle) take about 128 frames' time
+    assert took_ns <= 130 * synth.FRAME_BITS * synth.BIT_NS
+
+
+def test_recovery_on_an_idle_bus_is_128_x_11_bits() -> None:
+    # source: ISO 11898-1 rule l; 1408 bits at 500 kbit/s = 2.816 ms
+    s = synth.generate(50, seed=1)
+    ev = load_bus_evidence(s.connect(), synth.catalog(), "r1", "can0")
+    t_end = int(s.frames[-1]["end_ns"])
+    assert recovery_end_ns(ev, t_end + 10, DEFAULT_CONFIG) == t_end + 10 + 2_816_000
+
+
+def test_logger_loss_marks_counters_uncertain_until_they_reach_zero() -> None:
+    s = synth.generate(3000, fault="tx", culprit="bravo", p=0.5, seed=2, fault_from_slot=200)
+    mid = s.errors[len(s.errors) // 2]["t_ns"]
+    s.losses.append({"run": "r1", "bus": "can0", "t_ns": mid - 5_000_000, "count": 10,
+                     "until_ns": mid - 4_000_000, "file": "synthetic.frames", "line": 1})
+    counters = replay_faults(s.connect(), synth.catalog()).counters
+    bravo = counters.filter(counters["node"] == "bravo")
+    before = bravo.filter(bravo["t_ns"] < mid - 5_000_000)
+    after = bravo.filter(bravo["t_ns"] >= mid)
+    assert not before["uncertain"].any()
+    assert after["uncertain"].head(1).item()
+
+
+def test_status_records_agree_with_attributed_replay() -> None:
+    s = synth.generate(4000, fault="rx", culprit="charlie", p=0.3, seed=3, fault_from_slot=300,
+                       status_every=97)
+    result = replay_faults(s.connect(), synth.catalog()).as_json()["results"][0]
+    agreement = result["status_agreement"]
+    assert agreement["records"] == len(s.status)
+    assert agreement["tec_equal"] == agreement["records"]
+    assert agreement["rec_equal"] == agreement["records"]

@@ -1,0 +1,324 @@
+"""Candidate explanations of a bus's errors, replayed and scored against the evidence.
+
+Each hypothesis fixes who detected unattributed errors first (which changes the replayed REC)
+and predicts where the visible errors should fall: on every sender in proportion to its bus
+time (whole-bus disturbance, or a receive fault while the faulty node is still error-active),
+or on one node's frames only (a transmit fault, an isolated node, a receive-faulty node once it
+is error-passive). The score is a log-likelihood of what the log shows: the sender and type of
+every errored frame, ESI bits, silences, status records. docs/forensics.md gives the reasoning.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import polars as pl
+
+from tracelab.forensics.replay import KIND_ERROR, BusEvidence, NodeReplay
+from tracelab.physics.confinement import RECOVERY_SEQUENCE_BITS, RECOVERY_SEQUENCES
+
+#: Probability of a type a hypothesis does not expect (an isolated node's non-ACK error).
+EPS = 0.02
+#: Error rate of attempts in which a hypothesis says no error can be seen.
+P_FORBIDDEN = 0.002
+#: Share of ACK errors among errors that a hypothesis does not attribute to a missing ACK.
+P_ACK_OTHER = 0.05
+#: Likelihood factor of one ESI bit contradicting the replayed state, and the cap per node.
+P_ESI_MISMATCH = 0.2
+ESI_CAP = 30
+#: Factors for silences: a predicted bus-off without silence, an unexplained silence.
+P_BUS_OFF_NOT_SILENT = 0.05
+P_UNEXPLAINED_SILENCE = 0.05
+#: Status records: Laplace scale of the counter difference, and the cap per record.
+STATUS_SCALE = 8.0
+STATUS_CAP = 10.0
+#: Prior weight of the whole-bus explanation (the rest is split over node hypotheses).
+PRIOR_BUS = 0.5
+MIN_ERRORS = 3
+
+
+@dataclass(frozen=True)
+class Silence:
+    node: int
+    from_ns: int
+    to_ns: int | None  # None: the node never came back before the end of the log
+
+
+@dataclass
+class Hypothesis:
+    name: str
+    kind: str            # bus-disturbance | receive-fault | transmit-fault | isolation | silence
+    node: int | None
+    replays: list[NodeReplay]
+    loglik: float = 0.0
+    parts: dict[str, float] = field(default_factory=dict)
+    facts: dict[str, Any] = field(default_factory=dict)
+    prior: float = 0.0
+    score: float = 0.0
+    why: str = ""
+
+
+def node_silences(ev: BusEvidence, gaps: pl.DataFrame | None = None,
+                  catalog_keys: dict[int, set[tuple[int, bool]]] | None = None) -> list[Silence]:
+    """Intervals in which all of a node's identifiers were silent, outside logger losses.
+
+    With the timing analysis' per-message gaps, a node is silent where the gaps of all its
+    periodic messages overlap; otherwise (and for the open end of the log) the silences are the
+    gaps between the node's own frames longer than 8 median intervals and than the minimum
+    bus-off recovery time.
+    """
+    min_ns = RECOVERY_SEQUENCES * RECOVERY_SEQUENCE_BITS * ev.bit_ns
+    out: list[Silence] = []
+    for n, own in enumerate(ev.own_t):  # loop over nodes
+        if own.size == 0:
+            if catalog_keys and catalog_keys.get(n) and ev.frames:
+                out.append(Silence(n, ev.first_t_ns, None))
+            continue
+        step = np.diff(own)
+        median = float(np.median(step)) if step.size else float(ev.last_t_ns - ev.first_t_ns)
+        limit = max(8.0 * median, min_ns)
+        found: list[tuple[int, int | None]] = []
+        if gaps is not None and catalog_keys and catalog_keys.get(n) and gaps.height:
+            found = _intersect_gaps(gaps, catalog_keys[n], own, min_ns)
+        else:
+            idx = np.flatnonzero(step > limit)
+            found = [(int(own[i]), int(own[i + 1])) for i in idx.tolist()]
+        if ev.last_t_ns - int(own[-1]) > limit:
+            found.append((int(own[-1]), None))
+        for a, b in found:  # loop over silences (rare)
+            if not _overlaps_loss(ev, a, b if b is not None else ev.last_t_ns):
+                out.append(Silence(n, a, b))
+    return sorted(out, key=lambda s: s.from_ns)
+
+
+def _intersect_gaps(gaps: pl.DataFrame, keys: set[tuple[int, bool]], own: np.ndarray,
+                    min_ns: float) -> list[tuple[int, int | None]]:
+    """Where every one of ``keys`` is inside a gap at once, and no own frame falls inside."""
+    mine = gaps.filter(pl.struct("id", "ext").map_elements(
+        lambda s: (int(s["id"]), bool(s["ext"])) in keys, return_dtype=pl.Boolean))
+    if "in_loss" in mine.columns:
+        mine = mine.filter(~pl.col("in_loss").fill_null(False))
+    if mine.height == 0:
+        return []
+    per_key = mine.group_by("id", "ext").agg("from_ns", "to_ns")
+    if per_key.height < len(keys):
+        return []
+    current: list[tuple[int, int]] | None = None
+    for row in per_key.iter_rows(named=True):  # loop over a node's messages
+        spans = sorted(zip(row["from_ns"], row["to_ns"], strict=True))
+        if current is None:
+            current = spans
+            continue
+        merged: list[tuple[int, int]] = []
+        for a, b in current:
+            for c, d in spans:
+                lo, hi = max(a, c), min(b, d)
+                if hi > lo:
+                    merged.append((lo, hi))
+        current = merged
+    out: list[tuple[int, int | None]] = []
+    for a, b in current or []:
+        i = int(np.searchsorted(own, a, side="right"))
+        j = int(np.searchsorted(own, b, side="left"))
+        if j <= i and b - a >= min_ns:
+            out.append((a, b))
+    return out
+
+
+def _overlaps_loss(ev: BusEvidence, a: int, b: int) -> bool:
+    if not ev.losses.shape[0]:
+        return False
+    return bool(np.any((ev.losses[:, 0] < b) & (ev.losses[:, 1] > a)))
+
+
+def unexplained_silences(ev: BusEvidence, replays: list[NodeReplay],
+                         silences: list[Silence]) -> list[Silence]:
+    """Silences that no replayed bus-off episode of the same node falls into."""
+    out = []
+    for s in silences:  # loop over silences (rare)
+        end = s.to_ns if s.to_ns is not None else ev.last_t_ns + 1
+        if not any(s.from_ns <= off["from_ns"] <= end for off in replays[s.node].bus_off):
+            out.append(s)
+    return out
+
+
+def candidates(ev: BusEvidence, base: list[NodeReplay], first: list[NodeReplay],
+               silences: list[Silence]) -> list[Hypothesis]:
+    """The hypotheses worth scoring for this bus."""
+    errors = ev.events.filter(pl.col("kind") == KIND_ERROR)
+    tx = errors["tx"].to_numpy()
+    ack = (errors["type"] == "ack").to_numpy()
+    by = errors["by_node"].to_numpy()
+    out = [Hypothesis("bus-disturbance", "bus-disturbance", None, list(base))]
+    for n, name in enumerate(ev.nodes):  # loop over nodes
+        on_own = int(np.sum(tx == n))
+        if first[n].first_bonus_events or bool(np.any(by == n)):
+            reps = list(base)
+            reps[n] = first[n]
+            out.append(Hypothesis(f"receive-fault:{name}", "receive-fault", n, reps))
+        if on_own:
+            out.append(Hypothesis(f"transmit-fault:{name}", "transmit-fault", n, list(base)))
+        if int(np.sum((tx == n) & ack)):
+            out.append(Hypothesis(f"isolation:{name}", "isolation", n, list(base)))
+    for n in sorted({s.node for s in unexplained_silences(ev, base, silences)}):
+        out.append(Hypothesis(f"silence:{ev.nodes[n]}", "silence", n, list(base)))
+    others = len(out) - 1
+    for h in out:
+        h.prior = PRIOR_BUS if h.node is None else (1 - PRIOR_BUS) / max(1, others)
+    if others == 0:
+        out[0].prior = 1.0
+    return out
+
+
+def _bernoulli(k: int, m: int, free: bool) -> float:
+    """Log-likelihood of k failed attempts out of m: a fitted rate, or the forbidden rate."""
+    if m <= 0:
+        return 0.0
+    k = min(k, m)
+    q = k / m if free else P_FORBIDDEN
+    if free and (k == 0 or k == m):
+        return 0.0
+    return k * math.log(q) + (m - k) * math.log(1 - q)
+
+
+def _count_in(times: np.ndarray, intervals: list[tuple[int, int]]) -> int:
+    """Number of sorted times inside the (a, b] intervals (vectorised per interval list)."""
+    if not intervals or times.size == 0:
+        return 0
+    a = np.array([i[0] for i in intervals], dtype=np.int64)
+    b = np.array([i[1] for i in intervals], dtype=np.int64)
+    return int((np.searchsorted(times, b, side="right")
+                - np.searchsorted(times, a, side="right")).sum())
+
+
+def score(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Silence]) -> None:
+    """Log-likelihood of the evidence under each hypothesis; scores are posteriors.
+
+    Every frame attempt (a frame in the log, or an error that destroyed one) is a Bernoulli
+    trial. A hypothesis splits the attempts into groups: groups where errors may happen get a
+    fitted rate (BIC penalty per rate), groups where the hypothesis says errors cannot be seen
+    get the rate P_FORBIDDEN. So a hypothesis wins by predicting where and when errors are
+    absent as well as where they are.
+    """
+    errors = ev.events.with_row_index("k").filter(pl.col("kind") == KIND_ERROR)
+    k_idx = errors["k"].to_numpy()
+    tx = errors["tx"].to_numpy().astype(np.int64)
+    by = errors["by_node"].to_numpy().astype(np.int64)
+    ack = (errors["type"] == "ack").to_numpy()
+    known = tx >= 0
+    n_err = int(tx.size)
+    attempts = ev.frames + n_err
+    penalty = 0.5 * math.log(max(2, attempts))
+    lp_type_other = np.where(ack, math.log(P_ACK_OTHER), math.log(1 - P_ACK_OTHER))
+    n_nodes = max(1, len(ev.nodes))
+    attributed = (by >= 0) & known & (by != tx)
+    lp_by_uniform = np.where(attributed, -math.log(n_nodes), 0.0)
+    for h in hyps:  # loop over hypotheses (a few per node)
+        n = h.node
+        if h.kind in ("bus-disturbance", "silence") or n is None:
+            rate = _bernoulli(n_err, attempts, True) - penalty
+            lp = lp_type_other + lp_by_uniform
+        elif h.kind in ("transmit-fault", "isolation"):
+            mine = known & (tx == n)
+            k_own, m_own = int(mine.sum()), int(ev.own_t[n].size) + int(mine.sum())
+            rate = (_bernoulli(k_own, m_own, True)
+                    + _bernoulli(n_err - k_own, attempts - m_own, False) - penalty)
+            if h.kind == "isolation":
+                lp = np.where(mine, np.where(ack, math.log(1 - EPS), math.log(EPS)),
+                              lp_type_other) + lp_by_uniform
+            else:
+                lp = lp_type_other + lp_by_uniform
+        else:  # receive-fault: errors anywhere while n can flag them, on its own frames after
+            states = (np.array(h.replays[n].state_before, dtype=object)[k_idx]
+                      if k_idx.size else np.zeros(0, dtype=object))
+            passive = np.isin(states, ["error-passive", "bus-off"]) if states.size else \
+                np.zeros(0, dtype=bool)
+            spans = h.replays[n].passive_intervals(ev.last_t_ns + 1)
+            f_in = _count_in(ev.frame_t, spans)
+            own_in = _count_in(ev.own_t[n], spans)
+            mine = known & (tx == n)
+            k_pown, k_poth = int((passive & mine).sum()), int((passive & ~mine).sum())
+            k_act = n_err - k_pown - k_poth
+            rate = (_bernoulli(k_act, attempts - f_in - k_pown - k_poth, True)
+                    + _bernoulli(k_pown, own_in + k_pown, True)
+                    + _bernoulli(k_poth, f_in - own_in + k_poth, False) - 2 * penalty)
+            lp_by = np.where(attributed & ~passive & (tx != n),
+                             np.where(by == n, math.log(0.9), math.log(0.1 / n_nodes)),
+                             lp_by_uniform)
+            lp = lp_type_other + lp_by
+            h.facts["after_passive"] = k_pown + k_poth
+            h.facts["after_passive_own"] = k_pown
+            h.facts["passive_frames"] = f_in
+        h.parts["errors"] = float(rate + lp.sum())
+        h.parts["esi"] = _esi_loglik(ev, h)
+        h.parts["silences"] = _silence_loglik(ev, h, silences)
+        h.parts["status"] = _status_loglik(h)
+        h.loglik = float(sum(h.parts.values()))
+        if n is not None:
+            h.facts["own_errors"] = int(np.sum(known & (tx == n)))
+            h.facts["own_ack"] = int(np.sum(known & (tx == n) & ack))
+            h.facts["own_frames"] = int(ev.own_t[n].size)
+        h.facts["errors"] = int(known.sum())
+    best = max(h.loglik + math.log(h.prior) for h in hyps)
+    weights = [math.exp(h.loglik + math.log(h.prior) - best) for h in hyps]
+    total = sum(weights)
+    for h, w in zip(hyps, weights, strict=True):
+        h.score = w / total
+
+
+def _esi_loglik(ev: BusEvidence, h: Hypothesis) -> float:
+    """FD frames: ESI set means the sender was error-passive (ISO 11898-1 ESI bit)."""
+    total = 0.0
+    fd = ev.frame_esi > 0
+    if not bool(fd.any()):
+        return 0.0
+    for n, rep in enumerate(h.replays):  # loop over nodes
+        mask = fd & (ev.frame_node == n)
+        if not bool(mask.any()):
+            continue
+        t = ev.frame_t[mask]
+        esi = ev.frame_esi[mask] == 2
+        inside = np.zeros(t.size, dtype=bool)
+        for a, b in rep.passive_intervals(ev.last_t_ns + 1):  # loop over passive intervals
+            inside |= (t > a) & (t <= b)
+        wrong = int(np.sum(esi != inside))
+        total += min(wrong, ESI_CAP) * math.log(P_ESI_MISMATCH)
+    return total
+
+
+def _silence_loglik(ev: BusEvidence, h: Hypothesis, silences: list[Silence]) -> float:
+    total = 0.0
+    explained: set[int] = set()
+    for n, rep in enumerate(h.replays):  # loop over nodes and their bus-off episodes
+        own = ev.own_t[n]
+        for off in rep.bus_off:
+            i = int(np.searchsorted(own, off["from_ns"], side="right"))
+            nxt = int(own[i]) if i < own.size else None
+            need = off["from_ns"] + 0.9 * (off["to_ns"] - off["from_ns"])
+            if nxt is not None and nxt < need:
+                total += math.log(P_BUS_OFF_NOT_SILENT)
+            for j, s in enumerate(silences):
+                end = s.to_ns if s.to_ns is not None else ev.last_t_ns + 1
+                if s.node == n and s.from_ns <= off["from_ns"] <= end:
+                    explained.add(j)
+    own_claim = h.kind == "silence"
+    for j, s in enumerate(silences):
+        if j in explained:
+            continue
+        if own_claim and s.node == h.node:
+            own_claim = False  # the hypothesis explains its node's first unexplained silence
+            continue
+        total += math.log(P_UNEXPLAINED_SILENCE)
+    return total
+
+
+def _status_loglik(h: Hypothesis) -> float:
+    total = 0.0
+    for rep in h.replays:
+        for check in rep.status_checks:  # loop over status records (rare)
+            diff = abs(check["tec"] - check["status_tec"]) + abs(check["rec"] - check["status_rec"])
+            total -= min(diff / STATUS_SCALE, STATUS_CAP)
+    return total

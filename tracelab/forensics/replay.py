@@ -1,0 +1,514 @@
+"""Event-driven replay of ISO 11898-1 fault-confinement counters from a bus log.
+
+Counters only jump at error events. Between two events a node's TEC falls by its successful
+transmissions and its REC by its successful receptions; both counts come from cumulative
+frame counts per sender (``np.searchsorted`` over the time-sorted frame times), so the Python
+loop runs over error and status events only, never over frames. The times of downward state
+changes (error-passive -> warning -> error-active) and of bus-off recovery come from the same
+sorted times.
+
+A node's counters depend only on the events and on who detected each error first. The log
+names the first detector only when an error record carries ``by``; otherwise the replay is
+run twice per node: without the rule-b bonus (the node is never assumed to be first) and with
+it (the node is assumed first detector of every unattributed error it received while it could
+still send an active error flag). The hypotheses module picks between them.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any, Protocol
+
+import duckdb
+import numpy as np
+import polars as pl
+
+from tracelab.physics.confinement import (
+    DEFAULT_CONFIG,
+    PASSIVE_LIMIT,
+    RECOVERY_SEQUENCE_BITS,
+    RECOVERY_SEQUENCES,
+    STATE_RANK,
+    ConfinementConfig,
+    NodeCounters,
+    State,
+    state_of,
+)
+
+KIND_ERROR = 0
+KIND_STATUS = 1
+
+
+class CatalogLike(Protocol):
+    """What the replay needs from a network catalog (tracelab.network.catalog.Catalog)."""
+
+    buses: Any
+
+    def messages_frame(self) -> pl.DataFrame: ...
+
+    def nodes_on(self, bus: str) -> list[str]: ...
+
+
+@dataclass
+class BusEvidence:
+    """Everything the replay reads for one (run, bus), as arrays. Built once, replayed often."""
+
+    run: str
+    bus: str
+    nodes: list[str]
+    bit_ns: float
+    frame_t: np.ndarray        # int64, time-sorted t_ns of every frame
+    frame_node: np.ndarray     # int16 node index of the sender, -1 when the catalog has none
+    frame_esi: np.ndarray      # int8: 0 classic, 1 FD with ESI clear, 2 FD with ESI set
+    own_t: list[np.ndarray]    # per node, the t_ns of its frames
+    share: np.ndarray          # per node, its share of bus time (duration_ns) over the run
+    events: pl.DataFrame       # error and status records in time order, see _events()
+    losses: np.ndarray         # (k, 2) int64 [t_ns, until_ns) logger-loss intervals
+    first_t_ns: int
+    last_t_ns: int
+    frames_by_id: pl.DataFrame  # id, ext, sender, frames, busy_ns
+    con: duckdb.DuckDBPyConnection | None = None
+    _recovery_cache: dict[tuple[int, int], int] = field(default_factory=dict)
+    # per-event cumulative counts (filled by prepare_counts)
+    ev_t: list[int] = field(default_factory=list)
+    ev_frames_before: list[int] = field(default_factory=list)
+    ev_own_before: list[list[int]] = field(default_factory=list)
+    ev_loss_since_prev: list[bool] = field(default_factory=list)
+
+    @property
+    def frames(self) -> int:
+        return int(self.frame_t.size)
+
+    def node_index(self, name: str | None) -> int:
+        if name is None:
+            return -1
+        try:
+            return self.nodes.index(name)
+        except ValueError:
+            return -1
+
+
+def _sql(text: str) -> str:
+    return "'" + text.replace("'", "''") + "'"
+
+
+def _frame(con: duckdb.DuckDBPyConnection, query: str) -> pl.DataFrame:
+    return con.sql(query).pl()
+
+
+def run_buses(con: duckdb.DuckDBPyConnection, run: str | None = None) -> list[tuple[str, str]]:
+    """(run, bus) pairs that have any frames or errors, sorted."""
+    where = f"WHERE run = {_sql(run)}" if run is not None else ""
+    rows = con.execute(
+        f"SELECT DISTINCT run, bus FROM (SELECT run, bus FROM frames {where} "
+        f"UNION SELECT run, bus FROM errors {where}) ORDER BY run, bus").fetchall()
+    return [(str(r), str(b)) for r, b in rows]
+
+
+def _sender_codes(catalog: CatalogLike, bus: str, nodes: list[str]) -> pl.DataFrame:
+    messages = catalog.messages_frame().filter(pl.col("bus") == bus)
+    index = {name: i for i, name in enumerate(nodes)}
+    return messages.select(
+        pl.col("id").cast(pl.UInt32), pl.col("ext").cast(pl.Boolean), "sender",
+        pl.col("sender").replace_strict(index, default=-1, return_dtype=pl.Int16).alias("code"))
+
+
+def _nominal_bps(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run: str,
+                 bus: str) -> int:
+    spec = catalog.buses.get(bus) if hasattr(catalog.buses, "get") else None
+    if spec is not None:
+        return int(spec.nominal_bps)
+    import json
+
+    for (buses,) in con.execute(
+            f"SELECT buses FROM manifest WHERE run = {_sql(run)}").fetchall():
+        try:
+            for decl in json.loads(buses or "[]"):
+                if decl.get("alias") == bus:
+                    return int(decl["nominal_bps"])
+        except (ValueError, TypeError, KeyError):
+            continue
+    return 500_000
+
+
+def load_bus_evidence(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run: str,
+                      bus: str) -> BusEvidence:
+    """Read frames, errors, status and losses of one (run, bus) into arrays."""
+    nodes = list(catalog.nodes_on(bus))
+    codes = _sender_codes(catalog, bus, nodes)
+    extra = [n for (n,) in con.execute(
+        f"SELECT DISTINCT node FROM status WHERE run = {_sql(run)} AND bus = {_sql(bus)} "
+        f"UNION SELECT DISTINCT \"by\" FROM errors WHERE run = {_sql(run)} AND bus = {_sql(bus)} "
+        "AND \"by\" IS NOT NULL ORDER BY 1").fetchall() if n not in nodes]
+    nodes += extra
+    where = f"run = {_sql(run)} AND bus = {_sql(bus)}"
+    # One pass over the frames: times, the key for the sender lookup and the ESI flag.
+    arrays = con.execute(
+        f"SELECT t_ns, (id::BIGINT * 2 + ext::INT)::BIGINT AS key, "
+        f"(fd::INT + (fd AND esi)::INT)::TINYINT AS esi FROM frames WHERE {where}").fetchnumpy()
+    frame_t = np.asarray(arrays["t_ns"], dtype=np.int64)
+    keys = np.asarray(arrays["key"], dtype=np.int64)
+    esi = np.asarray(arrays["esi"], dtype=np.int8)
+    if frame_t.size > 1 and bool(np.any(frame_t[1:] < frame_t[:-1])):
+        order = np.argsort(frame_t, kind="stable")  # rare: logs with backward time steps
+        frame_t, keys, esi = frame_t[order], keys[order], esi[order]
+    frame_node = _map_keys(keys, codes)
+    own_t = [frame_t[frame_node == i] for i in range(len(nodes))]
+    by_id = _frame(con, f"SELECT id, ext, count(*) AS frames, sum(duration_ns)::BIGINT AS "
+                   f"busy_ns FROM frames WHERE {where} GROUP BY id, ext")
+    by_id = by_id.with_columns(pl.col("id").cast(pl.UInt32), pl.col("ext").cast(pl.Boolean)).join(
+        codes.select("id", "ext", "sender", "code"), on=["id", "ext"], how="left")
+    busy = np.zeros(len(nodes), dtype=np.float64)
+    for code, ns in zip(by_id["code"].fill_null(-1).to_list(), by_id["busy_ns"].to_list(),
+                        strict=True):
+        if code >= 0:
+            busy[code] += float(ns or 0)
+    total = float(by_id["busy_ns"].sum() or 0.0)
+    share = busy / total if total > 0 else np.full(len(nodes), 1.0 / max(1, len(nodes)))
+    events = _events(con, where, codes, nodes)
+    losses = con.execute(
+        f"SELECT t_ns, until_ns FROM losses WHERE {where} ORDER BY t_ns").fetchnumpy()
+    loss_arr = np.column_stack([np.asarray(losses["t_ns"], dtype=np.int64),
+                                np.asarray(losses["until_ns"], dtype=np.int64)]) \
+        if len(losses["t_ns"]) else np.zeros((0, 2), dtype=np.int64)
+    span = con.execute(
+        f"SELECT min(t), max(t) FROM (SELECT min(t_ns) t FROM frames WHERE {where} UNION ALL "
+        f"SELECT max(t_ns) FROM frames WHERE {where} UNION ALL SELECT min(t_ns) FROM errors "
+        f"WHERE {where} UNION ALL SELECT max(t_ns) FROM errors WHERE {where})").fetchone()
+    first_t = int(span[0]) if span and span[0] is not None else 0
+    last_t = int(span[1]) if span and span[1] is not None else 0
+    evidence = BusEvidence(run, bus, nodes, 1e9 / _nominal_bps(con, catalog, run, bus),
+                           frame_t, frame_node, esi, own_t, share, events, loss_arr, first_t,
+                           last_t, by_id, con)
+    prepare_counts(evidence)
+    return evidence
+
+
+def _map_keys(keys: np.ndarray, codes: pl.DataFrame) -> np.ndarray:
+    """Sender index per frame from the (id, ext) key, vectorised (sorted-key lookup)."""
+    cat_keys = (codes["id"].cast(pl.Int64) * 2 + codes["ext"].cast(pl.Int64)).to_numpy()
+    cat_codes = codes["code"].to_numpy().astype(np.int16)
+    if cat_keys.size == 0 or keys.size == 0:
+        return np.full(keys.size, -1, dtype=np.int16)
+    order = np.argsort(cat_keys)
+    cat_keys, cat_codes = cat_keys[order], cat_codes[order]
+    pos = np.searchsorted(cat_keys, keys)
+    pos = np.minimum(pos, cat_keys.size - 1)
+    found = cat_keys[pos] == keys
+    return np.where(found, cat_codes[pos], np.int16(-1)).astype(np.int16)
+
+
+def _events(con: duckdb.DuckDBPyConnection, where: str, codes: pl.DataFrame,
+            nodes: list[str]) -> pl.DataFrame:
+    """Error and status records in time order with transmitter / first-detector indices."""
+    index = {name: i for i, name in enumerate(nodes)}
+    errors = _frame(con, f"SELECT t_ns, type, field, id, ext, \"by\", file, line FROM errors "
+                         f"WHERE {where}")
+    errors = errors.with_columns(pl.col("id").cast(pl.UInt32),
+                                 pl.col("ext").cast(pl.Boolean).fill_null(False)).join(
+        codes.select("id", "ext", pl.col("code").alias("tx")), on=["id", "ext"], how="left")
+    errors = errors.select(
+        "t_ns", pl.lit(KIND_ERROR, pl.Int8).alias("kind"), "type", "field", "id", "ext",
+        pl.col("tx").fill_null(-1).cast(pl.Int16),
+        pl.col("by").replace_strict(index, default=None, return_dtype=pl.Int16).alias("by_node")
+        .fill_null(-1), "by",
+        pl.lit(-1, pl.Int16).alias("node"), pl.lit(None, pl.Int32).alias("tec"),
+        pl.lit(None, pl.Int32).alias("rec"), "file", "line")
+    status = _frame(con, f"SELECT t_ns, node, tec, rec, file, line FROM status WHERE {where}")
+    status = status.select(
+        "t_ns", pl.lit(KIND_STATUS, pl.Int8).alias("kind"), pl.lit(None, pl.String).alias("type"),
+        pl.lit(None, pl.String).alias("field"), pl.lit(None, pl.UInt32).alias("id"),
+        pl.lit(None, pl.Boolean).alias("ext"), pl.lit(-1, pl.Int16).alias("tx"),
+        pl.lit(-1, pl.Int16).alias("by_node"), pl.lit(None, pl.String).alias("by"),
+        pl.col("node").replace_strict(index, default=-1, return_dtype=pl.Int16),
+        pl.col("tec").cast(pl.Int32), pl.col("rec").cast(pl.Int32), "file", "line")
+    return pl.concat([errors, status]).sort(["t_ns", "file", "line"], nulls_last=True)
+
+
+def prepare_counts(ev: BusEvidence) -> None:
+    """Cumulative frame counts (all, and per sender) before every event: the vectorised part."""
+    t = ev.events["t_ns"].to_numpy().astype(np.int64)
+    ev.ev_t = t.tolist()
+    ev.ev_frames_before = np.searchsorted(ev.frame_t, t, side="left").tolist()
+    ev.ev_own_before = [np.searchsorted(own, t, side="left").tolist() for own in ev.own_t]
+    if ev.losses.shape[0] and t.size:
+        starts = ev.losses[:, 0]
+        upto = np.searchsorted(starts, t, side="right")
+        prev = np.concatenate([[0], upto[:-1]])
+        ev.ev_loss_since_prev = (upto > prev).tolist()
+    else:
+        ev.ev_loss_since_prev = [False] * t.size
+
+
+# --- helpers over the sorted times (called for rare events only) ----------------------
+
+
+def nth_own_after(ev: BusEvidence, node: int, own_start: int, n: int) -> int | None:
+    """t_ns of the n-th frame (1-based) sent by ``node`` at index >= own_start, or None."""
+    own = ev.own_t[node]
+    i = own_start + n - 1
+    return int(own[i]) if i < own.size else None
+
+
+def nth_reception_after(ev: BusEvidence, node: int, frame_start: int, own_start: int,
+                        n: int) -> int | None:
+    """t_ns of the n-th frame (1-based) not sent by ``node``, from global index frame_start."""
+    own = ev.own_t[node]
+    m = frame_start + n - 1
+    while m < ev.frame_t.size:
+        own_in = int(np.searchsorted(own, ev.frame_t[m], side="right")) - own_start
+        received = (m - frame_start + 1) - own_in
+        if received >= n:
+            return int(ev.frame_t[m])
+        m += n - received
+    return None
+
+
+def recovery_end_ns(ev: BusEvidence, t_ns: int, config: ConfinementConfig) -> int:
+    """When a node that went bus-off at t_ns has seen 128 x 11 recessive bits (rule l).
+
+    Each error-free frame end supplies one sequence (ACK delimiter + EOF + intermission = 11
+    recessive bits) and idle time between frames one more per 11 bit times.
+    """
+    start = t_ns + (config.recovery_delay_ns if config.recovery == "software" else 0)
+    key = (start, config.recovery_delay_ns)
+    if key in ev._recovery_cache:
+        return ev._recovery_cache[key]
+    seq_ns = RECOVERY_SEQUENCE_BITS * ev.bit_ns
+    need = RECOVERY_SEQUENCES
+    starts = ends = np.zeros(0, dtype=np.int64)
+    if ev.con is not None:
+        i0 = int(np.searchsorted(ev.frame_t, start, side="left"))
+        i1 = min(ev.frame_t.size - 1, i0 + 4 * RECOVERY_SEQUENCES)
+        if i0 < ev.frame_t.size:
+            rows = ev.con.execute(
+                f"SELECT start_ns, end_ns FROM frames WHERE run = {_sql(ev.run)} AND bus = "
+                f"{_sql(ev.bus)} AND t_ns >= {int(ev.frame_t[i0])} AND t_ns <= "
+                f"{int(ev.frame_t[i1])} ORDER BY start_ns").fetchnumpy()
+            starts = np.asarray(rows["start_ns"], dtype=np.int64)
+            ends = np.asarray(rows["end_ns"], dtype=np.int64)
+            keep = starts >= start
+            starts, ends = starts[keep], ends[keep]
+    result: int | None = None
+    if starts.size:
+        # idle before the first frame, then per frame: its 11-bit tail plus the idle after it
+        lead = int((starts[0] - start) // seq_ns)
+        if lead >= need:
+            result = int(start + need * seq_ns)
+        else:
+            idle_after = np.empty(starts.size, dtype=np.float64)
+            idle_after[:-1] = (starts[1:] - ends[:-1])
+            idle_after[-1] = np.inf
+            per_frame = 1 + np.floor(np.maximum(idle_after, 0) / seq_ns)
+            cum = lead + np.cumsum(per_frame)
+            k = int(np.searchsorted(cum, need, side="left"))
+            if k < starts.size:
+                before = lead + (cum[k - 1] if k > 0 else 0)
+                q = need - before  # sequences still needed inside this frame's tail
+                result = int(ends[k] + (q - 1) * seq_ns)
+    if result is None:
+        base = int(ends[-1]) if ends.size else start
+        result = int(base + need * seq_ns)
+    ev._recovery_cache[key] = result
+    return result
+
+
+# --- the replay of one node -----------------------------------------------------------------
+
+
+@dataclass
+class NodeReplay:
+    """One node's replayed counters under one first-detector assumption."""
+
+    node: str
+    assume_first: bool
+    rows: list[tuple[int, int, int, str, str, bool]] = field(default_factory=list)
+    transitions: list[dict[str, Any]] = field(default_factory=list)
+    bus_off: list[dict[str, int]] = field(default_factory=list)
+    state_before: list[str] = field(default_factory=list)  # per event, before it applies
+    status_checks: list[dict[str, Any]] = field(default_factory=list)
+    first_bonus_events: int = 0
+    max_tec: int = 0
+    max_rec: int = 0
+
+    def passive_intervals(self, end_ns: int) -> list[tuple[int, int]]:
+        """[from, to) intervals in error-passive or bus-off."""
+        out: list[tuple[int, int]] = []
+        since: int | None = None
+        for tr in self.transitions:  # loop over state transitions (rare)
+            bad = STATE_RANK[tr["to"]] >= STATE_RANK["error-passive"]
+            if bad and since is None:
+                since = tr["t_ns"]
+            elif not bad and since is not None:
+                out.append((since, tr["t_ns"]))
+                since = None
+        if since is not None:
+            out.append((since, end_ns))
+        return out
+
+    def first_degradation(self) -> dict[str, Any] | None:
+        for tr in self.transitions:
+            if tr["from"] == "error-active":
+                return tr
+        return None
+
+    def worst(self) -> tuple[str, int | None]:
+        worst: State = "error-active"
+        at: int | None = None
+        for tr in self.transitions:
+            if STATE_RANK[tr["to"]] > STATE_RANK[worst]:
+                worst, at = tr["to"], tr["t_ns"]
+        return worst, at
+
+
+def replay_node(ev: BusEvidence, node: int, assume_first: bool = False,
+                config: ConfinementConfig = DEFAULT_CONFIG) -> NodeReplay:
+    """Apply the rules table to one node, event by event (a loop over error/status events)."""
+    out = NodeReplay(ev.nodes[node], assume_first)
+    c = NodeCounters(config=config)
+    state: State = "error-active"
+    recovery_at: int | None = None
+    uncertain = False
+    own_before = ev.ev_own_before[node]
+    fb_prev = ob_prev = 0
+    t_prev = ev.first_t_ns
+    events = ev.events
+    kinds = events["kind"].to_list()
+    types = events["type"].to_list()
+    txs = events["tx"].to_list()
+    bys = events["by_node"].to_list()
+    status_node = events["node"].to_list()
+    status_tec = events["tec"].to_list()
+    status_rec = events["rec"].to_list()
+    rows = out.rows
+
+    def record(t_ns: int, cause: str) -> None:
+        nonlocal state
+        new = c.state
+        rows.append((t_ns, c.tec, c.rec, new, cause, uncertain))
+        if new != state:
+            out.transitions.append({"t_ns": t_ns, "from": state, "to": new})
+            state = new
+
+    # Loop over error and status events (rare compared with frames), never over frames.
+    for k, t_e in enumerate(ev.ev_t):
+        fb, ob = ev.ev_frames_before[k], own_before[k]
+        if ev.ev_loss_since_prev[k]:
+            uncertain = True
+        # 1. successes since the previous event, with the downward state changes among them
+        if c.bus_off:
+            if recovery_at is not None and recovery_at <= t_e:
+                c.recover()
+                out.bus_off[-1]["to_ns"] = recovery_at
+                record(recovery_at, "recovery")
+                recovery_at = None
+        elif fb > fb_prev:
+            own_n, recv_n = ob - ob_prev, (fb - fb_prev) - (ob - ob_prev)
+            if state != "error-active":
+                _downward(ev, node, c, config, fb_prev, ob_prev, own_n, recv_n, record)
+            tec0, rec0 = c.tec, c.rec
+            c.transmit_success(own_n)
+            c.receive_success(recv_n)
+            if (c.tec, c.rec) != (tec0, rec0) and (c.tec, c.rec) != (rows[-1][1], rows[-1][2]):
+                record(t_e, "successes")
+        if uncertain and c.tec == 0 and c.rec == 0 and not _in_loss(ev, t_e):
+            uncertain = False
+        fb_prev, ob_prev, t_prev = fb, ob, t_e
+        out.state_before.append(c.state)
+        # 2. the event itself
+        if kinds[k] == KIND_STATUS:
+            if status_node[k] != node:
+                continue
+            tec_s, rec_s = int(status_tec[k]), int(status_rec[k])
+            out.status_checks.append({"t_ns": t_e, "tec": c.tec, "rec": c.rec, "state": c.state,
+                                      "status_tec": tec_s, "status_rec": rec_s,
+                                      "status_state": state_of(tec_s, rec_s, config=config),
+                                      "uncertain": uncertain})
+            if (c.tec, c.rec) != (tec_s, rec_s):
+                was_off = c.bus_off
+                c.tec, c.rec = tec_s, rec_s
+                c.bus_off = was_off or tec_s > 255
+                uncertain = False
+                out.max_tec, out.max_rec = max(out.max_tec, c.tec), max(out.max_rec, c.rec)
+                record(t_e, "status")
+            else:
+                uncertain = False
+            continue
+        if c.bus_off:
+            continue
+        tx, by = txs[k], bys[k]
+        ack = types[k] == "ack"
+        if tx == node:
+            c.transmit_error(ack_error=ack)
+        elif ack:
+            continue  # an ACK error concerns the transmitter only
+        else:
+            first = by == node
+            if by < 0 and assume_first and state in ("error-active", "warning"):
+                first = True
+                out.first_bonus_events += 1
+            c.receive_error(first_detector=first)
+        out.max_tec, out.max_rec = max(out.max_tec, c.tec), max(out.max_rec, c.rec)
+        record(t_e, "error")
+        if c.bus_off and recovery_at is None:
+            recovery_at = recovery_end_ns(ev, t_e, config)
+            out.bus_off.append({"from_ns": t_e, "to_ns": recovery_at})
+    # tail: successes after the last event up to the end of the log
+    if c.bus_off and recovery_at is not None and recovery_at <= max(ev.last_t_ns, t_prev):
+        c.recover()
+        record(recovery_at, "recovery")
+    elif not c.bus_off and state != "error-active":
+        fb, ob = ev.frame_t.size, ev.own_t[node].size
+        own_n, recv_n = ob - ob_prev, (fb - fb_prev) - (ob - ob_prev)
+        _downward(ev, node, c, config, fb_prev, ob_prev, own_n, recv_n, record)
+        tec0, rec0 = c.tec, c.rec
+        c.transmit_success(own_n)
+        c.receive_success(recv_n)
+        if (c.tec, c.rec) != (tec0, rec0) and fb > fb_prev:
+            record(int(ev.frame_t[-1]), "successes")
+    return out
+
+
+def _in_loss(ev: BusEvidence, t_ns: int) -> bool:
+    if not ev.losses.shape[0]:
+        return False
+    i = int(np.searchsorted(ev.losses[:, 0], t_ns, side="right")) - 1
+    return i >= 0 and int(ev.losses[i, 1]) > t_ns
+
+
+def _downward(ev: BusEvidence, node: int, c: NodeCounters, config: ConfinementConfig,
+              frame_start: int, own_start: int, own_n: int, recv_n: int, record: Any) -> None:
+    """Record the state changes a run of successes causes, at the frame that causes each.
+
+    Candidate thresholds: TEC back to 127 (passive limit) and below the warning level; REC
+    reset into 119..127 by the first reception above 127, then down past the warning level.
+    """
+    level = config.warning_level - (0 if config.warning_inclusive else -1)  # first "warm" value
+    tec0, rec0 = c.tec, c.rec
+    own_steps = sorted({s for s in (tec0 - PASSIVE_LIMIT, tec0 - level + 1) if 0 < s <= own_n})
+    if rec0 > PASSIVE_LIMIT:
+        after = config.rec_after_passive_reception
+        rec_steps = {1, 1 + after - level + 1}
+    else:
+        rec_steps = {rec0 - level + 1}
+    recv_steps = sorted(s for s in rec_steps if 0 < s <= recv_n)
+    times: list[int] = []
+    for s in own_steps:  # at most two thresholds per counter
+        t = nth_own_after(ev, node, own_start, s)
+        if t is not None:
+            times.append(t)
+    for s in recv_steps:
+        t = nth_reception_after(ev, node, frame_start, own_start, s)
+        if t is not None:
+            times.append(t)
+    own = ev.own_t[node]
+    for t in sorted(set(times)):
+        i_all = int(np.searchsorted(ev.frame_t, t, side="right")) - frame_start
+        i_own = int(np.searchsorted(own, t, side="right")) - own_start
+        probe = NodeCounters(tec0, rec0, False, config)
+        probe.transmit_success(min(i_own, own_n))
+        probe.receive_success(min(i_all - i_own, recv_n))
+        if probe.state != c.state:
+            c.tec, c.rec = probe.tec, probe.rec
+            record(t, "successes")
+    c.tec, c.rec = tec0, rec0
