@@ -117,13 +117,93 @@ def faults(dataset: Path, catalog: Path, run: str | None = None) -> Any:
 # --- report / demo ------------------------------------------------------------------------
 
 
+def _report_path(output: Path, run: str, several: bool) -> Path:
+    """``-o x.html`` is the file for one run (x-<run>.html for several); else a directory."""
+    import re
+
+    safe = re.sub(r"[^A-Za-z0-9._-]", "_", run)
+    if output.suffix.lower() in (".html", ".htm"):
+        return output.with_name(f"{output.stem}-{safe}{output.suffix}") if several else output
+    return output / f"{safe}.html"
+
+
 def report(dataset: Path, output: Path, catalog: Path | None = None, run: str | None = None,
            shared_plotly: bool = False, load_limit: float = 0.5) -> list[Path]:
-    raise NotImplementedError("report")
+    from tracelab.analyses.envelopes import report_data
+    from tracelab.errors import UsageError, did_you_mean
+    from tracelab.report.page import write_report
+    from tracelab.store.dataset import open_dataset
+
+    if not 0 < load_limit <= 1:
+        raise UsageError(f"--load-limit {load_limit} must lie in (0, 1], e.g. 0.5 for 50 %")
+    ds = open_dataset(dataset)
+    runs = ds.runs()
+    if not runs:
+        raise UsageError(f"{dataset}: the dataset holds no runs yet; ingest a log first")
+    if run is not None:
+        if run not in runs:
+            raise UsageError(f"{dataset}: no run '{run}'{did_you_mean(run, runs)}")
+        runs = [run]
+    # Compute what the dataset lacks, for every run at once (a later --run finds it too).
+    if not ds.has_analysis("timing"):
+        timing(dataset, catalog=catalog)
+    if not ds.has_analysis("load"):
+        load(dataset)
+    if catalog is not None and not ds.has_analysis("faults"):
+        faults(dataset, catalog=catalog)
+    faults_json = ds.read_analysis_json("faults")
+    con = ds.connect()
+    written = []
+    for name in runs:  # one page per run: few
+        data = report_data(con, name, faults_json)
+        path = _report_path(output, name, several=len(runs) > 1)
+        written.append(write_report(data, path, load_limit=load_limit,
+                                    shared_plotly=shared_plotly))
+    return written
+
+
+def _demo_inputs() -> tuple[Path, Path | None]:
+    """The bundled demo scenario, and the committed demo log when the checkout has one."""
+    from tracelab.errors import UsageError
+
+    package = Path(__file__).resolve().parent
+    scenarios = sorted((package / "demo").glob("*.toml"))
+    logs_dir = package.parent / "demo_logs"
+    scenarios += sorted(logs_dir.glob("*.toml"))
+    if not scenarios:
+        raise UsageError("no demo scenario found (tracelab/demo/*.toml)")
+    scenario = scenarios[0]
+    logs = [p for p in sorted(logs_dir.glob("*.frames*")) if not p.name.endswith(".json")]
+    return scenario, (logs[0] if logs else None)
 
 
 def demo(output: Path, quiet: bool = False) -> str:
-    raise NotImplementedError("demo")
+    import shutil
+
+    from tracelab.errors import UsageError
+    from tracelab.report.page import verdict_sentence
+    from tracelab.store.dataset import is_dataset, open_dataset
+
+    scenario, log = _demo_inputs()
+    output.mkdir(parents=True, exist_ok=True)
+    if log is None:
+        log = output / "demo.frames.zst"
+        simulate(scenario, log, quiet=quiet)
+    dataset = output / "dataset"
+    if dataset.exists():  # start clean so every analysis matches this log
+        if not is_dataset(dataset):
+            raise UsageError(f"{dataset}: exists and is not a tracelab dataset; choose another -o")
+        shutil.rmtree(dataset)
+    ingest([log], dataset, quiet=quiet)
+    timing(dataset, catalog=scenario)
+    load(dataset)
+    faults(dataset, catalog=scenario)
+    paths = report(dataset, output / "report.html", catalog=scenario)
+    ds = open_dataset(dataset)
+    errors = int(ds.manifest()["errors"].fill_null(0).sum())
+    sentence, _ = verdict_sentence(ds.read_analysis_json("faults"), errors)
+    lines = [f"verdict: {sentence}"] + [f"report: {p}" for p in paths]
+    return "\n".join(lines)
 
 
 # --- fleet --------------------------------------------------------------------------------
