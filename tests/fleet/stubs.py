@@ -33,6 +33,7 @@ class _Faults:
 
 
 def faults(dataset: Path, catalog: Path, **_: Any) -> _Faults:
+    open_dataset(dataset).write_analysis_json("faults", _Faults().as_json())
     return _Faults()
 
 

@@ -13,8 +13,8 @@ from tracelab.fleet.batch import run_batch
 from tracelab.fleet.job import PipelineSteps
 from tracelab.fleet.views import connect_fleet
 
-STEPS = PipelineSteps(ingest=workflow.ingest, timing=stubs.timing, load=stubs.load,
-                      faults=stubs.faults, report=stubs.report)
+STEPS = PipelineSteps(ingest=workflow.ingest, timing=workflow.timing, load=workflow.load,
+                      faults=stubs.faults, report=workflow.report)
 
 
 @pytest.fixture()

@@ -108,7 +108,8 @@ def _run_pipeline(spec: RunSpec, fleet: Path, staging: Path, steps: PipelineStep
         faults_json = steps.faults(dataset, catalog=catalog).as_json()
     report_dir = staging / "report"
     report_dir.mkdir()
-    reports = steps.report(dataset, report_dir / f"{spec.part}.html", catalog=catalog)
+    reports = steps.report(dataset, report_dir / f"{spec.part}.html", catalog=catalog,
+                           shared_plotly=True)
     con = open_dataset(dataset).connect()
     try:
         threads = os.environ.get("TRACELAB_THREADS")

@@ -1,0 +1,1 @@
+"""Scheduled entry points (thin shells over the library)."""
