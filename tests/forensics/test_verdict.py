@@ -1,0 +1,111 @@
+"""Verdicts on synthetic buses where the cause is known, without first-detector attribution."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+
+from tests.forensics import synth
+from tracelab.forensics import replay_faults, wall_time
+
+FRAME_NS = synth.FRAME_BITS * synth.BIT_NS
+
+
+def _first_truth(s: synth.Synth) -> tuple[int, str, str]:
+    return min((tr[0]["t_ns"], n, tr[0]["to"]) for n, tr in s.transitions.items() if tr)
+
+
+def _verdict(s: synth.Synth) -> dict:
+    return replay_faults(s.connect(), synth.catalog()).as_json()["results"][0]
+
+
+@pytest.mark.parametrize("seed", [11, 12, 13])
+@pytest.mark.parametrize("fault,kind,p", [("tx", "transmit-fault", 0.3),
+                                          ("rx", "receive-fault", 0.25),
+                                          ("ack", "isolation", 1.0)])
+def test_culprit_and_first_transition_without_attribution(fault: str, kind: str, p: float,
+                                                          seed: int) -> None:
+    s = synth.generate(5000, fault=fault, culprit="charlie", p=p, attribute=False, seed=seed,
+                       fault_from_slot=400)
+    v = _verdict(s)
+    t_true, node_true, state_true = _first_truth(s)
+    assert v["cause"] == {"kind": kind, "node": "charlie"}
+    assert node_true == "charlie" and v["first_degraded"]["node"] == "charlie"
+    assert v["first_degraded"]["state"] == state_true
+    assert abs(v["first_degraded"]["t_ns"] - t_true) <= 3 * FRAME_NS
+    assert v["first_degraded"]["confidence"] > 0.9
+    assert v["hypotheses"][0]["name"] == f"{kind}:charlie"
+
+
+@pytest.mark.parametrize("seed", [21, 22, 23])
+def test_bus_noise_is_the_whole_bus_not_a_node(seed: int) -> None:
+    s = synth.generate(5000, fault="bus", p=0.35, attribute=False, seed=seed,
+                       fault_from_slot=400)
+    v = _verdict(s)
+    assert v["cause"] == {"kind": "bus-disturbance", "node": None}
+    assert v["hypotheses"][0]["name"] == "bus-disturbance"
+
+
+def test_clean_bus() -> None:
+    v = _verdict(synth.generate(800, seed=1))
+    assert v["first_degraded"] is None
+    assert v["cause"] == {"kind": "none", "node": None}
+    assert all(n["transitions"] == [] for n in v["nodes"])
+
+
+def test_thin_evidence_says_unknown() -> None:
+    s = synth.generate(800, seed=1)
+    s.errors = [dict(e) for e in synth.generate(800, fault="tx", culprit="alpha", p=0.01,
+                                                attribute=False, seed=4).errors[:2]]
+    v = _verdict(s)
+    assert v["cause"]["kind"] == "unknown"
+    assert "too thin" in v["verdict"]
+
+
+def test_silent_node_without_errors() -> None:
+    s = synth.generate(3000, seed=2)
+    cut = s.frames[1500]["t_ns"]
+    s.frames = [f for f in s.frames if not (f["id"] == synth.IDS["delta"] and f["t_ns"] > cut)]
+    v = _verdict(s)
+    assert v["cause"] == {"kind": "silence", "node": "delta"}
+    assert v["first_degraded"]["state"] == "silent"
+    assert cut - 10 * FRAME_NS <= v["first_degraded"]["t_ns"] <= cut
+
+
+def test_json_shape_is_the_spec() -> None:
+    s = synth.generate(3000, fault="tx", culprit="alpha", p=0.4, attribute=False, seed=3,
+                       fault_from_slot=300, status_every=200)
+    out = replay_faults(s.connect(), synth.catalog()).as_json()
+    json.dumps(out)  # plain JSON types only
+    (r,) = out["results"]
+    assert {"run", "bus", "first_degraded", "cause", "hypotheses", "nodes", "status_agreement",
+            "assumptions"} <= set(r)
+    assert {"node", "state", "t_ns", "wall_time", "confidence"} <= set(r["first_degraded"])
+    assert set(r["cause"]) == {"kind", "node"}
+    assert all(set(h) == {"name", "score", "why"} for h in r["hypotheses"])
+    assert sum(h["score"] for h in r["hypotheses"]) == pytest.approx(1.0, abs=1e-3)
+    for n in r["nodes"]:
+        assert {"node", "max_tec", "max_rec", "transitions", "bus_off"} <= set(n)
+        assert all(set(tr) == {"t_ns", "from", "to"} for tr in n["transitions"])
+        assert all(set(b) == {"from_ns", "to_ns"} for b in n["bus_off"])
+    assert r["status_agreement"]["records"] == len(s.status)
+
+
+def test_wall_time_matches_numpy_datetime64() -> None:
+    # reference: numpy datetime64 nanosecond arithmetic (general-purpose library)
+    origin = "2026-03-04T23:59:59.999999999Z"
+    t_ns = 1_234_567_890_123
+    expected = np.datetime64(origin[:-1], "ns") + np.timedelta64(t_ns, "ns")
+    assert wall_time(origin, t_ns) == np.datetime_as_string(expected, unit="ns") + "Z"
+    assert wall_time("2026-03-04T05:06:07Z", 5) == "2026-03-04T05:06:07.000000005Z"
+    assert wall_time(None, 5) is None
+
+
+def test_describe_reads_like_an_incident_note() -> None:
+    s = synth.generate(3000, fault="tx", culprit="alpha", p=0.4, attribute=False, seed=3,
+                       fault_from_slot=300)
+    text = replay_faults(s.connect(), synth.catalog()).describe()
+    assert "alpha degraded first" in text and "transmit-side fault in alpha" in text
+    assert "2026-03-04T05:06:07" in text
