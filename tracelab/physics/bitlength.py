@@ -302,16 +302,23 @@ def _header_values(cols: _Columns, idx: np.ndarray, fd: bool, ext: bool) -> np.n
     return np.asarray(header_value(LAYOUTS[(fd, ext)], vals), dtype=np.int64)
 
 
+#: Frames per vectorised step; about 64k int16 values (128 KB) per array stays in cache.
+_SLICE_FRAMES = 1 << 16
+
+
 def _frame_bits_with(frames: pl.DataFrame, group_fn) -> pl.DataFrame:  # type: ignore[no-untyped-def]
     n = frames.height
     bits = np.zeros(n, dtype=np.uint16)
     dpb = np.zeros(n, dtype=np.uint16)
     if n:
         cols = _columns(frames)
-        for fd, ext, n_bytes, idx in _groups(cols):  # a handful of layouts per chunk
-            b, d = group_fn(cols, idx, fd, ext, n_bytes)
-            bits[idx] = b
-            dpb[idx] = d
+        for fd, ext, n_bytes, group in _groups(cols):  # a handful of layouts per chunk
+            # slices of a group keep the per-step arrays cache-sized (a loop over slices)
+            for a in range(0, len(group), _SLICE_FRAMES):
+                idx = group[a:a + _SLICE_FRAMES]
+                b, d = group_fn(cols, idx, fd, ext, n_bytes)
+                bits[idx] = b
+                dpb[idx] = d
     return pl.DataFrame({"bits": bits, "data_phase_bits": dpb})
 
 
