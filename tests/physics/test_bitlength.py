@@ -267,3 +267,12 @@ def test_fd_crc_over_stuffed_bits_against_crccheck() -> None:
         assert "".join(map(str, w.bits[k + 1:k + 5])) == gray_parity[w.dynamic_stuff_bits % 8]
         checked += 1
     assert checked >= 20
+
+
+def test_slices_give_the_same_answer(monkeypatch: pytest.MonkeyPatch) -> None:
+    rng = np.random.default_rng(3)
+    batch: list[Frame] = [(int(rng.integers(2048)), False, False, bool(fd), bool(fd), False, 8,
+                           rng.integers(0, 256, 8, dtype=np.uint8).tobytes())
+                          for fd in rng.integers(0, 2, 200)]  # test data generation
+    monkeypatch.setattr(bl, "_SLICE_FRAMES", 7)
+    assert _vectorised(batch) == [bl.frame_bits_reference(*f) for f in batch]
