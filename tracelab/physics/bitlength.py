@@ -12,8 +12,10 @@ Three implementations, one answer (the tests hold them equal):
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 from functools import cache
+from typing import Any
 
 import numpy as np
 import polars as pl
@@ -99,7 +101,8 @@ def payload_bytes(dlc: int, fd: bool, rtr: bool) -> int:
     return FD_PAYLOAD_BYTES[dlc] if fd else CLASSIC_PAYLOAD_BYTES[dlc]
 
 
-def _field_values(ident, ext: bool, rtr, brs, esi, dlc) -> dict:  # type: ignore[no-untyped-def]
+def _field_values(ident: Any, ext: bool, rtr: Any, brs: Any, esi: Any, dlc: Any
+                  ) -> dict[str, Any]:
     """Frame-supplied header fields; works on Python ints and numpy arrays alike."""
     if ext:
         return {"id_hi": ident >> 18, "id_lo": ident & 0x3FFFF, "rtr": rtr, "brs": brs,
@@ -107,7 +110,7 @@ def _field_values(ident, ext: bool, rtr, brs, esi, dlc) -> dict:  # type: ignore
     return {"id": ident & 0x7FF, "rtr": rtr, "brs": brs, "esi": esi, "dlc": dlc}
 
 
-def header_value(layout: tuple[Field, ...], values: dict):  # type: ignore[no-untyped-def]
+def header_value(layout: tuple[Field, ...], values: dict[str, Any]) -> Any:
     """The header as one integer, SOF in the most significant bit; reads the layout table."""
     total = 0
     pos = sum(w for _, w, _ in layout)
@@ -241,7 +244,9 @@ def _columns(frames: pl.DataFrame) -> _Columns:
     ext, fd = _bool(frames, "ext"), _bool(frames, "fd")
     rtr = _bool(frames, "rtr") & ~fd
     brs, esi = _bool(frames, "brs") & fd, _bool(frames, "esi") & fd
-    dlc = frames["dlc"].cast(pl.Int64).to_numpy() & 0xF
+    dlc = frames["dlc"].cast(pl.Int64).to_numpy()
+    if dlc.size and (dlc.min() < 0 or dlc.max() > 15):
+        raise ValueError(f"DLC must be 0..15, got {int(dlc.max() if dlc.max() > 15 else dlc.min())}")
     n_bytes = np.where(fd, _FD_BYTES[dlc], np.where(rtr, 0, _CLASSIC_BYTES[dlc]))
     arr = frames["data"].cast(pl.Binary).to_arrow()
     if hasattr(arr, "combine_chunks"):
@@ -256,7 +261,7 @@ def _columns(frames: pl.DataFrame) -> _Columns:
     if values.size == 0:  # masked reads of short payloads still need one readable byte
         values = np.zeros(1, dtype=np.uint8)
     if arr.null_count:
-        lengths = np.where(np.asarray(arr.is_null()), 0, lengths)
+        lengths = np.where(arr.is_null().to_numpy(zero_copy_only=False), 0, lengths)
     return _Columns(ident, ext, rtr, fd, brs, esi, dlc, n_bytes, offsets[:-1], lengths, values)
 
 
@@ -272,13 +277,6 @@ def _data_columns(cols: _Columns, idx: np.ndarray, n: int) -> list[np.ndarray]:
             lengths > j, cols.values[np.where(lengths > j, off + j, 0)], 0).astype(np.uint8)
         out.append(col)
     return out
-
-
-def _data_matrix(cols: _Columns, idx: np.ndarray, n: int) -> np.ndarray:
-    """(len(idx), n) uint8 payload matrix."""
-    if n == 0:
-        return np.zeros((len(idx), 0), dtype=np.uint8)
-    return np.stack(_data_columns(cols, idx, n), axis=1)
 
 
 def _groups(cols: _Columns) -> list[tuple[bool, bool, int, np.ndarray]]:
@@ -306,7 +304,10 @@ def _header_values(cols: _Columns, idx: np.ndarray, fd: bool, ext: bool) -> np.n
 _SLICE_FRAMES = 1 << 16
 
 
-def _frame_bits_with(frames: pl.DataFrame, group_fn) -> pl.DataFrame:  # type: ignore[no-untyped-def]
+GroupFn = Callable[[_Columns, np.ndarray, bool, bool, int], tuple[np.ndarray, np.ndarray]]
+
+
+def _frame_bits_with(frames: pl.DataFrame, group_fn: GroupFn) -> pl.DataFrame:
     n = frames.height
     bits = np.zeros(n, dtype=np.uint16)
     dpb = np.zeros(n, dtype=np.uint16)
