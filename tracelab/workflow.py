@@ -30,7 +30,26 @@ def info(dataset: Path) -> Any:
 
 def simulate(scenario: Path, output: Path, duration: str | None = None, seed: int | None = None,
              quiet: bool = False) -> Any:
-    raise NotImplementedError("simulate")
+    from tracelab.errors import UsageError
+    from tracelab.network.catalog import parse_duration_ns
+    from tracelab.simulate import load_scenario
+    from tracelab.simulate import simulate as run_simulation
+
+    duration_ns = None
+    if duration is not None:
+        try:
+            duration_ns = parse_duration_ns(duration)
+        except ValueError as error:
+            raise UsageError(f"--duration: {error}") from None
+        if duration_ns <= 0:
+            raise UsageError("--duration must be longer than 0")
+    if seed is not None and seed < 0:
+        raise UsageError("--seed must be a non-negative integer")
+    output = Path(output)
+    if not output.parent.is_dir():
+        raise UsageError(f"output directory {output.parent} does not exist")
+    return run_simulation(load_scenario(scenario), output, duration_ns=duration_ns, seed=seed,
+                          quiet=quiet)
 
 
 # --- timing / load / sql ------------------------------------------------------------------
