@@ -1,0 +1,584 @@
+"""Discrete-event simulation of one bus over its bus-idle instants (ISO 11898-1).
+
+The loop visits each instant the bus becomes idle, admits the releases due by then, lets the
+highest-priority pending frame win arbitration and transmits it. Pending messages are a
+bitmask over priority ranks (bit 0 = highest priority), so arbitration is one
+lowest-set-bit operation. The per-frame fast path handles the error-free case while every
+node's counters are zero; anything else (faults active, counters non-zero, error-passive
+nodes, bus-off recovery, missing acknowledgement) goes through ``_attempt``, which applies
+the fault-confinement rules of tracelab.physics.confinement. docs/simulator.md lists the
+simplifications.
+"""
+
+from __future__ import annotations
+
+from array import array
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from tracelab.format.writer import error_line, status_line
+from tracelab.physics.bitlength import (
+    TRAILER_BITS,
+    frame_bits_reference,
+    frame_durations_ns,
+    header_bits,
+)
+from tracelab.physics.confinement import (
+    PASSIVE_LIMIT,
+    RECOVERY_SEQUENCE_BITS,
+    RECOVERY_SEQUENCES,
+    ConfinementConfig,
+    NodeCounters,
+)
+from tracelab.simulate.scenario import FaultSpec, Scenario
+from tracelab.simulate.schedule import BusSchedule
+
+ACTIVE_FLAG_BITS = 6
+SUPERPOSED_FLAG_BITS = 12  # a first detector's flag, then everybody else's (ISO 11898-1 10.4.4.2)
+ERROR_DELIMITER_BITS = 8
+INTERMISSION_BITS = 3
+SUSPEND_BITS = 8
+#: After the CRC sequence: CRC delimiter, ACK slot, ACK delimiter, EOF (7), intermission (3).
+ACK_DELIMITER_FROM_END = 11  # bits from the ACK delimiter to the end of the intermission
+EOF_FROM_END = 10
+#: The recessive run that ends every frame: ACK delimiter + EOF + intermission = 11 bits, and
+#: every error frame: error delimiter + intermission = 11 bits.
+TAIL_RECESSIVE_BITS = 11
+INF = 1 << 62
+CHUNK = 1 << 16
+NOISE_KINDS = ("rx-noise", "tx-noise", "bus-noise")
+
+
+@dataclass
+class NodeTruth:
+    """True counter history of one controller (a node on one bus)."""
+
+    node: str
+    bus: str
+    trajectory: list[list[Any]] = field(default_factory=list)
+    transitions: list[dict[str, Any]] = field(default_factory=list)
+    bus_off: list[dict[str, Any]] = field(default_factory=list)
+
+
+@dataclass
+class _Noise:
+    spec: FaultSpec
+    node: int  # -1: the whole bus
+    start_ns: int
+    end_ns: int
+    count: int = 0
+
+    def rate_at(self, t_ns: int) -> float:
+        r0 = self.spec.rate or 0.0
+        if self.spec.rate_end is None:
+            return r0
+        span = max(1, self.end_ns - self.start_ns)
+        return r0 + (self.spec.rate_end - r0) * min(1.0, max(0.0, (t_ns - self.start_ns) / span))
+
+
+@dataclass
+class BusResult:
+    """What one bus produced: transmitted frames, other records, counts and truth."""
+
+    schedule: BusSchedule
+    start_ns: np.ndarray  # int64, per transmitted frame
+    release: np.ndarray  # int64 index into the schedule arrays
+    end_ns: np.ndarray  # int64 end of intermission
+    esi: np.ndarray  # bool
+    records: list[tuple[int, int, str]]  # (t_ns, rank or -1, line): errors and status
+    dropped: np.ndarray  # per rank
+    nodes: list[NodeTruth]
+    first_degraded: dict[str, Any] | None
+    first_warning: dict[str, Any] | None
+    error_frames: int
+    busy_error_ns: int
+
+
+class BusEngine:
+    """One bus: nodes, their counters and the event loop."""
+
+    def __init__(self, scenario: Scenario, schedule: BusSchedule, duration_ns: int,
+                 rng: np.random.Generator, progress: Callable[[float], None] | None = None
+                 ) -> None:
+        self.sc = scenario
+        self.s = schedule
+        self.bus = schedule.bus.alias
+        self.duration_ns = duration_ns
+        self.rng = rng
+        self.progress = progress
+        self.nominal_bps = schedule.bus.nominal_bps
+        self.data_bps = schedule.bus.data_bps
+        self.bit_ns = 1e9 / self.nominal_bps
+        self.data_bit_ns = 1e9 / (self.data_bps or self.nominal_bps)
+        self.stamp_end = schedule.bus.stamp == "end"
+        self.attribute = scenario.run.attribute_errors
+        self.names = scenario.catalog.nodes_on(self.bus)
+        self.index = {n: i for i, n in enumerate(self.names)}
+        nn = len(self.names)
+        self.counters: list[NodeCounters] = []
+        for name in self.names:
+            b = scenario.behaviour[name]
+            cfg = ConfinementConfig(recovery="software" if b.recovery == "software" else "auto",
+                                    recovery_delay_ns=b.recovery_delay_ns)
+            self.counters.append(NodeCounters(config=cfg))
+        self.truth = [NodeTruth(n, self.bus, [[0, 0, 0, "error-active"]]) for n in self.names]
+        self.state = ["error-active"] * nn
+        self.isolated = [False] * nn
+        self.msg_node = [self.index[m.sender] for m in schedule.messages]
+        self.node_mask = [0] * nn
+        for m in schedule.messages:
+            self.node_mask[self.index[m.sender]] |= 1 << m.rank
+        self.logger_ack = scenario.run.logger_ack
+        self.susp_node = -1
+        self.susp_until = INF
+        self.rec_run_start: dict[int, float] = {}  # bus-off node -> start of recessive run
+        self.rec_occ: dict[int, int] = {}
+        self.rec_time: dict[int, int] = {}
+        self.active: list[_Noise] = []
+        self.records: list[tuple[int, int, str]] = []
+        self.first_degraded: dict[str, Any] | None = None
+        self.first_warning: dict[str, Any] | None = None
+        self.error_frames = 0
+        self.busy_error_ns = 0
+        self._u = rng.random(4096)
+        self._ui = 0
+        self._esi: dict[int, int] = {}  # output position -> duration of an ESI frame
+        self._esi_bits: dict[int, tuple[int, int, int]] = {}  # release -> bits, dpb, ns
+        self._static = self._static_events()
+        self._si = 0
+        self._recompute()
+
+    # --- state helpers (rare events) ---------------------------------------------------
+
+    def _participating(self, n: int) -> bool:
+        return not self.counters[n].bus_off and not self.isolated[n]
+
+    def _recompute(self) -> None:
+        """Masks and flags that change only on rare events."""
+        elig = dead = 0
+        ackers = 1 if self.logger_ack else 0
+        for n in range(len(self.names)):
+            if self._participating(n):
+                ackers += 1
+                if n != self.susp_node:
+                    elig |= self.node_mask[n]
+            if self.counters[n].bus_off:
+                dead |= self.node_mask[n]
+        self.elig, self.dead, self.ackers = elig, dead, ackers
+        hot = any(c.tec or c.rec or c.bus_off for c in self.counters)
+        self.slow = bool(self.active) or ackers <= 1 or hot or self.susp_node >= 0
+
+    def _uniform(self) -> float:
+        if self._ui >= len(self._u):
+            self._u = self.rng.random(4096)
+            self._ui = 0
+        self._ui += 1
+        return float(self._u[self._ui - 1])
+
+    def _note(self, n: int, t_ns: int) -> None:
+        """Record node n's counters at t_ns if they changed; track state transitions."""
+        c = self.counters[n]
+        truth = self.truth[n]
+        state = c.state
+        last = truth.trajectory[-1]
+        if last[1] == c.tec and last[2] == c.rec and last[3] == state:
+            return
+        truth.trajectory.append([t_ns, c.tec, c.rec, state])
+        if state != self.state[n]:
+            truth.transitions.append({"t_ns": t_ns, "from": self.state[n], "to": state})
+            event = {"bus": self.bus, "node": self.names[n], "state": state, "t_ns": t_ns}
+            if state in ("error-passive", "bus-off") and self.first_degraded is None:
+                self.first_degraded = event
+            if state != "error-active" and self.first_warning is None:
+                self.first_warning = event
+            self.state[n] = state
+
+    # --- events ------------------------------------------------------------------------
+
+    def _static_events(self) -> list[tuple[int, int, str, Any]]:
+        """Fault windows, status ticks, progress ticks and the end of the run, sorted."""
+        ev: list[tuple[int, int, str, Any]] = []
+        for f in self.sc.faults:
+            if self.bus not in f.buses:
+                continue
+            end = self.duration_ns if f.end_ns is None else min(f.end_ns, self.duration_ns)
+            if f.start_ns >= self.duration_ns:
+                continue
+            if f.kind in NOISE_KINDS:
+                node = -1 if f.node is None else self.index[f.node]
+                noise = _Noise(f, node, f.start_ns, end)
+                ev.append((f.start_ns, 1, "noise-on", noise))
+                ev.append((end, 0, "noise-off", noise))
+            elif f.kind == "isolated":
+                assert f.node is not None
+                ev.append((f.start_ns, 1, "isolate", self.index[f.node]))
+                ev.append((end, 0, "rejoin", self.index[f.node]))
+        every = self.sc.run.status_every_ns
+        if every:
+            ev.extend((t, 2, "status", None) for t in range(every, self.duration_ns, every))
+        if self.progress is not None:
+            step = max(1, self.duration_ns // 100)
+            ev.extend((t, 3, "progress", step) for t in range(step, self.duration_ns, step))
+        ev.append((self.duration_ns, 9, "end", None))
+        ev.sort(key=lambda e: (e[0], e[1]))
+        return ev
+
+    def _next_event(self) -> int:
+        t = self._static[self._si][0] if self._si < len(self._static) else INF
+        if self.susp_node >= 0:
+            t = min(t, self.susp_until)
+        if self.rec_time:
+            t = min(t, min(self.rec_time.values()))
+        return t
+
+    def _events(self, t: int, pending: int) -> tuple[bool, int]:
+        """Apply every event due at or before t; returns (run over, pending)."""
+        over = False
+        if self.susp_node >= 0 and self.susp_until <= t:
+            self.susp_node, self.susp_until = -1, INF
+        for n, t_rec in sorted(self.rec_time.items()):
+            if t_rec <= t:
+                self._recover(n, t_rec)
+        while self._si < len(self._static) and self._static[self._si][0] <= t:
+            t_ev, _, kind, arg = self._static[self._si]
+            self._si += 1
+            if kind == "end":
+                over = True
+            elif kind == "status":
+                self._status(t_ev)
+            elif kind == "progress":
+                assert self.progress is not None
+                self.progress(arg)
+            elif kind == "noise-on":
+                self.active.append(arg)
+            elif kind == "noise-off":
+                self.active.remove(arg)
+            elif kind == "isolate":
+                self._isolate(arg, t_ev, pending)
+            elif kind == "rejoin":
+                self.isolated[arg] = False
+        self._recompute()
+        return over, pending
+
+    def _status(self, t_ns: int) -> None:
+        for n, name in enumerate(self.names):
+            if self._participating(n):
+                c = self.counters[n]
+                self.records.append((t_ns, -1, status_line(t_ns, self.bus, name, c.tec, c.rec)))
+
+    def _recover(self, n: int, t_ns: int) -> None:
+        """Rule l: 128 x 11 recessive bits seen while bus-off: restart with zero counters."""
+        self.counters[n].recover()
+        del self.rec_time[n], self.rec_occ[n], self.rec_run_start[n]
+        self.truth[n].bus_off[-1]["to_ns"] = t_ns
+        self._note(n, t_ns)
+
+    def _recovery_due(self, n: int) -> int:
+        need = RECOVERY_SEQUENCES - self.rec_occ[n]
+        return int(np.ceil(self.rec_run_start[n] + need * RECOVERY_SEQUENCE_BITS * self.bit_ns))
+
+    def _count_recessive(self, sof_ns: int) -> None:
+        """A SOF ends the recessive run of every recovering node: count its 11-bit groups."""
+        group = RECOVERY_SEQUENCE_BITS * self.bit_ns
+        for n, run_start in self.rec_run_start.items():
+            if sof_ns > run_start:
+                self.rec_occ[n] += int((sof_ns - run_start) / group + 1e-9)
+
+    def _new_runs(self, end_ns: int) -> None:
+        """The frame just sent ends with 11 recessive bits: a new run starts there."""
+        for n in self.rec_run_start:
+            start = end_ns - TAIL_RECESSIVE_BITS * self.bit_ns
+            c = self.counters[n]
+            if c.config.recovery == "software":
+                start = max(start, self.truth[n].bus_off[-1]["from_ns"]
+                            + c.config.recovery_delay_ns)
+            self.rec_run_start[n] = start
+            self.rec_time[n] = self._recovery_due(n)
+
+    def _isolate(self, n: int, t_ns: int, pending: int) -> None:
+        """The node is alone on its own piece of wire: ACK errors until it is error-passive.
+
+        A loop over at most 16 attempts (rare event); after that nothing changes, because an
+        error-passive transmitter's ACK errors do not count (rule c, exception 1).
+        """
+        self.isolated[n] = True
+        c = self.counters[n]
+        mask = pending & self.node_mask[n]
+        s = self.s
+        if mask:
+            rank = (mask & -mask).bit_length() - 1
+            t = t_ns
+        else:
+            mine = np.flatnonzero((s.t_ns >= t_ns) & np.isin(
+                s.rank, [m.rank for m in s.messages if self.msg_node[m.rank] == n]))
+            if len(mine) == 0:
+                return
+            rank, t = int(s.rank[mine[0]]), int(s.t_ns[mine[0]])
+        bits = int(np.median(s.bits[s.rank == rank])) if np.any(s.rank == rank) else 64
+        attempt_ns = self._time_to_bit(bits - ACK_DELIMITER_FROM_END, bits, 0) + int(
+            (ACTIVE_FLAG_BITS + ERROR_DELIMITER_BITS + INTERMISSION_BITS) * self.bit_ns)
+        while not c.error_passive and not c.bus_off and t < self.duration_ns:
+            c.transmit_error(ack_error=True)
+            self._note(n, t + self._time_to_bit(bits - ACK_DELIMITER_FROM_END, bits, 0))
+            t += attempt_ns
+
+    # --- the loop ------------------------------------------------------------------------
+
+    def run(self) -> BusResult:
+        s = self.s
+        n_rel = len(s.t_ns)
+        bitof = [1 << r for r in range(len(s.messages))]
+        inst = [0] * len(s.messages)
+        idur = [0] * len(s.messages)
+        dropped = [0] * len(s.messages)
+        out_t = array("q")
+        out_g = array("q")
+        app_t, app_g = out_t.append, out_g.append
+        pending = 0
+        t = 0
+        base = 0
+        rt: list[int] = []
+        rm: list[int] = []
+        rd: list[int] = []
+        ri = clen = 0
+
+        def load(start: int) -> tuple[list[int], list[int], list[int], int]:
+            stop = min(n_rel, start + CHUNK)
+            lt = s.t_ns[start:stop].tolist()
+            lt.append(INF if stop == n_rel else -1)  # -1: chunk end, load the next one
+            return lt, s.rank[start:stop].tolist(), s.duration_ns[start:stop].tolist(), stop - start
+
+        rt, rm, rd, clen = load(0)
+        next_ev = self._next_event()
+        elig, dead, slow = self.elig, self.dead, self.slow
+        while True:
+            # Admit every release due by the bus-idle instant t (the per-frame hot path).
+            while True:
+                tr = rt[ri]
+                if tr > t:
+                    break
+                if tr < 0:  # end of chunk
+                    base += clen
+                    rt, rm, rd, clen = load(base)
+                    ri = 0
+                    continue
+                r = rm[ri]
+                b = bitof[r]
+                if (pending | dead) & b:
+                    dropped[r] += 1
+                    if dead & b:
+                        ri += 1
+                        continue
+                pending |= b
+                inst[r] = base + ri
+                idur[r] = rd[ri]
+                ri += 1
+            if t >= next_ev:
+                over, pending = self._events(t, pending)
+                if over:
+                    break
+                elig, dead, slow = self.elig, self.dead, self.slow
+                next_ev = self._next_event()
+                continue
+            cand = pending & elig
+            if not cand:  # idle until the next release or event (rt[ri] is never -1 here)
+                nt = rt[ri]
+                t = next_ev if nt >= next_ev else nt
+                continue
+            low = cand & -cand
+            r = low.bit_length() - 1
+            if slow:
+                t, pending = self._attempt(r, inst[r], idur[r], t, pending, out_t, out_g,
+                                           dropped)
+                elig, dead, slow = self.elig, self.dead, self.slow
+                next_ev = self._next_event()
+            else:
+                pending ^= low
+                app_t(t)
+                app_g(inst[r])
+                t += idur[r]
+        return self._result(out_t, out_g, dropped)
+
+    def _time_to_bit(self, d: int, bits: int, dpb: int) -> int:
+        """ns from SOF to the start of bit d (0 = SOF), data phase at the data rate."""
+        if not dpb:
+            return int(round(d * self.bit_ns))
+        prefix = bits - dpb - (TRAILER_BITS - 1)
+        if d <= prefix:
+            return int(round(d * self.bit_ns))
+        fast = min(d - prefix, dpb)
+        slow = prefix + max(0, d - prefix - dpb)
+        return int(round(slow * self.bit_ns + fast * self.data_bit_ns))
+
+    def _field_of(self, msg_ext: bool, fd: bool, nbytes: int, frac: float) -> str:
+        """Field at a fraction of the way from SOF to the end of the CRC (unstuffed layout;
+        stuff bits are taken as spread evenly, a documented simplification)."""
+        arb_end = 33 if msg_ext else 13
+        ctrl_end = header_bits(fd, msg_ext)
+        data_end = ctrl_end + 8 * nbytes
+        crc = (4 + (17 if nbytes <= 16 else 21)) if fd else 15
+        q = frac * (data_end + crc)
+        if q < 1:
+            return "sof"
+        if q < arb_end:
+            return "arbitration"
+        if q < ctrl_end:
+            return "control"
+        if q < data_end:
+            return "data"
+        return "crc"
+
+    def _decide(self, x: int, t_ns: int) -> tuple[str, int] | None:
+        """Which error (if any) this attempt suffers: (kind, first detector or -1)."""
+        for f in self.active:
+            if f.spec.kind == "bus-noise":
+                culprit = -1
+            elif f.node == x:
+                culprit = x  # tx-noise, or rx-noise seen by the transmitter's bit monitor
+            elif f.spec.kind == "rx-noise" and self._participating(f.node):
+                culprit = f.node
+            else:
+                continue
+            f.count += 1
+            if f.spec.every is not None:
+                hit = f.count % f.spec.every == 0
+            else:
+                hit = self._uniform() < f.rate_at(t_ns)
+            if hit:
+                if f.spec.kind == "bus-noise":
+                    return "bus", -1
+                return ("tx", x) if culprit == x else ("rx", culprit)
+        others = self.ackers - (1 if self._participating(x) else 0)
+        if others <= 0:
+            return "ack", x
+        return None
+
+    def _attempt(self, r: int, g: int, dur: int, start: int, pending: int, out_t: array,
+                 out_g: array, dropped: list[int]) -> tuple[int, int]:
+        """One transmission attempt on the slow path: errors, counters, suspend, recovery."""
+        s = self.s
+        msg = s.messages[r]
+        x = self.msg_node[r]
+        cx = self.counters[x]
+        bits, dpb = int(s.bits[g]), int(s.data_phase_bits[g])
+        esi = msg.fd and cx.error_passive
+        if esi:  # the ESI bit changes stuffing and CRC: recompute this one frame exactly
+            if g not in self._esi_bits:
+                data = bytes(s.payloads[r][int(s.k[g])])
+                eb, ed = frame_bits_reference(msg.id, msg.ext, msg.rtr, msg.fd, msg.brs, True,
+                                              msg.dlc, data)
+                edur = int(frame_durations_ns(np.array([eb]), np.array([ed]), self.nominal_bps,
+                                              self.data_bps if msg.brs else None)[0])
+                self._esi_bits[g] = (eb, ed, edur)
+            bits, dpb, dur = self._esi_bits[g]
+        if self.rec_run_start:
+            self._count_recessive(start)
+        decision = self._decide(x, start)
+        rx_passive = -1
+        if decision is not None and decision[0] == "rx" and self.counters[decision[1]].error_passive:
+            # A passive receiver's flag is recessive: it alone loses the frame (REC + 1).
+            rx_passive = decision[1]
+            self.counters[rx_passive].receive_error(first_detector=False)
+            self._note(rx_passive, start + self._time_to_bit(bits - EOF_FROM_END, bits, dpb))
+            decision = None
+        if decision is None:
+            end = start + dur
+            pos = len(out_t)
+            out_t.append(start)
+            out_g.append(g)
+            if esi:
+                self._esi[pos] = dur
+            pending &= ~(1 << r)
+            t_eof = end - int(round(INTERMISSION_BITS * self.bit_ns))
+            if cx.tec:
+                cx.transmit_success()
+                self._note(x, t_eof)
+            for n, c in enumerate(self.counters):
+                if n != x and n != rx_passive and c.rec and self._participating(n):
+                    c.receive_success()
+                    self._note(n, t_eof)
+        else:
+            end = self._error(decision, r, msg, x, start, bits, dpb, esi)
+            if cx.bus_off:
+                lost = pending & self.node_mask[x]
+                while lost:  # a loop over the node's pending frames (a few), at bus-off only
+                    low = lost & -lost
+                    dropped[low.bit_length() - 1] += 1
+                    lost ^= low
+                pending &= ~self.node_mask[x]
+        if self.rec_run_start:
+            self._new_runs(end)
+        if cx.error_passive and not cx.bus_off:
+            self.susp_node = x
+            self.susp_until = end + int(round(SUSPEND_BITS * self.bit_ns))
+        elif self.susp_node == x:
+            self.susp_node, self.susp_until = -1, INF
+        self._recompute()
+        return end, pending
+
+    def _error(self, decision: tuple[str, int], r: int, msg: Any, x: int, start: int,
+               bits: int, dpb: int, esi: bool) -> int:
+        """Error signalling and counter changes of one destroyed frame; returns its end."""
+        kind, first = decision
+        u = self._uniform()
+        nbytes = msg.nbytes
+        stuffed_to_crc_end = bits - TRAILER_BITS
+        if kind == "ack":
+            etype, efield, d = "ack", "ack", bits - ACK_DELIMITER_FROM_END
+        elif kind == "tx":
+            # A bit error somewhere after arbitration (control .. CRC).
+            lo = 0.25
+            frac = lo + (1 - lo) * u
+            etype, efield = "bit", self._field_of(msg.ext, msg.fd, nbytes, frac)
+            d = int(frac * stuffed_to_crc_end) + 1
+        elif u < 0.5:
+            frac = 2 * u
+            etype, efield = "stuff", self._field_of(msg.ext, msg.fd, nbytes, frac)
+            d = int(frac * stuffed_to_crc_end) + 1
+        else:
+            etype, efield, d = "crc", "crc", bits - EOF_FROM_END
+        t_flag = start + self._time_to_bit(d, bits, dpb)
+        receivers = [n for n in range(len(self.names)) if n != x and self._participating(n)]
+        if kind in ("tx", "rx") and receivers:
+            flag = SUPERPOSED_FLAG_BITS
+        else:
+            flag = ACTIVE_FLAG_BITS
+        end = t_flag + int(round((flag + ERROR_DELIMITER_BITS + INTERMISSION_BITS) * self.bit_ns))
+        self.error_frames += 1
+        self.busy_error_ns += end - start
+        by = self.names[first] if (self.attribute and first >= 0) else None
+        form = msg.form + ("e" if esi else "")
+        self.records.append((t_flag, r, error_line(t_flag, self.bus, etype, efield, msg.id,
+                                                   msg.ext, form, by)))
+        cx = self.counters[x]
+        was_off = cx.bus_off
+        cx.transmit_error(ack_error=kind == "ack")
+        self._note(x, t_flag)
+        if cx.bus_off and not was_off:
+            self.truth[x].bus_off.append({"from_ns": t_flag, "to_ns": None})
+            self.rec_occ[x] = 0
+            self.rec_run_start[x] = end - TAIL_RECESSIVE_BITS * self.bit_ns
+        for n in receivers:
+            self.counters[n].receive_error(first_detector=kind == "rx" and n == first)
+            self._note(n, t_flag)
+        return end
+
+    def _result(self, out_t: array, out_g: array, dropped: list[int]) -> BusResult:
+        s = self.s
+        start = np.frombuffer(out_t, dtype=np.int64).copy() if len(out_t) else np.zeros(0, np.int64)
+        release = np.frombuffer(out_g, dtype=np.int64).copy() if len(out_g) else np.zeros(0, np.int64)
+        durations = s.duration_ns[release] if len(release) else np.zeros(0, np.int64)
+        esi = np.zeros(len(release), dtype=bool)
+        for pos, dur in self._esi.items():  # frames sent with ESI (error-passive FD senders)
+            durations[pos] = dur
+            esi[pos] = True
+        return BusResult(s, start, release, start + durations, esi, self.records,
+                         np.asarray(dropped, dtype=np.int64), self.truth,
+                         self.first_degraded, self.first_warning, self.error_frames,
+                         self.busy_error_ns)
+
+
+__all__ = ["BusEngine", "BusResult", "NodeTruth", "PASSIVE_LIMIT"]

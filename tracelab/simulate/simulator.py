@@ -1,0 +1,302 @@
+"""``simulate()``: schedules -> per-bus event loops -> logger -> frame log + truth JSON.
+
+Buses are simulated independently (a node on two buses has one controller, with its own
+counters, on each). The logger then sees every bus: its records are merged in time order,
+a ``logger-loss`` fault removes some of them (and writes ``loss`` records), and the log is
+written through tracelab.format.writer. Line formatting is vectorised with polars.
+"""
+
+from __future__ import annotations
+
+import json
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import polars as pl
+
+from tracelab import __version__ as tracelab_version
+from tracelab.format.writer import BusDecl, LogHeader, LogWriter, loss_line, mark_line
+from tracelab.progress import progress
+from tracelab.simulate.engine import BusEngine, BusResult
+from tracelab.simulate.scenario import FaultSpec, Scenario
+from tracelab.simulate.schedule import build_schedule
+
+#: The logger loses whole 10 ms slots of records (buffer overflows come in bursts).
+LOSS_SLOT_NS = 10_000_000
+HEX = np.frombuffer(b"0123456789ABCDEF", dtype=np.uint8)
+WRITE_CHUNK = 1 << 16
+
+
+@dataclass
+class BusSummary:
+    bus: str
+    frames: int
+    error_frames: int
+    busy_ns: int
+    duration_ns: int
+
+    @property
+    def load_ratio(self) -> float:
+        return self.busy_ns / self.duration_ns if self.duration_ns else 0.0
+
+
+@dataclass
+class SimulationSummary:
+    """What simulate() wrote; ``describe()`` is the CLI's output."""
+
+    scenario: Path
+    log: Path
+    truth: Path
+    run: str
+    seed: int
+    duration_ns: int
+    records: int
+    buses: list[BusSummary] = field(default_factory=list)
+    elapsed_s: float = 0.0
+    first_degraded: list[dict[str, Any]] = field(default_factory=list)
+
+    @property
+    def frames(self) -> int:
+        return sum(b.frames for b in self.buses)
+
+    def describe(self) -> str:
+        rate = self.frames / self.elapsed_s if self.elapsed_s else 0.0
+        lines = [f"simulated run '{self.run}' (seed {self.seed}): {self.duration_ns / 1e9:g} s "
+                 f"of bus time, {self.frames} frames, {self.records} records in "
+                 f"{self.elapsed_s:.1f} s ({rate / 1000:.0f} k frames/s)"]
+        for b in self.buses:
+            lines.append(f"  bus {b.bus}: {b.frames} frames, {b.error_frames} error frames, "
+                         f"load {100 * b.load_ratio:.1f} %")
+        for entry in self.first_degraded:
+            first = entry["first"]
+            if first:
+                lines.append(f"  bus {entry['bus']}: first degraded node {first['node']} "
+                             f"({first['state']} at {first['t_ns'] / 1e9:.3f} s)")
+        lines.append(f"log: {self.log}")
+        lines.append(f"truth: {self.truth}")
+        return "\n".join(lines)
+
+    def as_json(self) -> dict[str, Any]:
+        return {"scenario": str(self.scenario), "log": str(self.log), "truth": str(self.truth),
+                "run": self.run, "seed": self.seed, "duration_ns": self.duration_ns,
+                "records": self.records, "frames": self.frames, "elapsed_s": self.elapsed_s,
+                "buses": [{"bus": b.bus, "frames": b.frames, "error_frames": b.error_frames,
+                           "load_ratio": b.load_ratio} for b in self.buses]}
+
+
+def truth_path(log: str | Path) -> Path:
+    """LOG + ".truth.json" (e.g. run.frames.zst.truth.json)."""
+    return Path(str(log) + ".truth.json")
+
+
+def run_buses(scenario: Scenario, duration_ns: int, seed: int, quiet: bool = True
+              ) -> list[BusResult]:
+    """Simulate every bus of the scenario (no file output); used by simulate() and tests."""
+    seeds = np.random.SeedSequence(seed).spawn(2 * len(scenario.catalog.buses))
+    results = []
+    with progress("simulating", total=100 * len(scenario.catalog.buses), quiet=quiet) as advance:
+        for i, bus in enumerate(scenario.catalog.buses):
+            schedule = build_schedule(scenario, bus, duration_ns,
+                                      np.random.default_rng(seeds[2 * i]))
+            step = duration_ns // 100 or 1
+
+            def tick(amount: float, step: int = step) -> None:
+                advance(amount / step)
+
+            engine = BusEngine(scenario, schedule, duration_ns,
+                               np.random.default_rng(seeds[2 * i + 1]),
+                               progress=None if quiet else tick)
+            results.append(engine.run())
+    return results
+
+
+def _frame_records(res: BusResult) -> pl.DataFrame:
+    """t_ns, rank, line of every transmitted frame, formatted without a Python loop."""
+    s = res.schedule
+    g = res.release
+    ranks = s.rank[g]
+    ks = s.k[g]
+    bit_ns = 1e9 / s.bus.nominal_bps
+    if s.bus.stamp == "end":
+        t = res.end_ns - int(round(3 * bit_ns))
+    else:
+        t = res.start_ns
+    width = max([m.nbytes for m in s.messages] + [1])
+    chars = np.zeros((len(g), 2 * width), dtype=np.uint8)
+    for m in s.messages:  # a loop over messages (tens), each vectorised over its frames
+        sel = np.flatnonzero(ranks == m.rank)
+        if not len(sel) or not m.nbytes:
+            continue
+        rows = s.payloads[m.rank][ks[sel]]
+        chars[sel, 0:2 * m.nbytes:2] = HEX[rows >> 4]
+        chars[sel, 1:2 * m.nbytes:2] = HEX[rows & 15]
+    payload = pl.Series(chars.view(f"S{2 * width}").ravel()).cast(pl.Utf8)
+    idents = np.array([m.id_hex for m in s.messages] or [""], dtype=object)
+    forms = np.array([m.form for m in s.messages] or [""], dtype=object)
+    dlcs = np.array([str(m.dlc) for m in s.messages] or [""], dtype=object)
+    frame = pl.DataFrame({
+        "t_ns": t.astype(np.int64),
+        "rank": ranks.astype(np.int64),
+        "ident": pl.Series(idents[ranks], dtype=pl.Utf8),
+        "form": pl.Series(forms[ranks], dtype=pl.Utf8),
+        "esi": res.esi,
+        "dlc": pl.Series(dlcs[ranks], dtype=pl.Utf8),
+        "payload": payload,
+    })
+    return frame.select(
+        "t_ns", "rank",
+        pl.concat_str([
+            pl.col("t_ns").cast(pl.Utf8), pl.lit(s.bus.alias), pl.lit("frame"), pl.col("ident"),
+            pl.when(pl.col("esi")).then(pl.col("form") + "e").otherwise(pl.col("form")),
+            pl.col("dlc"),
+            pl.when(pl.col("payload") == "").then(pl.lit("-")).otherwise(pl.col("payload")),
+        ], separator="\t").alias("line"),
+    )
+
+
+def _bus_records(res: BusResult) -> pl.DataFrame:
+    """Frames, errors and status records of one bus in time order."""
+    frames = _frame_records(res).with_columns(pl.lit(0, pl.Int8).alias("kind"))
+    other = pl.DataFrame(
+        {"t_ns": [r[0] for r in res.records], "rank": [r[1] for r in res.records],
+         "line": [r[2] for r in res.records]},
+        schema={"t_ns": pl.Int64, "rank": pl.Int64, "line": pl.Utf8},
+    ).with_columns(pl.lit(1, pl.Int8).alias("kind"))
+    return pl.concat([frames, other]).sort("t_ns", maintain_order=True)
+
+
+def _logger_loss(records: pl.DataFrame, bus: str, faults: list[FaultSpec], duration_ns: int,
+                 rng: np.random.Generator
+                 ) -> tuple[pl.DataFrame, list[dict[str, Any]], np.ndarray]:
+    """Drop whole 10 ms slots of records with probability ``rate`` inside each window and
+    write one ``loss`` record per run of consecutive dropped records.
+
+    Returns the kept records with the loss records merged in, the loss runs (truth) and
+    the ranks of the lost frames."""
+    t = records["t_ns"].to_numpy()
+    drop = np.zeros(len(t), dtype=bool)
+    for f in faults:  # a loop over logger-loss faults (a handful)
+        end = duration_ns if f.end_ns is None else min(f.end_ns, duration_ns)
+        n_slots = max(1, -(-(end - f.start_ns) // LOSS_SLOT_NS))
+        lost = rng.random(n_slots) < (f.rate or 1.0)
+        inside = (t >= f.start_ns) & (t < end)
+        slot = np.clip((t - f.start_ns) // LOSS_SLOT_NS, 0, n_slots - 1)
+        drop |= inside & lost[slot]
+    if not drop.any():
+        return records, [], np.zeros(0, np.int64)
+    edges = np.diff(np.concatenate([[0], drop.astype(np.int8), [0]]))
+    starts = np.flatnonzero(edges == 1)
+    stops = np.flatnonzero(edges == -1)  # exclusive
+    losses: list[dict[str, Any]] = [
+        {"bus": bus, "from_ns": int(t[a]), "to_ns": int(t[b - 1]), "dropped": int(b - a)}
+              for a, b in zip(starts, stops, strict=True)]  # one per loss run (rare)
+    loss_records = pl.DataFrame({
+        "t_ns": [x["from_ns"] for x in losses], "rank": [-1] * len(losses),
+        "line": [loss_line(x["from_ns"], bus, x["dropped"], x["to_ns"]) for x in losses],
+        "kind": [2] * len(losses),
+    }, schema={"t_ns": pl.Int64, "rank": pl.Int64, "line": pl.Utf8, "kind": pl.Int8})
+    dropped = pl.Series(drop)
+    lost_ranks = records.filter(dropped & (pl.col("kind") == 0))["rank"].to_numpy()
+    # A loss record takes the place (and time) of the first record it covers.
+    merged = pl.concat([records.filter(~dropped), loss_records]).sort("t_ns", maintain_order=True)
+    return merged, losses, lost_ranks
+
+
+def simulate(scenario: Scenario, out_path: str | Path, duration_ns: int | None = None,
+             seed: int | None = None, quiet: bool = False) -> SimulationSummary:
+    """Simulate the scenario; write the frame log and LOG.truth.json beside it."""
+    started = time.perf_counter()
+    out_path = Path(out_path)
+    duration_ns = duration_ns or scenario.run.duration_ns
+    seed = scenario.run.seed if seed is None else seed
+    results = run_buses(scenario, duration_ns, seed, quiet=quiet)
+    loss_rng = np.random.default_rng(np.random.SeedSequence([seed, 0x1055]))
+    parts = []
+    loss_truth: list[dict[str, Any]] = []
+    logger_dropped: dict[tuple[str, int], int] = {}
+    for order, res in enumerate(results):
+        bus = res.schedule.bus.alias
+        records = _bus_records(res)
+        faults = [f for f in scenario.faults if f.kind == "logger-loss" and bus in f.buses]
+        if faults:
+            records, losses, lost_ranks = _logger_loss(records, bus, faults, duration_ns,
+                                                       loss_rng)
+            for rank, count in enumerate(np.bincount(lost_ranks)):
+                logger_dropped[(bus, rank)] = int(count)
+            loss_truth.extend(losses)
+        parts.append(records.select("t_ns", "line").with_columns(
+            pl.lit(order, pl.Int32).alias("bus_order")))
+    marks = pl.DataFrame(
+        {"t_ns": [m.t_ns for m in scenario.marks if m.t_ns < duration_ns],
+         "line": [mark_line(m.t_ns, m.bus, m.text) for m in scenario.marks
+                  if m.t_ns < duration_ns]},
+        schema={"t_ns": pl.Int64, "line": pl.Utf8},
+    ).with_columns(pl.lit(-1, pl.Int32).alias("bus_order"))
+    merged = pl.concat([marks, *parts]).sort(["t_ns", "bus_order"], maintain_order=True)
+    header = LogHeader(
+        buses=[BusDecl(b.alias, b.nominal_bps, b.data_bps, b.stamp, b.name)
+               for b in scenario.catalog.buses.values()],
+        origin=scenario.run.origin,
+        meta={"run": scenario.run.name, "seed": str(seed), "source": "tracelab-simulate",
+              "version": tracelab_version},
+    )
+    lines = merged["line"]
+    with LogWriter(out_path, header) as writer:
+        for offset in range(0, len(lines), WRITE_CHUNK):
+            writer.lines(lines.slice(offset, WRITE_CHUNK).to_list())
+        n_records = writer.records
+    truth = build_truth(scenario, results, duration_ns, seed, loss_truth, logger_dropped)
+    tpath = truth_path(out_path)
+    tpath.write_text(json.dumps(truth, indent=1) + "\n", encoding="utf-8")
+    summary = SimulationSummary(
+        scenario.path, out_path, tpath, scenario.run.name, seed, duration_ns, n_records,
+        [BusSummary(r.schedule.bus.alias, len(r.release), r.error_frames,
+                    int((r.end_ns - r.start_ns).sum()) + r.busy_error_ns, duration_ns)
+         for r in results],
+        first_degraded=truth["first_degraded"],
+    )
+    summary.elapsed_s = time.perf_counter() - started
+    return summary
+
+
+def build_truth(scenario: Scenario, results: list[BusResult], duration_ns: int, seed: int,
+                loss_truth: list[dict[str, Any]], logger_dropped: dict[tuple[str, int], int]
+                ) -> dict[str, Any]:
+    """The ground truth JSON (docs/simulator.md, contract D)."""
+    faults = []
+    for f in scenario.faults:
+        entry = f.as_json()
+        entry["end_ns"] = duration_ns if f.end_ns is None else min(f.end_ns, duration_ns)
+        faults.append(entry)
+    nodes, messages, first = [], [], []
+    for res in results:
+        s = res.schedule
+        bus = s.bus.alias
+        for nt in res.nodes:
+            nodes.append({"node": nt.node, "bus": nt.bus, "trajectory": nt.trajectory,
+                          "transitions": nt.transitions, "bus_off": nt.bus_off})
+        queued = np.bincount(s.rank, minlength=len(s.messages))
+        sent = np.bincount(s.rank[res.release], minlength=len(s.messages))
+        for m in s.messages:
+            messages.append({
+                "bus": bus, "id": m.id, "id_hex": m.id_hex, "ext": m.ext, "name": m.name,
+                "sender": m.sender, "period_ns": m.period_ns, "queued": int(queued[m.rank]),
+                "sent": int(sent[m.rank]), "dropped": int(res.dropped[m.rank]),
+                "pending_at_end": int(queued[m.rank] - sent[m.rank] - res.dropped[m.rank]),
+                "suppressed": int(s.suppressed[m.rank]),
+                "logger_dropped": logger_dropped.get((bus, m.rank), 0),
+                "babble": m.babble,
+            })
+        first.append({"bus": bus, "first": res.first_degraded,
+                      "first_warning": res.first_warning})
+    return {
+        "run": scenario.run.name, "seed": seed, "duration_ns": duration_ns,
+        "origin": scenario.run.origin, "scenario": str(scenario.path),
+        "faults": faults, "nodes": nodes, "messages": messages, "first_degraded": first,
+        "logger_loss": loss_truth,
+        "buses": [{"bus": r.schedule.bus.alias, "frames": len(r.release),
+                   "error_frames": r.error_frames} for r in results],
+    }
