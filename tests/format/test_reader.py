@@ -166,3 +166,24 @@ def test_backward_time_steps_are_counted_per_bus_across_chunks(tmp_path: Path) -
 def test_read_header_stops_before_the_records(tmp_path: Path) -> None:
     header = read_header(_write(tmp_path, EXAMPLE + "junk without tabs\n"))
     assert header.meta["run"] == "endurance-114" and len(header.buses) == 2
+
+
+VARIETY = [
+    "10\tP\tframe\t0C0\ts\t08\tAABBCCDDEEFF0011",  # DLC with a leading zero: valid
+    "11\tC\tframe\t1abcdef\txfbe\t15\t" + "ab" * 64, "12\tP\tframe\t7ff\tsr\t3\t-",
+    "# comment\twith a tab", "", "\t", "13\tP\terror\tcrc\tcrc\t-\t-\tinv",
+    "14\t*\tmark\tstep \"2\"", "15\tP\tstatus\tinv\t128\t0", "16\tP\tloss\t-\t99",
+    "9\tP\tframe\t000\ts\t0\t-",
+]
+
+
+@pytest.mark.parametrize("bad", [c[1] for c in RECORD_CASES] + [None])
+def test_fast_and_exact_paths_give_the_same_tables(tmp_path: Path, bad: str | None) -> None:
+    lines = VARIETY + ([bad] if bad is not None else []) + VARIETY
+    path = _write(tmp_path, HEADER + "\n".join(lines) + "\n")
+    fast, exact = read_log(path, fast=True), read_log(path, fast=False)
+    for name in ("frames", "errors", "status", "marks", "losses", "rejects"):
+        assert getattr(fast, name).equals(getattr(exact, name)), name
+    assert (fast.lines, fast.other_lines, fast.backward_steps) == (
+        exact.lines, exact.other_lines, exact.backward_steps)
+    assert exact.backward_steps == 2 and exact.other_lines == 6

@@ -45,12 +45,16 @@ from tracelab.format.grammar import (
 )
 from tracelab.format.writer import BusDecl, LogHeader
 
-CHUNK_BYTES = 16 * 1024 * 1024
+CHUNK_BYTES = 8 * 1024 * 1024
 _HEADER_LINE_LIMIT = 64 * 1024  # a longer line cannot be a directive: it ends the header
 _MAX_FIELDS = 3 + max(len(v) for v in RECORD_FIELDS.values())
 _DIGITS = r"^[0-9]{1,19}$"  # up to int64; to_integer(strict=False) nulls an overflow
 _HEX_ID = r"^[0-9A-Fa-f]{1,8}$"
 _CORRUPT = (OSError, EOFError, zlib.error, zstandard.ZstdError)
+
+#: Every form FORM_RE accepts, for a cheap is_in() on the fast path.
+VALID_FORMS = tuple(f"{k}{rest}" for k in "sx" for rest in ("", "r", "f", "fb", "fe", "fbe"))
+_FAST_SCHEMA = {f"field_{i}": pl.String for i in range(_MAX_FIELDS + 1)}
 
 FRAME_COLUMNS = ("bus", "t_ns", "id", "ext", "rtr", "fd", "brs", "esi", "dlc", "data", "line")
 
@@ -423,6 +427,7 @@ class LogReader:
             raise
         self._reasons = _reasons(self.header)
         self._last_t: dict[str, int] = {}
+        self.fast = True  # tests switch the fast path off to compare both paths
 
     def close(self) -> None:
         self._stream.close()
@@ -493,6 +498,92 @@ class LogReader:
                                                                  "bad": pl.String})
 
     def _chunk(self, body: bytes, first_line: int, strict: bool, terminated: bool) -> Chunk:
+        """Fast path when the chunk is plain (LF only, UTF-8, every line valid), else the
+        exact path that finds each bad line and its reason."""
+        if terminated and self.fast:
+            chunk = self._chunk_fast(body, first_line)
+            if chunk is not None:
+                return chunk
+        return self._chunk_exact(body, first_line, strict, terminated)
+
+    def _chunk_fast(self, body: bytes, first_line: int) -> Chunk | None:
+        """Parse with polars' CSV reader and accept the chunk only when every line is valid;
+        None sends it to the exact path (which gives the same tables, and the rejects)."""
+        if b"\r" in body:
+            return None
+        try:
+            rows = pl.read_csv(body, separator="\t", has_header=False, quote_char=None,
+                               schema=_FAST_SCHEMA, truncate_ragged_lines=True,
+                               missing_columns="insert")
+        except (pl.exceptions.PolarsError, UnicodeDecodeError):
+            return None
+        n = body.count(b"\n")
+        if rows.height != n:
+            return None
+        f = [pl.col(name) for name in _FAST_SCHEMA]
+        header = self.header
+        aliases = [b.alias for b in header.buses]
+        fd_buses = [b.alias for b in header.buses if b.data_bps is not None]
+        form, dlc_text, data = f[4], f[5], f[6]
+        fd = form.str.contains("f", literal=True)
+        rtr = form.str.contains("r", literal=True)
+        ext = form.str.starts_with("x")
+        dlc = dlc_text.replace_strict({str(i): i for i in range(16)}, default=None,
+                                      return_dtype=pl.Int64)
+        need = pl.when(rtr).then(0).when(fd).then(_table_expr(FD_PAYLOAD_BYTES, dlc)).otherwise(
+            _table_expr(CLASSIC_PAYLOAD_BYTES, dlc))
+        rows = rows.with_columns(
+            line=pl.int_range(first_line, first_line + n, dtype=pl.Int64),
+            t_ns=pl.when(f[0].str.contains(_DIGITS)).then(f[0].str.to_integer(strict=False)),
+            id=pl.when(f[3].str.contains(_HEX_ID)).then(
+                f[3].str.to_integer(base=16, strict=False)),
+            payload=pl.when(data == NONE).then(pl.lit(b"")).otherwise(
+                data.str.decode("hex", strict=False)),
+            need=need, ext=ext, rtr=rtr, fd=fd,
+            brs=form.str.contains("b", literal=True), esi=form.str.contains("e", literal=True),
+            dlc=dlc, bus=f[1],
+            other=(f[0].is_null() & f[1].is_null() | f[0].str.starts_with("#")).fill_null(False),
+        )
+        c = pl.col
+        frame_ok = (
+            (f[2] == "frame") & c("t_ns").is_not_null() & f[1].is_in(aliases)
+            & c("id").is_not_null() & form.is_in(VALID_FORMS) & f[7].is_null()
+            & pl.when(c("ext")).then(c("id") <= MAX_EXTENDED_ID).otherwise(c("id") <= MAX_BASE_ID)
+            & (c("payload").bin.size() == c("need")) & (data != "")
+            & (~c("brs") | f[1].is_in(fd_buses))
+        ).fill_null(False)
+        rows = rows.with_columns(frame_ok=frame_ok)
+        rest = rows.filter(~c("frame_ok") & ~c("other"))
+        if rest.height:  # other kinds and odd-but-valid frames: the exact checks, on few rows
+            rest = rest.with_columns(
+                n_fields=pl.sum_horizontal(x.is_not_null() for x in f).cast(pl.UInt32))
+            if rest.select(self._reasons.is_not_null().any()).item():
+                return None
+        ok = rows.filter(c("frame_ok"))
+        frames = ok.select("bus", "t_ns", "id", "ext", "rtr", "fd", "brs", "esi", "dlc", "line",
+                           data="payload").with_columns(
+            id=c("id").cast(pl.UInt32), dlc=c("dlc").cast(pl.UInt8))
+        frames = frames.select(FRAME_COLUMNS)
+        if rest.height:
+            extra = self._frames(rest)
+            if extra.height:
+                frames = pl.concat([frames, extra]).sort("line")
+            timed = pl.concat([frames.select("bus", "t_ns", "line"),
+                               rest.filter(f[2] != "frame").select("bus", "t_ns", "line")]
+                              ).sort("line")
+        else:
+            timed = frames.select("bus", "t_ns", "line")
+        chunk = Chunk(
+            frames=frames, errors=self._errors(rest), status=self._status(rest),
+            marks=self._marks(rest), losses=self._losses(rest),
+            rejects=pl.DataFrame(schema={"line": pl.Int64, "raw": pl.String,
+                                         "reason": pl.String}),
+            lines=n, other_lines=n - ok.height - rest.height, bytes_read=self._raw.tell())
+        self._time_steps(timed, chunk)
+        return chunk
+
+    def _chunk_exact(self, body: bytes, first_line: int, strict: bool,
+                     terminated: bool) -> Chunk:
         frame = self._lines(body, terminated)
         n = frame.height
         frame = frame.with_columns(line=pl.int_range(first_line, first_line + n, dtype=pl.Int64))
@@ -620,9 +711,10 @@ class LogTables:
     extra: dict[str, object] = field(default_factory=dict)
 
 
-def read_log(path: str | Path, strict: bool = False) -> LogTables:
+def read_log(path: str | Path, strict: bool = False, fast: bool = True) -> LogTables:
     """Read a whole log into memory (tests, small logs); ingest streams chunks instead."""
     with LogReader(path) as reader:
+        reader.fast = fast
         chunks = list(reader.chunks(strict=strict))
         tables = {name: pl.concat([getattr(c, name) for c in chunks]) if chunks else None
                   for name in ("frames", "errors", "status", "marks", "losses", "rejects")}
