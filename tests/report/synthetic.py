@@ -119,13 +119,18 @@ FAULTS = {"results": [{
     "run": RUN, "bus": "body",
     "first_degraded": {"node": "bcm", "state": "error-passive", "t_ns": 40_640_000_000,
                        "wall_time": "2026-03-01T08:00:40.640Z", "confidence": 0.86},
-    "cause": {"kind": "transmitter fault", "node": "bcm"},
-    "hypotheses": [{"name": "bcm transmitter fault", "score": 0.86, "why": "TEC rose by 8 per error"},
+    "cause": {"kind": "transmit-fault", "node": "bcm"},
+    "hypotheses": [{"name": "bcm transmit fault", "score": 0.86, "why": "TEC rose by 8 per error"},
                    {"name": "wiring fault near <b>vcu</b>", "score": 0.1, "why": "few REC"}],
-    "nodes": [{"node": "bcm", "max_tec": 300, "max_rec": 0, "transitions": 3, "bus_off": 1}],
-    "evidence": [{"t_ns": 40_000_000_000, "text": "first bit error while bcm transmitted 1A0"}],
-}, {"run": RUN, "bus": "chassis", "first_degraded": None, "cause": None, "hypotheses": [],
-    "nodes": [], "evidence": []}]}
+    "nodes": [{"node": "bcm", "max_tec": 300, "max_rec": 0,
+               "transitions": [{"t_ns": 40_480_000_000, "from": "error-active", "to": "warning"}],
+               "bus_off": [{"from_ns": 41_280_000_000, "to_ns": None}]}],
+    "verdict": "synthetic-run/body: bcm degraded first.",
+    "evidence": {"errors": 60, "by_type": {"bit": 12, "stuff": 12}, "by_sender": {"bcm": 60},
+                 "decisive": [{"t_ns": 40_000_000_000, "what": "first error frame",
+                               "file": f"/logs/{RUN}.frames", "line": 5}]},
+}, {"run": RUN, "bus": "chassis", "first_degraded": None, "cause": {"kind": "none", "node": None},
+    "hypotheses": [], "nodes": [], "evidence": {"errors": 0, "decisive": []}}]}
 
 
 def build_dataset(path: Path, duration_s: float = 60.0, repeat: int = 1,

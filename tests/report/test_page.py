@@ -98,7 +98,7 @@ def test_verdict_sentence() -> None:
     assert tone == "bad"
     assert text == ("bcm on bus body degraded first: reached error-passive at 40.640 s "
                     "(2026-03-01T08:00:40.640Z), confidence 86%; most likely cause: "
-                    "transmitter fault.")
+                    "a transmit-side fault (bcm).")
     assert verdict_sentence({"results": [{"bus": "a", "first_degraded": None}]}) == (
         "Clean run: no node left error-active.", "ok")
     assert verdict_sentence(None, errors=3)[1] == "unknown"

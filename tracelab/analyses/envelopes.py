@@ -81,10 +81,17 @@ def _one(con: duckdb.DuckDBPyConnection, sql: str, params: dict[str, Any]) -> tu
     return tuple(rows[0]) if rows else ()
 
 
+def _nice(n: int) -> int:
+    """The smallest 1, 2 or 5 x 10^k that is >= n (readable bucket sizes: 20 ms, 5 s)."""
+    step = 10 ** max(0, len(str(max(1, n))) - 1)
+    return next(m * step for m in (1, 2, 5, 10) if m * step >= n)
+
+
 def _nice_bucket_ns(span_ns: int, points: int, multiple_of: int = 1) -> int:
-    """The smallest multiple of ``multiple_of`` that splits the span into <= points buckets."""
+    """A readable bucket, a multiple of ``multiple_of``, that splits the span into at most
+    ``points`` buckets."""
     raw = max(1, math.ceil(span_ns / max(1, points)))
-    return max(multiple_of, math.ceil(raw / multiple_of) * multiple_of)
+    return _nice(math.ceil(raw / multiple_of)) * multiple_of
 
 
 def _json_obj(text: Any) -> Any:

@@ -24,6 +24,8 @@ NS_PER_S = 1e9
 COUNTER_LEVELS = ((96, "warning 96"), (128, "error-passive 128"), (256, "bus-off 256"))
 STATE_ORDER = ("error-active", "warning", "error-passive", "bus-off")
 MARK_LABEL_CHARS = 28
+MIN_DRIFT_RANGE_PPM = 5.0  # crystal tolerances are tens of ppm; less is noise at this scale
+MIN_DEVIATION_RANGE_PCT = 0.5
 
 
 def esc(text: Any) -> str:
@@ -171,8 +173,25 @@ def deviation_figure(timing: pl.DataFrame, buses: Sequence[str], limit: int = 60
         xaxis={"title": {"text": "message (worst first)"}, "tickangle": -40,
                "automargin": True, "gridcolor": style.GRID},
         yaxis={"title": {"text": "deviation [% of period]"}, "gridcolor": style.GRID,
-               "zeroline": True, "zerolinecolor": style.RULE}))
+               "zeroline": True, "zerolinecolor": style.RULE, "exponentformat": "none",
+               "range": _symmetric_range(rows, ("deviation_pct",), MIN_DEVIATION_RANGE_PCT,
+                                         ("err_plus_pct", "err_minus_pct"))}))
     return fig
+
+
+def _symmetric_range(frame: pl.DataFrame, columns: Sequence[str], floor: float,
+                     spreads: Sequence[str] = ()) -> list[float]:
+    """A y range centred on zero that shows every value (plus its error bar), never
+    narrower than +-floor, so numerical noise does not fill the chart."""
+    reach = floor
+    for col in columns:
+        if col in frame.columns and frame[col].null_count() < len(frame):
+            extra = 0.0
+            for spread in spreads:
+                if spread in frame.columns:
+                    extra += float(frame[spread].fill_null(0).max() or 0)  # type: ignore[arg-type]
+            reach = max(reach, float(frame[col].abs().max()) + extra)  # type: ignore[arg-type]
+    return [-1.1 * reach, 1.1 * reach]
 
 
 def drift_figure(drift: pl.DataFrame) -> go.Figure:
@@ -194,7 +213,9 @@ def drift_figure(drift: pl.DataFrame) -> go.Figure:
     fig.update_layout(**style.base_layout(
         260, showlegend=False, xaxis={"title": {"text": "node"}, "gridcolor": style.GRID},
         yaxis={"title": {"text": "clock drift [ppm]"}, "gridcolor": style.GRID,
-               "zeroline": True, "zerolinecolor": style.RULE}))
+               "zeroline": True, "zerolinecolor": style.RULE, "exponentformat": "none",
+               "range": _symmetric_range(drift, ("max_drift_ppm", "min_drift_ppm",
+                                                 "drift_ppm"), MIN_DRIFT_RANGE_PPM)}))
     return fig
 
 

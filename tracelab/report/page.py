@@ -20,6 +20,10 @@ from tracelab.report.figures import NS_PER_S, esc, message_label
 PLOTLY_FILE = "plotly.min.js"
 CAUTION = ("Findings support, and do not replace, the engineer's judgement and the applicable "
            "functional-safety process and regulations.")
+CAUSE_WORDS = {"bus-disturbance": "a disturbance of the whole bus",
+               "receive-fault": "a receive-side fault", "transmit-fault": "a transmit-side fault",
+               "isolation": "a node cut off from the bus (no ACK)",
+               "silence": "a node falling silent"}
 STATE_WORDS = {"warning": "the warning limit", "error-passive": "error-passive",
                "bus-off": "bus-off", "error-active": "error-active"}
 
@@ -71,13 +75,23 @@ def verdict_sentence(faults: dict[str, Any] | None, errors: int = 0) -> tuple[st
     when = _secs(fd.get("t_ns"))
     if fd.get("wall_time"):
         when += f" ({fd['wall_time']})"
-    cause = (first.get("cause") or {}).get("kind")
-    state = STATE_WORDS.get(fd.get("state"), fd.get("state"))
-    text = (f"{fd.get('node')} on bus {first.get('bus')} degraded first: reached {state} at "
+    state = fd.get("state")
+    reached = "fell silent" if state == "silent" else \
+        f"reached {STATE_WORDS.get(state, state)}"
+    text = (f"{fd.get('node')} on bus {first.get('bus')} degraded first: {reached} at "
             f"{when}, confidence {_confidence(fd.get('confidence'))}")
-    if cause:
-        text += f"; most likely cause: {cause}"
-    return text + ".", "bad"
+    return text + f"; {cause_words(first.get('cause'))}.", "bad"
+
+
+def cause_words(cause: dict[str, Any] | None) -> str:
+    """The cause of a verdict in words."""
+    kind, node = (cause or {}).get("kind"), (cause or {}).get("node")
+    if kind in (None, "none"):
+        return "no cause named"
+    if kind == "unknown":
+        return "the evidence is too thin to name a cause"
+    what = CAUSE_WORDS.get(kind, kind.replace("-", " "))
+    return f"most likely cause: {what}" + (f" ({node})" if node else "")
 
 
 def verdict(data: ReportData) -> tuple[str, str]:
@@ -125,9 +139,11 @@ def header_section(data: ReportData) -> str:
 def _evidence_item(item: Any) -> str:
     if isinstance(item, dict):
         when = _secs(item["t_ns"]) + ": " if isinstance(item.get("t_ns"), int | float) else ""
-        for key in ("text", "what", "summary", "detail", "description", "reason", "why"):
+        where = (f" <code>{esc(Path(str(item['file'])).name)}:{esc(item.get('line'))}</code>"
+                 if item.get("file") else "")
+        for key in ("what", "text", "summary", "detail", "description", "reason", "why"):
             if item.get(key):
-                return f"<li>{when}{esc(item[key])}</li>"
+                return f"<li>{when}{esc(item[key])}{where}</li>"
         rest = {k: v for k, v in item.items() if k != "t_ns"}
         return f"<li>{when}<code>{esc(json.dumps(rest, default=str))}</code></li>"
     return f"<li>{esc(item)}</li>"
@@ -141,18 +157,23 @@ def verdict_section(data: ReportData) -> str:
     for result in _results(data):  # one result per bus: a handful
         fd = result.get("first_degraded")
         parts.append(f"<h3>bus {esc(result.get('bus'))}</h3>")
+        if result.get("verdict"):
+            parts.append(f"<p>{esc(result['verdict'])}</p>")
         if not fd:
             parts.append('<p class="muted">No node left error-active on this bus.</p>')
         else:
             when = _secs(fd.get("t_ns")) + (f" ({esc(fd['wall_time'])})"
                                              if fd.get("wall_time") else "")
-            parts.append(_facts([
+            facts = [
                 ("first degraded node", f"<b>{esc(fd.get('node'))}</b>"),
-                ("state reached", esc(fd.get("state"))), ("when", when),
+                ("state reached first", esc(fd.get("state"))), ("when", when),
                 ("confidence", esc(_confidence(fd.get("confidence")))),
-                ("cause", esc(" ".join(str(v) for v in (result.get("cause") or {}).values()
-                                       if v))),
-            ]))
+                ("cause", esc(cause_words(result.get("cause")))),
+            ]
+            if fd.get("worst_state") and fd.get("worst_state") != fd.get("state"):
+                facts.insert(3, ("worst state", f"{esc(fd['worst_state'])} at "
+                                                f"{_secs(fd.get('worst_t_ns'))}"))
+            parts.append(_facts(facts))
         hypotheses = sorted(result.get("hypotheses") or [],
                             key=lambda h: -(h.get("score") or 0))
         if len(hypotheses) > 1:
@@ -166,12 +187,17 @@ def verdict_section(data: ReportData) -> str:
                 f"<td>{esc(h.get('why'))}</td></tr>" for i, h in enumerate(hypotheses[:4]))
             parts.append("<h3>hypotheses</h3><table><thead><tr><th></th><th>hypothesis</th>"
                          f"<th class='num'>score</th><th>why</th></tr></thead>{rows}</table>")
-        evidence = result.get("evidence") or []
-        if isinstance(evidence, dict):
-            evidence = [{"what": k, "detail": v} if not isinstance(v, dict) else {"what": k, **v}
-                        for k, v in evidence.items()]
-        if evidence:
-            items = "".join(_evidence_item(e) for e in list(evidence)[:12])
+        evidence = result.get("evidence") or {}
+        decisive = evidence.get("decisive", []) if isinstance(evidence, dict) else evidence
+        if isinstance(evidence, dict) and evidence.get("errors") is not None:
+            by_type = ", ".join(f"{esc(k)} {esc(v)}" for k, v in
+                                (evidence.get("by_type") or {}).items()) or "none"
+            by_sender = ", ".join(f"{esc(k)} {esc(v)}" for k, v in
+                                  (evidence.get("by_sender") or {}).items()) or "none"
+            parts.append(f"<p class='note'>{esc(_int(evidence['errors']))} error frames "
+                         f"({by_type}); on the frames of: {by_sender}.</p>")
+        if decisive:
+            items = "".join(_evidence_item(e) for e in list(decisive)[:12])
             parts.append(f'<h3>decisive evidence</h3><ul class="evidence">{items}</ul>')
         nodes = result.get("nodes") or []
         if nodes:
