@@ -27,17 +27,22 @@ FROM frames GROUP BY run, bus, k
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__)
     parser.add_argument("--frames", type=int, default=2_000_000)
+    parser.add_argument("--repeat", type=int, default=3, help="best of N runs of each")
     args = parser.parse_args()
     with tempfile.TemporaryDirectory() as tmp:
         ds = write_dataset(Path(tmp) / "ds", args.frames)
         con = open_dataset(ds).connect()
-        t0 = time.perf_counter()
-        rows = con.sql(BARE).fetchall()
-        bare_s = time.perf_counter() - t0
+        rows = con.sql(BARE).fetchall()  # warm the file cache for both contenders
+        bare_s = job_s = float("inf")
+        for _ in range(args.repeat):  # alternate, best of N: the machine is shared
+            t0 = time.perf_counter()
+            rows = con.sql(BARE).fetchall()
+            bare_s = min(bare_s, time.perf_counter() - t0)
+            t0 = time.perf_counter()
+            result = workflow.load(ds, "100ms")
+            job_s = min(job_s, time.perf_counter() - t0)
         con.close()
-        t0 = time.perf_counter()
-        result = workflow.load(ds, "100ms")
-        load_s = time.perf_counter() - t0
+        load_s = job_s
         assert abs(result.windows.height - len(rows)) <= 2 * result.summary.height
         print(f"bare sum-per-window query: {bare_s:.2f} s   load end to end: {load_s:.2f} s   "
               f"ratio {load_s / bare_s:.2f} (target <= 2)")

@@ -29,17 +29,22 @@ GROUP BY bus, id
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__)
     parser.add_argument("--frames", type=int, default=2_000_000)
+    parser.add_argument("--repeat", type=int, default=3, help="best of N runs of each")
     args = parser.parse_args()
     with tempfile.TemporaryDirectory() as tmp:
         ds = write_dataset(Path(tmp) / "ds", args.frames)
         con = open_dataset(ds).connect()
-        t0 = time.perf_counter()
-        rows = con.sql(BARE).fetchall()
-        bare_s = time.perf_counter() - t0
+        rows = con.sql(BARE).fetchall()  # warm the file cache for both contenders
+        bare_s = job_s = float("inf")
+        for _ in range(args.repeat):  # alternate, best of N: the machine is shared
+            t0 = time.perf_counter()
+            rows = con.sql(BARE).fetchall()
+            bare_s = min(bare_s, time.perf_counter() - t0)
+            t0 = time.perf_counter()
+            result = workflow.timing(ds)
+            job_s = min(job_s, time.perf_counter() - t0)
         con.close()
-        t0 = time.perf_counter()
-        result = workflow.timing(ds)
-        timing_s = time.perf_counter() - t0
+        timing_s = job_s
         assert result.timing.height == len(rows)
         print(f"bare LAG query: {bare_s:.2f} s   timing end to end: {timing_s:.2f} s   "
               f"ratio {timing_s / bare_s:.2f} (target <= 2)")

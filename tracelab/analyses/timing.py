@@ -17,11 +17,12 @@ from tracelab.analyses import (
     hex_id_expr,
     install_macros,
     query_frame,
+    query_scalar,
     run_sql,
     run_sql_frame,
     text_table,
 )
-from tracelab.errors import UsageError
+from tracelab.errors import StoreError, UsageError
 from tracelab.network.catalog import Catalog
 
 #: Columns of timing.parquet and of each ``tracelab timing --json`` object, in order.
@@ -101,12 +102,15 @@ def timing(con: duckdb.DuckDBPyConnection, catalog: Catalog | None = None,
     con.execute("CREATE OR REPLACE TEMP TABLE tl_catalog AS SELECT * FROM _tl_catalog_in")
     con.unregister("_tl_catalog_in")
     params = {"run": run, "gap_factor": float(gap_factor)}
-    for step in ("timing_arrivals", "timing_periods", "timing_cycles", "gaps"):
+    run_sql(con, "timing_arrivals", params)
+    if query_scalar(con, "SELECT count(DISTINCT g) <> count(*) FROM tl_streams"):
+        raise StoreError("timing: two streams share a 64-bit key; please report this dataset")
+    for step in ("timing_periods", "timing_cycles", "gaps"):
         run_sql(con, step, params)
     table = run_sql_frame(con, "timing", params)
     gaps = query_frame(con, "SELECT * FROM tl_gaps ORDER BY run, bus, ext, id, from_ns")
-    con.execute("DROP TABLE IF EXISTS tl_arrivals")
-    con.execute("DROP TABLE IF EXISTS tl_cycles")
+    for temp in ("tl_arrivals", "tl_cycles"):  # the two frame-sized tables
+        con.execute(f"DROP TABLE IF EXISTS {temp}")
     table = table.select(TIMING_COLUMNS).with_columns(
         pl.col("id").cast(pl.UInt32), pl.col("count").cast(pl.Int64),
         *(pl.col(c).cast(pl.Int64) for c in ("period_ns", "min_ns", "max_ns", "cycle_max_abs_ns",
