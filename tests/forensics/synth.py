@@ -22,7 +22,8 @@ from tracelab.store import schema
 BITRATE_BPS = 500_000
 BIT_NS = 1e9 / BITRATE_BPS
 FRAME_BITS = 125
-ERROR_BITS = 40
+ERROR_AT_BITS = 62  # in the data field
+ERROR_BITS = ERROR_AT_BITS + 12 + 8 + 3  # superposed flag, delimiter, intermission
 NODES = ("alpha", "bravo", "charlie", "delta")
 #: one slot each in turn; alpha sends twice as often (more bus time)
 PATTERN = ("alpha", "bravo", "alpha", "charlie", "alpha", "delta", "bravo", "charlie")
@@ -113,7 +114,7 @@ def generate(slots: int, fault: str = "none", culprit: str = "alpha", p: float =
             elif fault == "rx" and state[culprit] in ("error-active", "warning") \
                     and not c[culprit].bus_off:
                 fails, by = rng.random() < p, culprit
-                kind = "bit" if sender == culprit else "crc"
+                kind = "bit" if sender == culprit else "stuff"
             elif fault == "bus":
                 fails = rng.random() < p
                 alive = [n for n in NODES if not c[n].bus_off]
@@ -121,7 +122,7 @@ def generate(slots: int, fault: str = "none", culprit: str = "alpha", p: float =
                 kind = "bit" if by == sender else "stuff"
         start = int(t)
         if fails:
-            t_err = int(t + 30 * BIT_NS)
+            t_err = int(t + ERROR_AT_BITS * BIT_NS)
             out.errors.append({"run": "r1", "bus": "can0", "t_ns": t_err, "type": kind,
                                "field": "data", "id": IDS[sender], "ext": False,
                                "form": "s", "by": by if attribute else None,
@@ -132,9 +133,12 @@ def generate(slots: int, fault: str = "none", culprit: str = "alpha", p: float =
                 elif kind != "ack":
                     c[n].receive_error(first_detector=(n == by))
             t += ERROR_BITS * BIT_NS
+            for n in list(recovery_left):
+                recovery_left[n] -= 1  # an error frame ends with 11 recessive bits too
             for n in NODES:
                 if c[n].bus_off and n not in recovery_left:
-                    recovery_left[n] = 128
+                    recovery_left[n] = 127  # its own error frame's tail is the first
+            _recover(c, recovery_left, int(t))
             note(t_err)
         else:
             end = t + FRAME_BITS * BIT_NS

@@ -14,10 +14,18 @@ from tracelab.forensics.replay import load_bus_evidence, recovery_end_ns, replay
 from tracelab.physics.confinement import DEFAULT_CONFIG
 
 
-def _strip_recovery(transitions: list[dict]) -> list[tuple]:
-    """Transitions without the exact time of bus-off recovery (compared separately)."""
-    return [(tr["from"], tr["to"]) if tr["from"] == "bus-off" else
-            (tr["t_ns"], tr["from"], tr["to"]) for tr in transitions]
+def _until_recovery(transitions: list[dict]) -> tuple[list[tuple], int | None]:
+    """Transitions up to the first bus-off recovery, and the time of that recovery.
+
+    After a recovery the replay depends on where in the errored frames the errors fell,
+    which the log does not say, so later transitions are compared only when none occurred.
+    """
+    out: list[tuple] = []
+    for tr in transitions:
+        if tr["from"] == "bus-off":
+            return out, tr["t_ns"]
+        out.append((tr["t_ns"], tr["from"], tr["to"]))
+    return out, None
 
 
 @pytest.mark.parametrize("fault,p,seed", [("tx", 0.6, 1), ("tx", 0.3, 2), ("rx", 0.4, 3),
@@ -29,9 +37,15 @@ def test_attributed_replay_equals_frame_by_frame_reference(fault: str, p: float,
     result = replay_faults(s.connect(), synth.catalog()).as_json()["results"][0]
     assert any(s.transitions.values())  # the scenario does degrade someone
     for node in result["nodes"]:
-        truth = s.transitions[node["node"]]
-        assert _strip_recovery(node["transitions"]) == _strip_recovery(truth), node["node"]
-        assert node["max_tec"] == s.max_tec[node["node"]]
+        got, got_recovery = _until_recovery(node["transitions"])
+        want, want_recovery = _until_recovery(s.transitions[node["node"]])
+        assert got == want, node["node"]
+        if want_recovery is None:
+            assert got_recovery is None
+            assert node["max_tec"] == s.max_tec[node["node"]]
+        else:
+            assert got_recovery is not None
+            assert abs(got_recovery - want_recovery) <= 3 * synth.FRAME_BITS * synth.BIT_NS
 
 
 def test_lone_node_without_ack_stays_error_passive_at_128() -> None:
