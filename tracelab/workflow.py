@@ -130,7 +130,35 @@ def sql(dataset: Path, query: str | None, fmt: str = "table", out: Path | None =
 
 
 def faults(dataset: Path, catalog: Path, run: str | None = None) -> Any:
-    raise NotImplementedError("faults")
+    """Replay the error counters; store counters, node_states, verdicts and faults.json.
+
+    Uses the timing analysis' gaps for silences when they exist. With --run, the stored
+    outputs keep the other runs' rows (faults.json too); the returned object has this run only.
+    """
+    from tracelab.forensics import replay_faults
+    from tracelab.network.catalog import load_catalog
+    from tracelab.store.dataset import open_dataset
+
+    ds = open_dataset(dataset)
+    cat = load_catalog(catalog)
+    _check_run(ds, run)
+    gaps = ds.read_analysis("gaps") if ds.has_analysis("gaps") else None
+    con = ds.connect()
+    try:
+        result = replay_faults(con, cat, run=run, gaps=gaps)
+    finally:
+        con.close()
+    _store(ds, "counters", result.counters, run)
+    _store(ds, "node_states", result.node_states, run)
+    _store(ds, "verdicts", result.verdicts, run)
+    payload = result.as_json()
+    if run is not None and ds.has_analysis("faults"):
+        old = ds.read_analysis_json("faults") or {}
+        kept = [r for r in old.get("results", []) if r.get("run") != run]
+        payload = {"results": sorted(kept + payload["results"],
+                                     key=lambda r: (r["run"], r["bus"]))}
+    ds.write_analysis_json("faults", payload)
+    return result
 
 
 # --- report / demo ------------------------------------------------------------------------

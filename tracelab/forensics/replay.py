@@ -42,7 +42,8 @@ KIND_STATUS = 1
 class CatalogLike(Protocol):
     """What the replay needs from a network catalog (tracelab.network.catalog.Catalog)."""
 
-    buses: Any
+    @property
+    def buses(self) -> Any: ...
 
     def messages_frame(self) -> pl.DataFrame: ...
 
