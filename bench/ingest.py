@@ -74,13 +74,14 @@ def generate(path: Path, n_lines: int, seed: int = 7) -> None:
             frame.write_csv(out, include_header=False, quote_style="never")
 
 
-def timed(cmd: list[str]) -> tuple[float, int, int]:
-    """(seconds, peak RSS bytes, exit code) of a child process."""
+def timed(cmd: list[str]) -> tuple[float, float, int, int]:
+    """(wall seconds, CPU seconds, peak RSS bytes, exit code) of a child process."""
     start = time.perf_counter()
     proc = subprocess.Popen(cmd)
     _, status, usage = os.wait4(proc.pid, 0)
     proc.returncode = os.waitstatus_to_exitcode(status)
-    return time.perf_counter() - start, usage.ru_maxrss * 1024, proc.returncode
+    cpu_s = usage.ru_utime + usage.ru_stime
+    return time.perf_counter() - start, cpu_s, usage.ru_maxrss * 1024, proc.returncode
 
 
 def main() -> int:
@@ -101,19 +102,23 @@ def main() -> int:
     lines = args.lines
     shutil.rmtree(work / "dataset", ignore_errors=True)
     (work / "baseline.parquet").unlink(missing_ok=True)
-    base_s, base_rss, rc = timed([sys.executable, "-c", BASELINE, str(log),
+    base_s, base_cpu, base_rss, rc = timed([sys.executable, "-c", BASELINE, str(log),
                                   str(work / "baseline.parquet"), str(HEADER_LINES)])
     if rc:
         return rc
-    ingest_s, ingest_rss, rc = timed([sys.executable, "-m", "tracelab.cli", "ingest", str(log),
+    ingest_s, ingest_cpu, ingest_rss, rc = timed([sys.executable, "-m", "tracelab.cli", "ingest", str(log),
                                       "-o", str(work / "dataset"), "--quiet"])
     if rc:
         return rc
-    for name, secs, rss in (("baseline polars scan_csv+sink_parquet", base_s, base_rss),
-                            ("tracelab ingest", ingest_s, ingest_rss)):
-        print(f"{name:40s} {secs:7.2f} s  {lines / secs / 1e6:6.2f} M lines/s  "
-              f"{size / secs / 1e6:7.1f} MB/s  peak RSS {rss / 2**20:7.0f} MiB")
+    print(f"{lines:,} lines, {size / 1e6:.0f} MB, {os.cpu_count()} cores, "
+          f"load average {os.getloadavg()[0]:.1f}")
+    for name, secs, cpu, rss in (
+            ("baseline polars scan_csv+sink_parquet", base_s, base_cpu, base_rss),
+            ("tracelab ingest", ingest_s, ingest_cpu, ingest_rss)):
+        print(f"{name:38s} {secs:6.2f} s  {lines / secs / 1e6:5.2f} M lines/s  "
+              f"{size / secs / 1e6:6.1f} MB/s  CPU {cpu:6.2f} s  peak RSS {rss / 2**20:5.0f} MiB")
     print(f"ratio ingest/baseline throughput: {base_s / ingest_s:.2f} (target >= 0.7); "
+          f"CPU-time ratio {base_cpu / ingest_cpu:.2f}; "
           f"ingest peak RSS {'ok' if ingest_rss <= 2**30 else 'OVER'} (target <= 1 GiB)")
     if args.workdir is None:
         shutil.rmtree(work, ignore_errors=True)

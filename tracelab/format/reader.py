@@ -17,6 +17,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, BinaryIO
 
+import numpy as np
 import polars as pl
 import zstandard
 
@@ -520,57 +521,56 @@ class LogReader:
         n = body.count(b"\n")
         if rows.height != n:
             return None
-        f = [pl.col(name) for name in _FAST_SCHEMA]
-        header = self.header
-        aliases = [b.alias for b in header.buses]
-        fd_buses = [b.alias for b in header.buses if b.data_bps is not None]
-        form, dlc_text, data = f[4], f[5], f[6]
-        fd = form.str.contains("f", literal=True)
-        rtr = form.str.contains("r", literal=True)
-        ext = form.str.starts_with("x")
-        dlc = dlc_text.replace_strict({str(i): i for i in range(16)}, default=None,
-                                      return_dtype=pl.Int64)
-        need = pl.when(rtr).then(0).when(fd).then(_table_expr(FD_PAYLOAD_BYTES, dlc)).otherwise(
-            _table_expr(CLASSIC_PAYLOAD_BYTES, dlc))
+        c, f = pl.col, [pl.col(name) for name in _FAST_SCHEMA]
+        aliases = [b.alias for b in self.header.buses]
+        fd_buses = [b.alias for b in self.header.buses if b.data_bps is not None]
+        # form as an index into VALID_FORMS: s, sr, sf, sfb, sfe, sfbe, x, xr, ... (6 each)
+        variant = c("form_code") % 6
         rows = rows.with_columns(
             line=pl.int_range(first_line, first_line + n, dtype=pl.Int64),
             t_ns=pl.when(f[0].str.contains(_DIGITS)).then(f[0].str.to_integer(strict=False)),
             id=pl.when(f[3].str.contains(_HEX_ID)).then(
                 f[3].str.to_integer(base=16, strict=False)),
-            payload=pl.when(data == NONE).then(pl.lit(b"")).otherwise(
-                data.str.decode("hex", strict=False)),
-            need=need, ext=ext, rtr=rtr, fd=fd,
-            brs=form.str.contains("b", literal=True), esi=form.str.contains("e", literal=True),
-            dlc=dlc, bus=f[1],
+            payload=pl.when(f[6] == NONE).then(pl.lit(b"")).otherwise(
+                f[6].str.decode("hex", strict=False)),
+            form_code=f[4].replace_strict({v: i for i, v in enumerate(VALID_FORMS)},
+                                          default=None, return_dtype=pl.Int16),
+            dlc=f[5].replace_strict({str(i): i for i in range(16)}, default=None,
+                                    return_dtype=pl.Int16),
+            bus=f[1],
             other=(f[0].is_null() & f[1].is_null() | f[0].str.starts_with("#")).fill_null(False),
+        ).with_columns(
+            ext=c("form_code") >= 6, rtr=variant == 1, fd=variant >= 2,
+            brs=(variant == 3) | (variant == 5), esi=variant >= 4,
         )
-        c = pl.col
+        payload_table = pl.lit(pl.Series(CLASSIC_PAYLOAD_BYTES + FD_PAYLOAD_BYTES, dtype=pl.Int64))
+        need = pl.when(c("rtr")).then(0).otherwise(
+            payload_table.gather(c("dlc") + 16 * c("fd").cast(pl.Int16)))
         frame_ok = (
-            (f[2] == "frame") & c("t_ns").is_not_null() & f[1].is_in(aliases)
-            & c("id").is_not_null() & form.is_in(VALID_FORMS) & f[7].is_null()
+            (f[2] == "frame") & c("t_ns").is_not_null() & c("bus").is_in(aliases)
+            & c("id").is_not_null() & c("form_code").is_not_null() & f[7].is_null()
             & pl.when(c("ext")).then(c("id") <= MAX_EXTENDED_ID).otherwise(c("id") <= MAX_BASE_ID)
-            & (c("payload").bin.size() == c("need")) & (data != "")
-            & (~c("brs") | f[1].is_in(fd_buses))
+            & (c("payload").bin.size() == need) & (~c("brs") | c("bus").is_in(fd_buses))
         ).fill_null(False)
-        rows = rows.with_columns(frame_ok=frame_ok)
-        rest = rows.filter(~c("frame_ok") & ~c("other"))
-        if rest.height:  # other kinds and odd-but-valid frames: the exact checks, on few rows
+        marks = rows.select(frame_ok=frame_ok, rest=~frame_ok & ~c("other"))
+        ok_mask, rest_mask = marks["frame_ok"], marks["rest"]
+        n_ok, n_rest = int(ok_mask.sum()), int(rest_mask.sum())
+        rest = rows.filter(rest_mask) if n_rest else rows.clear()
+        if n_rest:  # other kinds and odd-but-valid frames: the exact checks, on few rows
             rest = rest.with_columns(
                 n_fields=pl.sum_horizontal(x.is_not_null() for x in f).cast(pl.UInt32))
             if rest.select(self._reasons.is_not_null().any()).item():
                 return None
-        ok = rows.filter(c("frame_ok"))
-        frames = ok.select("bus", "t_ns", "id", "ext", "rtr", "fd", "brs", "esi", "dlc", "line",
-                           data="payload").with_columns(
-            id=c("id").cast(pl.UInt32), dlc=c("dlc").cast(pl.UInt8))
-        frames = frames.select(FRAME_COLUMNS)
-        if rest.height:
+        frames = rows.select(
+            "bus", "t_ns", c("id").cast(pl.UInt32), "ext", "rtr", "fd", "brs", "esi",
+            c("dlc").cast(pl.UInt8), c("payload").alias("data"), "line")
+        if n_ok < n:
+            frames = frames.filter(ok_mask)
+        if n_rest:
             extra = self._frames(rest)
             if extra.height:
                 frames = pl.concat([frames, extra]).sort("line")
-            timed = pl.concat([frames.select("bus", "t_ns", "line"),
-                               rest.filter(f[2] != "frame").select("bus", "t_ns", "line")]
-                              ).sort("line")
+            timed = rows.select("bus", "t_ns", "line").filter(ok_mask | rest_mask)
         else:
             timed = frames.select("bus", "t_ns", "line")
         chunk = Chunk(
@@ -578,7 +578,7 @@ class LogReader:
             marks=self._marks(rest), losses=self._losses(rest),
             rejects=pl.DataFrame(schema={"line": pl.Int64, "raw": pl.String,
                                          "reason": pl.String}),
-            lines=n, other_lines=n - ok.height - rest.height, bytes_read=self._raw.tell())
+            lines=n, other_lines=n - n_ok - n_rest, bytes_read=self._raw.tell())
         self._time_steps(timed, chunk)
         return chunk
 
@@ -623,21 +623,29 @@ class LogReader:
         return chunk
 
     def _time_steps(self, good: pl.DataFrame, chunk: Chunk) -> None:
-        """Backward time steps per bus, carried across chunks (marks on '*' are not counted)."""
+        """Backward time steps per bus, carried across chunks (marks on '*' are not counted).
+        ``good`` holds bus, t_ns, line of the valid records in line order."""
         if good.height == 0:
             return
         chunk.first_t_ns = good["t_ns"].min()  # type: ignore[assignment]
         chunk.last_t_ns = good["t_ns"].max()  # type: ignore[assignment]
-        timed = good.filter(pl.col("bus") != ALL_BUSES).select("bus", "t_ns", "line")
-        if timed.height == 0:
-            return
-        prev = pl.col("t_ns").shift(1).over("bus").fill_null(
-            pl.col("bus").replace_strict(self._last_t, default=None, return_dtype=pl.Int64))
-        back = timed.filter(pl.col("t_ns") < prev)
-        chunk.backward_steps = back.height
-        chunk.first_backward_line = back["line"][0] if back.height else None
-        last = timed.group_by("bus").agg(pl.col("t_ns").last())
-        self._last_t.update(zip(last["bus"].to_list(), last["t_ns"].to_list(), strict=True))
+        t_ns, lines = good["t_ns"].to_numpy(), good["line"].to_numpy()
+        firsts: list[int] = []
+        for decl in self.header.buses:  # a loop over the few buses, numpy within each
+            mask = (good["bus"] == decl.alias).to_numpy()
+            t_bus = t_ns[mask]
+            if t_bus.size == 0:
+                continue
+            back = np.flatnonzero(t_bus[1:] < t_bus[:-1]) + 1
+            chunk.backward_steps += back.size
+            previous = self._last_t.get(decl.alias)
+            if previous is not None and t_bus[0] < previous:
+                chunk.backward_steps += 1
+                back = np.concatenate([[0], back])
+            if back.size:
+                firsts.append(int(lines[mask][back[0]]))
+            self._last_t[decl.alias] = int(t_bus[-1])
+        chunk.first_backward_line = min(firsts) if firsts else None
 
     @staticmethod
     def _frames(good: pl.DataFrame) -> pl.DataFrame:
