@@ -131,7 +131,9 @@ def test_counters_figure_draws_levels_state_bands_and_node_states() -> None:
                              "tec_max": [8, 136, 264], "rec_max": [0, 1, 2]})
     states = pl.DataFrame({"bus": ["body"] * 2, "node": ["bcm"] * 2,
                            "state": ["error-passive", "bus-off"],
-                           "from_ns": [1_000_000_000, 2_000_000_000], "to_ns": [2_000_000_000, None]})
+                           "from_ns": [1_000_000_000, 2_000_000_000],
+                           "to_ns": [2_000_000_000, 10_000_000_000],
+                           "duration_ns": [1_000_000_000, 8_000_000_000]})
     fig = figures.counters_figure(counters, states, T0, T1, MARKS)
     tec, rec = fig.data[0], fig.data[1]
     assert list(tec.y) == [8, 136, 264] and list(rec.y) == [0, 1, 2]
@@ -142,7 +144,7 @@ def test_counters_figure_draws_levels_state_bands_and_node_states() -> None:
     # (common practice, no source).
     assert levels == [96, 128, 256]
     bars = [t for t in fig.data if t.type == "bar" and t.base is not None]
-    assert [(t.base[0], t.x[0]) for t in bars] == [(1.0, 1.0), (2.0, 8.0)]  # open end: run end
+    assert [(t.base[0], t.x[0]) for t in bars] == [(1.0, 1.0), (2.0, 8.0)]
     assert bars[1].marker.color == style.STATE_COLOURS["bus-off"] == style.ERROR_RED
     assert fig.layout.yaxis.range[1] > 264
     for axis in ("xaxis", "xaxis2", "xaxis3"):

@@ -19,6 +19,8 @@ from typing import Any
 import duckdb
 import polars as pl
 
+from tracelab.analyses import run_sql_frame
+
 #: Bus-load windows a reader can pick in the report (each a multiple of the stored window).
 LOAD_WINDOWS_NS = (10_000_000, 100_000_000, 1_000_000_000, 10_000_000_000, 60_000_000_000)
 #: A window is offered only when the run holds at least this many of it.
@@ -193,16 +195,20 @@ def load_windows(con: duckdb.DuckDBPyConnection, run: str, span_ns: int) -> list
 def load_envelopes(con: duckdb.DuckDBPyConnection, run: str, span_ns: int,
                    points: int) -> tuple[pl.DataFrame, pl.DataFrame]:
     """Per bus and selectable window: bucket envelopes, and mean / peak."""
-    envelopes, stats = [], []
-    for window_ns in load_windows(con, run, span_ns):  # a handful of window sizes
-        bucket_ns = _nice_bucket_ns(span_ns, points, multiple_of=window_ns)
-        params = {"run": run, "window_ns": window_ns, "bucket_ns": bucket_ns}
-        envelopes.append(_frame(con, envelope_sql("load"), params))
-        stats.append(_frame(con, envelope_sql("load_stats"),
-                            {"run": run, "window_ns": window_ns}))
-    if not envelopes:
+    windows = load_windows(con, run, span_ns)
+    if not windows:
         return pl.DataFrame(), pl.DataFrame()
-    return pl.concat(envelopes), pl.concat(stats)
+    sizes = pl.DataFrame({"window_ns": windows,
+                          "bucket_ns": [_nice_bucket_ns(span_ns, points, multiple_of=w)
+                                        for w in windows]}, schema={"window_ns": pl.Int64,
+                                                                    "bucket_ns": pl.Int64})
+    con.register("_tl_env_sizes", sizes.to_arrow())
+    con.execute("CREATE OR REPLACE TEMP TABLE tl_env_sizes AS SELECT * FROM _tl_env_sizes")
+    con.unregister("_tl_env_sizes")
+    envelope = run_sql_frame(con, "envelope_load", {"run": run})
+    stats = run_sql_frame(con, "envelope_load_stats", {})
+    con.execute("DROP TABLE IF EXISTS tl_env_load")
+    return envelope, stats
 
 
 def timing_table(con: duckdb.DuckDBPyConnection, run: str, limit: int = 500) -> pl.DataFrame:
@@ -298,7 +304,7 @@ def _run_faults(faults: dict[str, Any] | None, run: str) -> dict[str, Any] | Non
 
 def report_data(con: duckdb.DuckDBPyConnection, run: str, faults: dict[str, Any] | None = None,
                 points: int = 2000, raster_buckets: int = 600, marks_limit: int = 200,
-                reject_rows: int = 10) -> ReportData:
+                reject_rows: int = 10, states_limit: int = 5000) -> ReportData:
     """All aggregates of one run's report; ``faults`` is the stored faults.json object."""
     views = _views(con)
     hdr = header(con, run)
@@ -323,8 +329,11 @@ def report_data(con: duckdb.DuckDBPyConnection, run: str, faults: dict[str, Any]
     data.errors = _frame(con, envelope_sql("errors"), {"run": run, "bucket_ns": bucket_ns})
     data.counters = counter_envelopes(con, run, bucket_ns, views)
     if "node_states" in views:
-        data.states = _frame(con, "SELECT bus, node, state, from_ns, to_ns FROM node_states "
-                                  "WHERE run = $run ORDER BY bus, node, from_ns", {"run": run})
+        data.states = _frame(
+            con, "SELECT bus, node, state, from_ns, coalesce(to_ns, $t1) AS to_ns, "
+                 "coalesce(to_ns, $t1) - from_ns AS duration_ns FROM node_states "
+                 "WHERE run = $run ORDER BY from_ns, bus, node LIMIT $n",
+            {"run": run, "t1": t1, "n": states_limit})
     data.marks = _frame(con, envelope_sql("marks"), {"run": run, "limit": marks_limit})
     (total,) = _one(con, "SELECT count(*) FROM marks WHERE run = $run", {"run": run})
     data.marks_total = int(total or 0)

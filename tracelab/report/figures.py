@@ -56,20 +56,36 @@ def _time_axis(t0_ns: int, t1_ns: int) -> dict[str, Any]:
             "linecolor": style.GRID}
 
 
-def add_marks(fig: go.Figure, marks: pl.DataFrame, label_row_yref: str = "paper") -> None:
+def extend_layout(fig: go.Figure, shapes: Sequence[dict[str, Any]] = (),
+                  annotations: Sequence[dict[str, Any]] = ()) -> None:
+    """Append shapes and annotations in one step (Plotly's add_shape revalidates the whole
+    list on every call, which is quadratic in the number of marks)."""
+    update: dict[str, Any] = {}
+    if shapes:
+        update["shapes"] = [*fig.layout.shapes, *shapes]
+    if annotations:
+        update["annotations"] = [*fig.layout.annotations, *annotations]
+    if update:
+        fig.update_layout(**update)
+
+
+def add_marks(fig: go.Figure, marks: pl.DataFrame) -> None:
     """Vertical lines over the whole figure at each mark, labelled at the top."""
     if marks.is_empty():
         return
+    shapes, notes = [], []
     for row in marks.iter_rows(named=True):  # marks are test steps: a few hundred at most
         x = row["t_ns"] / NS_PER_S
-        fig.add_shape(type="line", xref="x", yref="paper", x0=x, x1=x, y0=0, y1=1,
-                      line={"color": style.MUTED, "width": 1, "dash": "dot"}, layer="above")
+        shapes.append({"type": "line", "xref": "x", "yref": "paper", "x0": x, "x1": x,
+                       "y0": 0, "y1": 1, "layer": "above",
+                       "line": {"color": style.MUTED, "width": 1, "dash": "dot"}})
         text = row["text"] or ""
         short = text if len(text) <= MARK_LABEL_CHARS else text[: MARK_LABEL_CHARS - 1] + "…"
-        fig.add_annotation(x=x, xref="x", y=1, yref=label_row_yref, yanchor="bottom",
-                           text=esc(short), hovertext=esc(f"{x:.3f} s  {text}"),
-                           showarrow=False, textangle=0, xanchor="left",
-                           font={"size": 10, "color": style.MUTED})
+        notes.append({"x": x, "xref": "x", "y": 1, "yref": "paper", "yanchor": "bottom",
+                      "xanchor": "left", "text": esc(short), "showarrow": False,
+                      "hovertext": esc(f"{x:.3f} s  {text}"),
+                      "font": {"size": 10, "color": style.MUTED}})
+    extend_layout(fig, shapes, notes)
 
 
 def load_figure(load: pl.DataFrame, stats: pl.DataFrame, buses: Sequence[str], t0_ns: int,
@@ -135,10 +151,13 @@ def load_figure(load: pl.DataFrame, stats: pl.DataFrame, buses: Sequence[str], t
             "bgcolor": style.PAGE, "bordercolor": style.GRID, "font": {"size": 11}}]
         layout["margin"] = {"l": 64, "r": 24, "t": 56, "b": 44}
     fig.update_layout(**layout)
-    fig.add_hline(y=load_limit, line={"color": style.RULE, "width": 1.2, "dash": "longdash"},
-                  annotation_text=f"recommended max {load_limit:.0%}",
-                  annotation_position="top left", annotation_font_size=10,
-                  annotation_font_color=style.MUTED)
+    extend_layout(
+        fig, [{"type": "line", "xref": "x domain", "yref": "y", "x0": 0, "x1": 1,
+               "y0": load_limit, "y1": load_limit,
+               "line": {"color": style.RULE, "width": 1.2, "dash": "longdash"}}],
+        [{"xref": "x domain", "yref": "y", "x": 0, "y": load_limit, "xanchor": "left",
+          "yanchor": "bottom", "text": f"recommended max {load_limit:.0%}", "showarrow": False,
+          "font": {"size": 10, "color": style.MUTED}}])
     add_marks(fig, marks)
     return fig
 
@@ -255,10 +274,11 @@ def gaps_figure(cells: pl.DataFrame, bucket_ns: int, losses: pl.DataFrame, t0_ns
         fig.add_trace(go.Scatter(x=[None], y=[None], mode="markers", name="logger-loss interval",
                                  marker={"symbol": "square", "size": 10,
                                          "color": _alpha(style.LOGGER_SHADE, 0.35)}))
-        for row in losses.iter_rows(named=True):  # logger losses are rare events
-            fig.add_vrect(x0=row["from_ns"] / NS_PER_S, x1=row["to_ns"] / NS_PER_S,
-                          fillcolor=style.LOGGER_SHADE, opacity=0.3, line_width=0,
-                          layer="below")
+        extend_layout(fig, [  # logger losses are rare events
+            {"type": "rect", "xref": "x", "yref": "paper", "x0": a / NS_PER_S,
+             "x1": b / NS_PER_S, "y0": 0, "y1": 1, "fillcolor": style.LOGGER_SHADE,
+             "opacity": 0.3, "line": {"width": 0}, "layer": "below"}
+            for a, b in losses.select("from_ns", "to_ns").iter_rows()])
     fig.update_layout(**style.base_layout(
         height, xaxis=_time_axis(t0_ns, t1_ns),
         yaxis={"title": {"text": ""}, "automargin": True, "autorange": "reversed",
@@ -308,20 +328,25 @@ def counters_figure(counters: pl.DataFrame, states: pl.DataFrame, t0_ns: int, t1
     labels = {k: esc(k[1] if len({b for b, _ in nodes}) <= 1 else f"{k[0]} {k[1]}")
               for k in nodes}
     top = 300
-    for row_index, prefix in ((1, "tec"), (2, "rec")):
+    for prefix in ("tec", "rec"):
         if not counters.is_empty():
             peak = counters[f"{prefix}_max"].max()
             top = max(top, int(peak) + 20 if isinstance(peak, int | float) else top)
+    for row_index in (1, 2):
+        yref = "y" if row_index == 1 else f"y{row_index}"
+        xref = "x domain" if row_index == 1 else f"x{row_index} domain"
         bounds = (0, 96, 128, 256, top)
-        for state, lo, hi in zip(STATE_ORDER, bounds[:-1], bounds[1:], strict=True):
-            fig.add_hrect(y0=lo, y1=hi, fillcolor=style.STATE_COLOURS[state], opacity=0.28,
-                          line_width=0, layer="below", row=row_index, col=1,
-                          exclude_empty_subplots=False)
-        for level, text in COUNTER_LEVELS:
-            fig.add_hline(y=level, line={"color": style.RULE, "width": 1, "dash": "dot"},
-                          annotation_text=text, annotation_position="top right",
-                          annotation_font_size=9, annotation_font_color=style.MUTED,
-                          row=row_index, col=1, exclude_empty_subplots=False)
+        bands = [{"type": "rect", "xref": xref, "yref": yref, "x0": 0, "x1": 1, "y0": lo,
+                  "y1": hi, "fillcolor": style.STATE_COLOURS[state], "opacity": 0.28,
+                  "line": {"width": 0}, "layer": "below"}
+                 for state, lo, hi in zip(STATE_ORDER, bounds[:-1], bounds[1:], strict=True)]
+        lines = [{"type": "line", "xref": xref, "yref": yref, "x0": 0, "x1": 1, "y0": level,
+                  "y1": level, "line": {"color": style.RULE, "width": 1, "dash": "dot"}}
+                 for level, _ in COUNTER_LEVELS]
+        notes = [{"xref": xref, "yref": yref, "x": 1, "y": level, "xanchor": "right",
+                  "yanchor": "bottom", "text": text, "showarrow": False,
+                  "font": {"size": 9, "color": style.MUTED}} for level, text in COUNTER_LEVELS]
+        extend_layout(fig, bands + lines, notes)
     for index, key in enumerate(nodes):  # one trace pair per node: a handful
         part = counters.filter((pl.col("bus") == key[0]) & (pl.col("node") == key[1])) \
             if not counters.is_empty() else pl.DataFrame()
@@ -337,17 +362,16 @@ def counters_figure(counters: pl.DataFrame, states: pl.DataFrame, t0_ns: int, t1
                 hovertemplate=f"{labels[key]} {prefix.upper()} %{{y}} at %{{x:.3f}} s"
                               "<extra></extra>"), row=row_index, col=1)
     if not states.is_empty():
-        for row in states.iter_rows(named=True):  # state intervals: rare events
-            key = (row["bus"], row["node"])
-            start = row["from_ns"] / NS_PER_S
-            end = (row["to_ns"] if row["to_ns"] is not None else t1_ns) / NS_PER_S
+        for state in states["state"].unique(maintain_order=True).to_list():  # four at most
+            part = states.filter(pl.col("state") == state)
             fig.add_trace(go.Bar(
-                x=[end - start], base=[start], y=[labels.get(key, esc(row["node"]))],
-                orientation="h", showlegend=False,
-                marker={"color": style.STATE_COLOURS.get(row["state"], style.MUTED),
+                x=seconds(part["duration_ns"]), base=seconds(part["from_ns"]),
+                y=[labels.get(k, esc(k[1])) for k in part.select("bus", "node").iter_rows()],
+                orientation="h", showlegend=False, name=esc(state),
+                marker={"color": style.STATE_COLOURS.get(state, style.MUTED),
                         "line": {"width": 0}},
-                hovertemplate=f"{labels.get(key, '')} {esc(row['state'])}<br>"
-                              f"{start:.3f} s .. {end:.3f} s<extra></extra>"), row=3, col=1)
+                hovertemplate=f"%{{y}} {esc(state)}<br>from %{{base:.3f}} s for "
+                              "%{x:.3f} s<extra></extra>"), row=3, col=1)
         for state in STATE_ORDER:  # a legend for the state colours
             fig.add_trace(go.Bar(x=[None], y=[None], name=state, orientation="h",
                                  marker={"color": style.STATE_COLOURS[state]},
