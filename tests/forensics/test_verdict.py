@@ -64,14 +64,44 @@ def test_thin_evidence_says_unknown() -> None:
     assert "too thin" in v["verdict"]
 
 
-def test_silent_node_without_errors() -> None:
-    s = synth.generate(3000, seed=2)
-    cut = s.frames[1500]["t_ns"]
-    s.frames = [f for f in s.frames if not (f["id"] == synth.IDS["delta"] and f["t_ns"] > cut)]
-    v = _verdict(s)
+def _silence_delta(fd: bool, back: bool, esi_on_return: bool = False) -> tuple[dict, int]:
+    s = synth.generate(3000, seed=2, fd=fd)
+    cut, back_t = s.frames[1200]["t_ns"], s.frames[2000]["t_ns"]
+    delta = synth.IDS["delta"]
+    s.frames = [f for f in s.frames if not (f["id"] == delta and f["t_ns"] > cut
+                                            and (not back or f["t_ns"] < back_t))]
+    if back:
+        first_back = next(f for f in s.frames if f["id"] == delta and f["t_ns"] >= back_t)
+        first_back["esi"] = esi_on_return
+    v = replay_faults(s.connect(), synth.catalog(fd=fd)).as_json()["results"][0]
+    return v, cut
+
+
+def test_node_that_stops_without_errors_is_named_cut_off_or_silent() -> None:
+    v, cut = _silence_delta(fd=False, back=False)
+    top = {h["name"]: h["score"] for h in v["hypotheses"][:2]}
+    assert set(top) == {"isolation:delta", "silence:delta"}
+    assert top["isolation:delta"] == pytest.approx(top["silence:delta"])  # cannot tell
+    assert v["cause"]["node"] == "delta" and v["first_degraded"]["node"] == "delta"
+    # cut off: its next frame is retransmitted into the void; warning at the 12th ACK error
+    # (12 x 8 = 96), error-passive at the 16th (ISO 11898-1 rule c)
+    delta = next(n for n in v["nodes"] if n["node"] == "delta")
+    assert [tr["to"] for tr in delta["transitions"]] == ["warning", "error-passive"]
+    assert cut < v["first_degraded"]["t_ns"] < cut + 16 * 2 * FRAME_NS + 8 * FRAME_NS
+
+
+def test_return_with_esi_clear_means_it_just_stopped() -> None:
+    # source: ISO 11898-1 ESI bit: an error-passive transmitter sends ESI recessive (set)
+    v, cut = _silence_delta(fd=True, back=True, esi_on_return=False)
     assert v["cause"] == {"kind": "silence", "node": "delta"}
     assert v["first_degraded"]["state"] == "silent"
     assert cut - 10 * FRAME_NS <= v["first_degraded"]["t_ns"] <= cut
+
+
+def test_return_with_esi_set_means_it_was_cut_off() -> None:
+    v, _ = _silence_delta(fd=True, back=True, esi_on_return=True)
+    assert v["cause"] == {"kind": "isolation", "node": "delta"}
+    assert v["first_degraded"]["confidence"] > 0.8
 
 
 def test_json_shape_is_the_spec() -> None:

@@ -17,8 +17,19 @@ from typing import Any
 import numpy as np
 import polars as pl
 
-from tracelab.forensics.replay import KIND_ERROR, BusEvidence, NodeReplay
-from tracelab.physics.confinement import RECOVERY_SEQUENCE_BITS, RECOVERY_SEQUENCES
+from tracelab.forensics.replay import (
+    KIND_ERROR,
+    BusEvidence,
+    NodeReplay,
+    replay_node,
+    with_extra_errors,
+)
+from tracelab.physics.confinement import (
+    DEFAULT_CONFIG,
+    RECOVERY_SEQUENCE_BITS,
+    RECOVERY_SEQUENCES,
+    ConfinementConfig,
+)
 
 #: Probability of a type a hypothesis does not expect (an isolated node's non-ACK error).
 EPS = 0.02
@@ -38,6 +49,8 @@ STATUS_CAP = 10.0
 #: Prior weight of the whole-bus explanation (the rest is split over node hypotheses).
 PRIOR_BUS = 0.5
 MIN_ERRORS = 3
+#: ACK errors a lone transmitter needs to go from TEC 0 to error-passive (16 x 8 = 128).
+PASSIVE_ATTEMPTS = 16
 
 
 @dataclass(frozen=True)
@@ -163,14 +176,68 @@ def candidates(ev: BusEvidence, base: list[NodeReplay], first: list[NodeReplay],
             out.append(Hypothesis(f"transmit-fault:{name}", "transmit-fault", n, list(base)))
         if int(np.sum((tx == n) & ack)):
             out.append(Hypothesis(f"isolation:{name}", "isolation", n, list(base)))
-    for n in sorted({s.node for s in unexplained_silences(ev, base, silences)}):
+    unexplained = unexplained_silences(ev, base, silences)
+    for n in sorted({s.node for s in unexplained}):
         out.append(Hypothesis(f"silence:{ev.nodes[n]}", "silence", n, list(base)))
+        if f"isolation:{ev.nodes[n]}" in {h.name for h in out}:
+            continue
+        far = _far_side_isolation(ev, n, next(s for s in unexplained if s.node == n))
+        if far is not None:
+            reps = list(base)
+            reps[n] = far
+            h = Hypothesis(f"isolation:{ev.nodes[n]}", "isolation", n, reps)
+            h.facts["far_side"] = True
+            out.append(h)
     others = len(out) - 1
     for h in out:
         h.prior = PRIOR_BUS if h.node is None else (1 - PRIOR_BUS) / max(1, others)
     if others == 0:
         out[0].prior = 1.0
     return out
+
+
+def _far_side_isolation(ev: BusEvidence, n: int, silence: Silence,
+                        config: ConfinementConfig = DEFAULT_CONFIG) -> NodeReplay | None:
+    """Replay of node n as cut off from the logger's side of the bus during its silence.
+
+    Unseen by the logger, it retransmits its first missing frame back to back, each attempt
+    an ACK error (+8) until error-passive at the 16th; further ACK errors do not count (rule c,
+    exception 1). The first attempt is the first release of its periodic messages after the
+    last frame seen (last start + period).
+    """
+    if ev.con is None or silence.node != n:
+        return None
+    ids = ev.frames_by_id.filter(pl.col("code") == n)
+    if ids.height == 0:
+        return None
+    where = (f"run = '{ev.run.replace(chr(39), chr(39) * 2)}' AND bus = "
+             f"'{ev.bus.replace(chr(39), chr(39) * 2)}'")
+    keys = ", ".join(f"({int(i)}, {str(bool(x)).lower()})"
+                     for i, x in ids.select("id", "ext").iter_rows())
+    rows = ev.con.execute(
+        f"SELECT id, ext, max(start_ns) AS last_start, "
+        f"quantile_disc(t_ns - lag_t, 0.5) AS period_ns, avg(duration_ns) AS dur_ns FROM ("
+        f"SELECT id, ext, start_ns, t_ns, duration_ns, lag(t_ns) OVER (PARTITION BY id, ext "
+        f"ORDER BY t_ns) AS lag_t FROM frames WHERE {where} AND (id, ext) IN ({keys}) "
+        f"AND t_ns <= {silence.from_ns}) GROUP BY id, ext").fetchall()
+    best: tuple[float, float, int] | None = None
+    for fid, _ext, last_start, period_ns, dur_ns in rows:  # loop over the node's messages
+        if period_ns is None or last_start is None:
+            continue
+        release = float(last_start) + float(period_ns)
+        if best is None or release < best[0]:
+            best = (release, float(dur_ns), int(fid))
+    if best is None:
+        return None
+    release, dur_ns, fid = best
+    ack_at = dur_ns - 11 * ev.bit_ns  # the ACK delimiter: 11 bits before the frame's end
+    attempt_ns = dur_ns + 6 * ev.bit_ns  # up to the ACK slot, then flag 6, delimiter 8, IFS 3
+    times = [int(release + k * attempt_ns + ack_at) for k in range(PASSIVE_ATTEMPTS)]
+    if silence.to_ns is not None:
+        times = [t for t in times if t < silence.to_ns]
+    if not times:
+        return None
+    return replay_node(with_extra_errors(ev, times, n, "ack", fid), n, False, config)
 
 
 def _bernoulli(k: int, m: int, free: bool) -> float:
@@ -218,7 +285,7 @@ def score(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Silence]) -> N
     lp_by_uniform = np.where(attributed, -math.log(n_nodes), 0.0)
     for h in hyps:  # loop over hypotheses (a few per node)
         n = h.node
-        if h.kind in ("bus-disturbance", "silence") or n is None:
+        if h.kind in ("bus-disturbance", "silence") or n is None or h.facts.get("far_side"):
             rate = _bernoulli(n_err, attempts, True) - penalty
             lp = lp_type_other + lp_by_uniform
         elif h.kind in ("transmit-fault", "isolation"):
@@ -304,7 +371,7 @@ def _silence_loglik(ev: BusEvidence, h: Hypothesis, silences: list[Silence]) -> 
                 end = s.to_ns if s.to_ns is not None else ev.last_t_ns + 1
                 if s.node == n and s.from_ns <= off["from_ns"] <= end:
                     explained.add(j)
-    own_claim = h.kind == "silence"
+    own_claim = h.kind == "silence" or bool(h.facts.get("far_side"))
     for j, s in enumerate(silences):
         if j in explained:
             continue

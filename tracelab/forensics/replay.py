@@ -241,6 +241,24 @@ def prepare_counts(ev: BusEvidence) -> None:
         ev.ev_loss_since_prev = [False] * t.size
 
 
+def with_extra_errors(ev: BusEvidence, t_ns: list[int], tx: int, error_type: str,
+                      frame_id: int | None) -> BusEvidence:
+    """A copy of the evidence with predicted (unlogged) error events added, counts redone."""
+    import dataclasses
+
+    extra = pl.DataFrame({
+        "t_ns": t_ns, "kind": [KIND_ERROR] * len(t_ns), "type": [error_type] * len(t_ns),
+        "field": ["ack"] * len(t_ns), "id": [frame_id] * len(t_ns),
+        "ext": [False] * len(t_ns), "tx": [tx] * len(t_ns), "by_node": [-1] * len(t_ns),
+        "by": [None] * len(t_ns), "node": [-1] * len(t_ns), "tec": [None] * len(t_ns),
+        "rec": [None] * len(t_ns), "file": ["(predicted)"] * len(t_ns),
+        "line": [None] * len(t_ns)}, schema=ev.events.schema)
+    events = pl.concat([ev.events, extra]).sort(["t_ns", "file", "line"], nulls_last=True)
+    copy = dataclasses.replace(ev, events=events, _recovery_cache={})
+    prepare_counts(copy)
+    return copy
+
+
 # --- helpers over the sorted times (called for rare events only) ----------------------
 
 

@@ -142,7 +142,9 @@ def bus_verdict(ev: BusEvidence, origin: str | None, gaps: pl.DataFrame | None,
     silences = node_silences(ev, gaps, catalog_keys)
     hyps = candidates(ev, base, first, silences)
     score(ev, hyps, silences)
-    hyps.sort(key=lambda h: -h.score)
+    # ties (to rounding): a cut-off node before a plain silence, since only the former makes
+    # rule-based predictions (docs/forensics.md); otherwise the order of candidates()
+    hyps.sort(key=lambda h: (-round(h.score, 6), 0 if h.facts.get("far_side") else 1))
     errors = ev.events.filter(pl.col("kind") == KIND_ERROR)
     n_errors = errors.height
     clean = n_errors == 0 and not silences
@@ -258,6 +260,13 @@ def _why(ev: BusEvidence, h: Hypothesis, best: Hypothesis) -> str:
     elif h.kind == "transmit-fault":
         text = (f"errors on {name}'s frames only: {facts['own_errors']} of {n_err} were "
                 f"({facts['own_frames']} good frames of its own)")
+    elif h.kind == "isolation" and facts.get("far_side"):
+        rep = h.replays[h.node] if h.node is not None else None
+        tr = rep.first_degradation() if rep else None
+        when = f"; it would reach {tr['to']} at {tr['t_ns'] / 1e9:.6f} s" if tr else ""
+        text = (f"{name} cut off on the far side of the logger: its frames vanish and its ACK "
+                f"errors go unseen{when}; a node that simply stopped looks the same unless "
+                "ESI bits or status records after its return tell them apart")
     elif h.kind == "isolation":
         text = f"ACK errors on {name}'s frames only: {facts['own_ack']} of {n_err} were"
     elif h.kind == "receive-fault":
@@ -296,7 +305,10 @@ def _sentence(ev: BusEvidence, cause: dict[str, Any], first: dict[str, Any] | No
     what = {"bus-disturbance": "a disturbance of the whole bus",
             "receive-fault": f"a receive-side fault in {cause['node']}",
             "transmit-fault": f"a transmit-side fault in {cause['node']}",
-            "isolation": f"{cause['node']} cut off from the bus (no ACK)",
+            "isolation": f"{cause['node']} cut off from the bus (no ACK)"
+            + (" or, equally likely from this log, it stopped sending"
+               if hyps[0].facts.get("far_side") and len(hyps) > 1
+               and hyps[1].kind == "silence" and hyps[1].score >= 0.9 * hyps[0].score else ""),
             "silence": f"{cause['node']} falling silent"}.get(cause["kind"], cause["kind"])
     return f"{ev.run}/{ev.bus}: {lead}. Most likely cause: {what} (score {hyps[0].score:.2f})."
 
