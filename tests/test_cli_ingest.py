@@ -135,3 +135,11 @@ def test_info_on_a_plain_directory_is_one_line(tmp_path: Path,
                                                capsys: pytest.CaptureFixture[str]) -> None:
     assert main(["info", str(tmp_path)]) != 0
     assert "not a tracelab dataset" in _one_line_error(capsys.readouterr().err)
+
+
+def test_no_progress_bar_when_stderr_is_not_a_terminal(tmp_path: Path,
+                                                      capsys: pytest.CaptureFixture[str]) -> None:
+    log = _write(tmp_path / "a.frames", HEADER + GOOD * 50)
+    assert main(["ingest", str(log), "-o", str(tmp_path / "ds")]) == 0
+    captured = capsys.readouterr()
+    assert captured.err == "" and "50 records" in captured.out

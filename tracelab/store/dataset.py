@@ -17,13 +17,15 @@ import re
 import shutil
 import uuid
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-import duckdb
 import polars as pl
 
 from tracelab.errors import StoreError, UsageError
 from tracelab.store import schema
+
+if TYPE_CHECKING:
+    import duckdb
 
 MANIFEST_FILE = "manifest.parquet"
 PARTS_DIR = "parts"
@@ -85,6 +87,8 @@ class Dataset:
     def connect(self) -> duckdb.DuckDBPyConnection:
         """In-memory DuckDB with views frames, errors, status, marks, losses, rejects,
         manifest, and one view per ``analyses/*.parquet`` named after the file stem."""
+        import duckdb  # here, not at import time: ingest never needs it (0.2 s of start-up)
+
         try:
             con = duckdb.connect(":memory:")
             for table in schema.TABLES:
