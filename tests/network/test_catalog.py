@@ -67,14 +67,15 @@ def write(tmp_path: Path, text: str, name: str = "net.toml") -> Path:
 @pytest.mark.parametrize(("text", "ns"), [
     ("10ms", 10_000_000), ("150us", 150_000), ("1.5s", 1_500_000_000), ("10m", 600_000_000_000),
     ("1h", 3_600_000_000_000), ("7ns", 7), (" 2 ms ", 2_000_000), (".5s", 500_000_000),
-    (42, 42), ("0s", 0),
+    (42, 42), ("0s", 0), ("6m40s", 400_000_000_000), ("1h 30m", 5_400_000_000_000),
+    ("1s500ms", 1_500_000_000),
 ])
 def test_parse_duration(text: str | int, ns: int) -> None:
     # source: SI prefixes (BIPM SI Brochure, 9th ed.): 1 ms = 1e6 ns, 1 us = 1e3 ns
     assert parse_duration_ns(text) == ns
 
 
-@pytest.mark.parametrize("text", ["10", "ten ms", "10 parsecs", "-1s", "1.5ns", "", -3, 1.5])
+@pytest.mark.parametrize("text", ["10", "ten ms", "10 parsecs", "-1s", "1.5ns", "", -3, 1.5, "5m10"])
 def test_parse_duration_rejects(text: object) -> None:
     with pytest.raises(ValueError, match="duration"):
         parse_duration_ns(text)  # type: ignore[arg-type]

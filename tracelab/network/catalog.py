@@ -41,7 +41,9 @@ DURATION_UNITS_NS: dict[str, int] = {
     "m": 60_000_000_000,
     "h": 3_600_000_000_000,
 }
-_DURATION_RE = re.compile(r"^\s*(\d+(?:\.\d+)?|\.\d+)\s*([a-z]+)\s*$")
+_DURATION_PART = r"(\d+(?:\.\d+)?|\.\d+)\s*([a-z]+)"
+_DURATION_RE = re.compile(rf"^\s*(?:{_DURATION_PART}\s*)+$")
+_DURATION_PART_RE = re.compile(_DURATION_PART)
 
 #: ISO 11898-1 allows at most 1 Mbit/s in the arbitration phase. The data-phase limit is
 #: set by transceivers; 16 Mbit/s is above every one we know of. # common practice, no source
@@ -61,7 +63,8 @@ SCENARIO_MESSAGE_KEYS = ("jitter", "offset", "payload", "event_every")
 
 
 def parse_duration_ns(text: str | int) -> int:
-    """``"10ms"`` -> 10_000_000. Units ns, us, ms, s, m, h; decimals allowed ("1.5s").
+    """``"10ms"`` -> 10_000_000. Units ns, us, ms, s, m, h; decimals ("1.5s") and sums
+    ("6m40s") allowed.
 
     An int is taken as nanoseconds. Raises ValueError with a message fit for the user.
     """
@@ -75,12 +78,13 @@ def parse_duration_ns(text: str | int) -> int:
     if not match:
         raise ValueError(f"duration {text!r} is not a number with a unit "
                          f"({', '.join(DURATION_UNITS_NS)}), e.g. \"10ms\"")
-    number, unit = match.groups()
-    if unit not in DURATION_UNITS_NS:
-        raise ValueError(f"duration {text!r} has unknown unit '{unit}'"
-                         + (did_you_mean(unit, DURATION_UNITS_NS)
-                            or f"; use one of {', '.join(DURATION_UNITS_NS)}"))
-    value = Fraction(number) * DURATION_UNITS_NS[unit]
+    value = Fraction(0)
+    for number, unit in _DURATION_PART_RE.findall(text):
+        if unit not in DURATION_UNITS_NS:
+            raise ValueError(f"duration {text!r} has unknown unit '{unit}'"
+                             + (did_you_mean(unit, DURATION_UNITS_NS)
+                                or f"; use one of {', '.join(DURATION_UNITS_NS)}"))
+        value += Fraction(number) * DURATION_UNITS_NS[unit]
     if value.denominator != 1:
         raise ValueError(f"duration {text!r} is not a whole number of nanoseconds")
     return int(value)

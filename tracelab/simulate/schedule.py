@@ -19,6 +19,7 @@ from tracelab.simulate.scenario import FaultSpec, Scenario, ScheduleSpec
 
 #: Event-driven messages without ``event_every`` are never released (documented).
 NS_PER_S = 1_000_000_000
+TIMER_TICK_NS = 1_000
 
 
 def arbitration_key(frame_id: int, ext: bool, rtr: bool) -> int:
@@ -136,9 +137,11 @@ def _releases(spec_period: int | None, sched: ScheduleSpec, clock: tuple[np.ndar
             tau = np.concatenate([tau, tau[-1] + np.cumsum(rng.exponential(mean, n))])
     else:
         return np.zeros(0, dtype=np.int64)
-    t = np.rint(local_to_global(tau, clk)).astype(np.int64)
+    t = local_to_global(tau, clk)
     if sched.jitter_ns:
         t = t + rng.integers(0, sched.jitter_ns + 1, len(t))
+    # Node timers tick in whole microseconds (a documented simplification).
+    t = (np.rint(t / TIMER_TICK_NS) * TIMER_TICK_NS).astype(np.int64)
     t = t[t < duration_ns]
     return np.sort(t)
 

@@ -250,7 +250,7 @@ def simulate(scenario: Scenario, out_path: str | Path, duration_ns: int | None =
         n_records = writer.records
     truth = build_truth(scenario, results, duration_ns, seed, loss_truth, logger_dropped)
     tpath = truth_path(out_path)
-    tpath.write_text(json.dumps(truth, indent=1) + "\n", encoding="utf-8")
+    tpath.write_text(json.dumps(truth, separators=(",", ":")) + "\n", encoding="utf-8")
     summary = SimulationSummary(
         scenario.path, out_path, tpath, scenario.run.name, seed, duration_ns, n_records,
         [BusSummary(r.schedule.bus.alias, len(r.release), r.error_frames,
