@@ -177,7 +177,14 @@ VARIETY = [
 ]
 
 
-@pytest.mark.parametrize("bad", [c[1] for c in RECORD_CASES] + [None])
+SIGNS = ["+5\tP\tframe\t0C0\ts\t0\t-", "-0\tP\tframe\t0C0\ts\t0\t-",
+         "5\tP\tframe\t+0C0\ts\t0\t-", "5\tP\tframe\t-1\ts\t0\t-",
+         "5\tP\tframe\t0x1\ts\t0\t-", "5\tP\tframe\t000000001\ts\t0\t-",
+         " 5\tP\tframe\t0C0\ts\t0\t-", "5\tP\tframe\t0C0\ts\t+8\tAABBCCDDEEFF0011",
+         "99999999999999999999\tP\tframe\t0C0\ts\t0\t-", "5\tP\tframe\t0C0\tS\t0\t-"]
+
+
+@pytest.mark.parametrize("bad", [c[1] for c in RECORD_CASES] + SIGNS + [None])
 def test_fast_and_exact_paths_give_the_same_tables(tmp_path: Path, bad: str | None) -> None:
     lines = VARIETY + ([bad] if bad is not None else []) + VARIETY
     path = _write(tmp_path, HEADER + "\n".join(lines) + "\n")
@@ -187,3 +194,13 @@ def test_fast_and_exact_paths_give_the_same_tables(tmp_path: Path, bad: str | No
     assert (fast.lines, fast.other_lines, fast.backward_steps) == (
         exact.lines, exact.other_lines, exact.backward_steps)
     assert exact.backward_steps == 2 and exact.other_lines == 6
+
+
+def test_valid_chunks_take_the_fast_path(tmp_path: Path) -> None:
+    path = _write(tmp_path, HEADER + "\n".join(VARIETY) + "\n")
+    body = "\n".join(VARIETY).encode() + b"\n"
+    with LogReader(path) as reader:
+        chunk = reader._chunk_fast(body, 4)
+    assert chunk is not None and chunk.frames.height == 4 and chunk.other_lines == 3
+    with LogReader(path) as reader:  # one bad line sends the chunk to the exact path
+        assert reader._chunk_fast(body + b"5\tQ\tmark\tx\n", 4) is None

@@ -274,6 +274,10 @@ def read_header(path: str | Path) -> LogHeader:
 # --- vectorised records --------------------------------------------------------------------
 
 
+def _unsigned(text: pl.Expr) -> pl.Expr:
+    return ~text.str.starts_with("+") & ~text.str.starts_with("-")
+
+
 def _table_expr(table: tuple[int, ...], key: pl.Expr) -> pl.Expr:
     return key.replace_strict(dict(enumerate(table)), default=None, return_dtype=pl.Int64)
 
@@ -528,8 +532,10 @@ class LogReader:
         variant = c("form_code") % 6
         rows = rows.with_columns(
             line=pl.int_range(first_line, first_line + n, dtype=pl.Int64),
-            t_ns=pl.when(f[0].str.contains(_DIGITS)).then(f[0].str.to_integer(strict=False)),
-            id=pl.when(f[3].str.contains(_HEX_ID)).then(
+            # to_integer takes an optional sign then digits only; refusing the signs here is
+            # as strict as the exact path's regexes, at a third of the cost
+            t_ns=pl.when(_unsigned(f[0])).then(f[0].str.to_integer(strict=False)),
+            id=pl.when(_unsigned(f[3]) & (f[3].str.len_bytes() <= 8)).then(
                 f[3].str.to_integer(base=16, strict=False)),
             payload=pl.when(f[6] == NONE).then(pl.lit(b"")).otherwise(
                 f[6].str.decode("hex", strict=False)),
