@@ -22,10 +22,10 @@ from typing import Any
 
 import polars as pl
 
-from tracelab.errors import UsageError
+from tracelab.errors import UsageError, did_you_mean
 from tracelab.fleet import layout
 from tracelab.fleet.discover import LogFile, RunSpec, describe_log, find_logs, group_runs
-from tracelab.fleet.executors import DaskExecutor, LocalExecutor, make_executor
+from tracelab.fleet.executors import EXECUTORS, DaskExecutor, LocalExecutor, make_executor
 from tracelab.fleet.job import PipelineSteps, RunResult, failed_result, process_run
 from tracelab.fleet.summary import runs_frame
 
@@ -101,7 +101,15 @@ def _known_logs(manifest: pl.DataFrame) -> dict[str, LogFile]:
     return known
 
 
-def _check_inputs(root: Path, fleet: Path, catalog: Path | None, previous: int) -> None:
+def _check_inputs(root: Path, fleet: Path, catalog: Path | None, previous: int,
+                  executor: object, scheduler: str | None, workers: int | None) -> None:
+    if isinstance(executor, str) and executor not in EXECUTORS:
+        raise UsageError(f"--executor {executor!r}: expected local or dask"
+                         f"{did_you_mean(executor, EXECUTORS)}")
+    if scheduler and executor == "local":
+        raise UsageError("--scheduler needs --executor dask")
+    if workers is not None and workers < 1:
+        raise UsageError(f"--workers must be at least 1, not {workers}")
     if not root.is_dir():
         raise UsageError(f"{root}: not a folder of frame logs")
     if catalog is not None and not catalog.is_file():
@@ -125,7 +133,7 @@ def run_batch(root: Path, fleet: Path, steps: PipelineSteps, catalog: Path | Non
 
     start = time.perf_counter()
     root, fleet = Path(root), Path(fleet)
-    _check_inputs(root, fleet, catalog, previous)
+    _check_inputs(root, fleet, catalog, previous, executor, scheduler, workers)
     with _locked(fleet):
         shutil.rmtree(fleet / layout.STAGING_DIR, ignore_errors=True)  # an interrupted batch
         old_manifest = _read(fleet / layout.MANIFEST_FILE, MANIFEST)
@@ -195,10 +203,14 @@ def _commit(fleet: Path, specs: list[RunSpec], logs: dict[str, LogFile],
                 "processed_at": now if result is not None else previous_row.get("processed_at"),
                 "elapsed_s": result.elapsed_s if result is not None else previous_row.get(
                     "elapsed_s")})
-    # runs whose logs left the root stay (archived); runs whose logs changed content go
+    # runs whose logs left the root stay (archived); a run whose log changed content, or
+    # that is the same (run, origin, vehicle) as a current run, is replaced
     kept = old_manifest.filter(~pl.col("key").is_in(list(current_keys)))
     gone_keys = set(kept["key"].to_list())
     replaced = set(kept.filter(pl.col("file").is_in(list(current_files)))["key"].to_list())
+    current_ids = {(s.run, s.origin, s.vehicle) for s in specs}
+    replaced |= {r["key"] for r in old_runs.iter_rows(named=True)
+                 if (r["run"], r["origin"], r["vehicle"]) in current_ids}
     archived = gone_keys - replaced
     for row in old_runs.iter_rows(named=True):
         if row["key"] in archived:

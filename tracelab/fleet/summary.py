@@ -30,7 +30,7 @@ _RUNS_COLUMNS: dict[str, Any] = {
     "max_load_ratio": pl.Float64, "p99_load_ratio": pl.Float64, "bus_load": BUS_LOAD,
     "first_degraded_bus": pl.String, "first_degraded_node": pl.String,
     "first_degraded_state": pl.String, "first_degraded_t_ns": pl.Int64,
-    "cause_kind": pl.String, "confidence": pl.String, "report": pl.String,
+    "cause_kind": pl.String, "confidence": pl.Float64, "report": pl.String,
     "regressions": pl.Int64, "flagged": pl.String,
 }
 RUNS = pl.Schema(_RUNS_COLUMNS)
@@ -122,60 +122,68 @@ def _missing(con: duckdb.DuckDBPyConnection) -> dict[str, Any]:
 
 
 def first_degraded(faults_json: dict[str, Any] | None) -> dict[str, Any]:
-    """The earliest first-degraded node over the buses of the faults JSON, and the cause."""
+    """The earliest first-degraded node over the buses of the faults JSON, with its cause
+    and verdict confidence; without any, the cause of the first bus that names one."""
     out: dict[str, Any] = {"first_degraded_bus": None, "first_degraded_node": None,
                            "first_degraded_state": None, "first_degraded_t_ns": None,
                            "cause_kind": None, "confidence": None}
     if not faults_json:
         return out
+    results = faults_json.get("results", [])
     best: tuple[int, dict[str, Any], dict[str, Any]] | None = None
-    for result in faults_json.get("results", []):  # one per bus: a few, not frames
-        first = result.get("first_degraded") or result.get("first")
+    for result in results:  # one per bus: a few, not frames
+        first = result.get("first_degraded")
         if isinstance(first, dict) and first.get("t_ns") is not None and (
                 best is None or int(first["t_ns"]) < best[0]):
             best = (int(first["t_ns"]), first, result)
+    kinds = [(r.get("cause") or {}).get("kind") for r in results]
+    named = [k for k in kinds if k not in (None, "none")]
+    out["cause_kind"] = named[0] if named else (kinds[0] if kinds else None)
     if best is None:
         return out
     _, first, result = best
-    verdict = result.get("verdict") or {}
-    cause = verdict.get("cause") if isinstance(verdict, dict) else None
-    cause_kind = (cause.get("kind") if isinstance(cause, dict) else cause) or verdict.get("kind")
-    confidence = verdict.get("confidence") if isinstance(verdict, dict) else None
-    out.update(first_degraded_bus=result.get("bus") or first.get("bus"),
-               first_degraded_node=first.get("node"), first_degraded_state=first.get("state"),
-               first_degraded_t_ns=int(first["t_ns"]),
-               cause_kind=None if cause_kind is None else str(cause_kind),
-               confidence=None if confidence is None else str(confidence))
+    confidence = first.get("confidence")
+    out.update(first_degraded_bus=result.get("bus"), first_degraded_node=first.get("node"),
+               first_degraded_state=first.get("state"), first_degraded_t_ns=int(first["t_ns"]),
+               cause_kind=(result.get("cause") or {}).get("kind") or out["cause_kind"],
+               confidence=None if confidence is None else float(confidence))
     return out
 
 
 _PHASE_P99_SQL = """
-WITH fit AS (
+WITH arrivals AS (
+    SELECT f.run, f.bus, f.id, f.ext, f.t_ns, t.period_ns,
+           f.t_ns - lag(f.t_ns) OVER w AS dt_ns,
+           (f.t_ns - first_value(f.t_ns) OVER w)::DOUBLE AS t_rel_ns
+    FROM frames f
+    JOIN (SELECT DISTINCT run, bus, id, ext, period_ns FROM timing
+          WHERE period_ns IS NOT NULL) t
+      ON f.run = t.run AND f.bus = t.bus AND f.id = t.id AND f.ext = t.ext
+    WINDOW w AS (PARTITION BY f.run, f.bus, f.id, f.ext ORDER BY f.t_ns)
+), cycles AS (
+    SELECT run, bus, id, ext, t_rel_ns,
+           sum(coalesce(round(dt_ns / period_ns), 0)) OVER (
+               PARTITION BY run, bus, id, ext ORDER BY t_ns
+               ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW)::DOUBLE AS cycle
+    FROM arrivals
+), fit AS (
     SELECT run, bus, id, ext, regr_slope(t_rel_ns, cycle) AS slope_ns,
            regr_intercept(t_rel_ns, cycle) AS icpt_ns
-    FROM tl_cycles GROUP BY run, bus, id, ext
+    FROM cycles GROUP BY run, bus, id, ext
 )
 SELECT c.run, c.bus, c.id, c.ext,
        quantile_cont(abs(c.t_rel_ns - (f.icpt_ns + f.slope_ns * c.cycle)), 0.99) AS jitter_p99_ns
-FROM tl_cycles c JOIN fit f ON c.run = f.run AND c.bus = f.bus AND c.id = f.id AND c.ext = f.ext
+FROM cycles c JOIN fit f ON c.run = f.run AND c.bus = f.bus AND c.id = f.id AND c.ext = f.ext
 GROUP BY c.run, c.bus, c.id, c.ext
 """
 
 
 def phase_jitter_p99(con: duckdb.DuckDBPyConnection) -> pl.DataFrame:
     """p99 of |phase jitter| per periodic stream: the arrival's distance from the straight
-    line fitted through (cycle index, arrival time), the same fit as timing's phase columns
-    (drift is taken out by the slope). Reuses timing's steps 1 and 3 on the stored periods."""
-    from tracelab.analyses import run_sql
-
-    run_sql(con, "timing_arrivals", {"run": None})
-    con.execute("CREATE OR REPLACE TEMP TABLE tl_periods AS SELECT run, bus, id, ext, period_ns "
-                "FROM timing WHERE period_ns IS NOT NULL")
-    run_sql(con, "timing_cycles")
-    frame = con.sql(_PHASE_P99_SQL).pl()
-    for table in ("tl_arrivals", "tl_periods", "tl_cycles"):
-        con.execute(f"DROP TABLE IF EXISTS {table}")
-    return frame
+    line fitted through (cycle index, arrival time), the cycle index advancing by
+    round(inter-arrival / period) (timing's definition; the slope takes drift out).
+    Needs the views frames and timing (for the periods)."""
+    return con.sql(_PHASE_P99_SQL).pl()
 
 
 def message_stats(con: duckdb.DuckDBPyConnection, spec: RunSpec) -> pl.DataFrame:

@@ -1,0 +1,72 @@
+"""Executors: the Dask path gives the local path's results, even when a worker dies."""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+import polars as pl
+import pytest
+
+from tests.fleet.conftest import STEPS, Fleet
+from tracelab.errors import UsageError
+from tracelab.fleet.batch import run_batch
+from tracelab.fleet.executors import DaskExecutor, make_executor, threads_per_worker
+from tracelab.fleet.job import RunResult
+from tracelab.fleet.views import connect_fleet
+
+
+async def _die() -> None:
+    """End the worker process at once, as a crash or an out-of-memory kill would."""
+    os._exit(1)
+
+
+def snapshot(fleet: Path) -> dict[str, pl.DataFrame]:
+    """Everything a user reads from a fleet, in a stable order."""
+    con = connect_fleet(fleet)
+    out = {"runs": con.sql("SELECT * FROM runs ORDER BY key").pl(),
+           "regressions": con.sql("SELECT * FROM regressions ORDER BY ALL").pl()}
+    for table in ("frames", "errors", "timing", "gaps", "load", "load_summary", "verdicts",
+                  "message_stats"):
+        out[table] = con.sql(f"SELECT * EXCLUDE (file) FROM {table} ORDER BY ALL"
+                             if "file" in con.sql(f"SELECT * FROM {table} LIMIT 0").columns
+                             else f"SELECT * FROM {table} ORDER BY ALL").pl()
+    return out
+
+
+def test_killed_worker_loses_and_duplicates_nothing(small_fleet: Fleet, tmp_path: Path) -> None:
+    executor = DaskExecutor(workers=2)
+    killed: list[str] = []
+
+    def kill_a_busy_worker(result: RunResult) -> None:
+        if killed:
+            return
+        busy = [w for w, keys in executor.client.processing().items() if keys]
+        if busy:
+            killed.append(busy[0])
+            executor.client.run(_die, workers=[busy[0]], wait=False)
+
+    fleet = tmp_path / "dask"
+    try:
+        first = run_batch(small_fleet.root, fleet, STEPS, executor=executor, quiet=True,
+                          on_result=kill_a_busy_worker)
+        again = run_batch(small_fleet.root, fleet, STEPS, executor=executor, quiet=True)
+    finally:
+        executor.close()
+    assert killed, "no worker was busy to kill"
+    assert (first.processed, first.failed) == (6, 1), first.describe()  # only the bad log
+    assert (again.processed, again.skipped) == (0, 7)
+    reference, got = snapshot(small_fleet.fleet), snapshot(fleet)
+    for name, frame in reference.items():
+        differ = [c for c in frame.columns if not frame[c].equals(got[name][c])]
+        assert not differ, (name, differ)
+    runs = got["runs"].filter(pl.col("status") == "ok")
+    assert got["frames"].height == runs["frames"].sum()  # no run counted twice
+
+
+def test_executor_choices() -> None:
+    with pytest.raises(UsageError, match="--scheduler needs"):
+        make_executor("local", scheduler="tcp://127.0.0.1:1")
+    with pytest.raises(UsageError, match="unknown executor"):
+        make_executor("spark")
+    assert threads_per_worker(1) >= threads_per_worker(64) == 1
