@@ -37,10 +37,10 @@ cols = [f"f{i}" for i in range(8)]
 (pl.scan_csv(src, separator="\\t", has_header=False, skip_rows=skip, quote_char=None,
              schema={c: pl.String for c in cols}, truncate_ragged_lines=True,
              missing_columns="insert")
-   .with_columns(t_ns=pl.col("f0").str.to_integer(strict=False),
-                 id=pl.col("f3").str.to_integer(base=16, strict=False).cast(pl.UInt32),
-                 dlc=pl.col("f5").str.to_integer(strict=False).cast(pl.UInt8),
-                 data=pl.col("f6").str.decode("hex", strict=False))
+   .select(t_ns=pl.col("f0").str.to_integer(strict=False), bus="f1", kind="f2",
+           id=pl.col("f3").str.to_integer(base=16, strict=False).cast(pl.UInt32), form="f4",
+           dlc=pl.col("f5").str.to_integer(strict=False).cast(pl.UInt8),
+           data=pl.col("f6").str.decode("hex", strict=False))
    .sink_parquet(out, compression="zstd"))
 """
 
