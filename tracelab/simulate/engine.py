@@ -147,6 +147,11 @@ class BusEngine:
         self._ui = 0
         self._esi: dict[int, int] = {}  # output position -> duration of an ESI frame
         self._esi_bits: dict[int, tuple[int, int, int]] = {}  # release -> bits, dpb, ns
+        self.silent: dict[int, list[tuple[int, int]]] = {}
+        for f in scenario.faults:
+            if f.kind == "silent" and self.bus in f.buses and f.node is not None:
+                end = duration_ns if f.end_ns is None else f.end_ns
+                self.silent.setdefault(self.index[f.node], []).append((f.start_ns, end))
         self._static = self._static_events()
         self._si = 0
         self._recompute()
@@ -264,8 +269,11 @@ class BusEngine:
         return over, pending
 
     def _status(self, t_ns: int) -> None:
+        """Status records of every controller that can still talk (not bus-off, isolated or
+        silent)."""
         for n, name in enumerate(self.names):
-            if self._participating(n):
+            quiet = any(a <= t_ns < b for a, b in self.silent.get(n, ()))
+            if self._participating(n) and not quiet:
                 c = self.counters[n]
                 self.records.append((t_ns, -1, status_line(t_ns, self.bus, name, c.tec, c.rec)))
 
