@@ -8,9 +8,9 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from tests.simulate.test_engine import message, node, run, scenario
 from tracelab.simulate import load_scenario, simulate, truth_path
 from tracelab.simulate.simulator import run_buses
-from tests.simulate.test_engine import message, node, run, scenario
 
 
 def sent_by(res, sender: str) -> np.ndarray:  # type: ignore[no-untyped-def]
