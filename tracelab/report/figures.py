@@ -24,6 +24,8 @@ NS_PER_S = 1e9
 COUNTER_LEVELS = ((96, "warning 96"), (128, "error-passive 128"), (256, "bus-off 256"))
 STATE_ORDER = ("error-active", "warning", "error-passive", "bus-off")
 MARK_LABEL_CHARS = 28
+COUNTER_PANEL_PX = 200
+STATE_ROW_PX = 18
 MIN_DRIFT_RANGE_PPM = 5.0  # crystal tolerances are tens of ppm; less is noise at this scale
 MIN_DEVIATION_RANGE_PCT = 0.5
 
@@ -277,7 +279,8 @@ def gaps_figure(cells: pl.DataFrame, bucket_ns: int, losses: pl.DataFrame, t0_ns
         extend_layout(fig, [  # logger losses are rare events
             {"type": "rect", "xref": "x", "yref": "paper", "x0": a / NS_PER_S,
              "x1": b / NS_PER_S, "y0": 0, "y1": 1, "fillcolor": style.LOGGER_SHADE,
-             "opacity": 0.3, "line": {"width": 0}, "layer": "below"}
+             "opacity": 0.45, "line": {"width": 1, "color": style.LOGGER_SHADE},
+             "layer": "below"}
             for a, b in losses.select("from_ns", "to_ns").iter_rows()])
     fig.update_layout(**style.base_layout(
         height, xaxis=_time_axis(t0_ns, t1_ns),
@@ -317,14 +320,15 @@ def counters_figure(counters: pl.DataFrame, states: pl.DataFrame, t0_ns: int, t1
                     marks: pl.DataFrame) -> go.Figure:
     """TEC and REC per node (bucket peaks, step lines) with the 96 / 128 / 256 levels and
     state bands behind them, and a per-node state timeline below; one shared time axis."""
-    fig = make_subplots(rows=3, cols=1, shared_xaxes=True, vertical_spacing=0.05,
-                        row_heights=[0.4, 0.4, 0.2])
     nodes = (counters.select("bus", "node").unique(maintain_order=True).rows()
              if not counters.is_empty() else [])
     if not states.is_empty():
         for key in states.select("bus", "node").unique(maintain_order=True).rows():
             if key not in nodes:
                 nodes.append(key)
+    state_px = max(60, STATE_ROW_PX * len(nodes))
+    fig = make_subplots(rows=3, cols=1, shared_xaxes=True, vertical_spacing=0.04,
+                        row_heights=[COUNTER_PANEL_PX, COUNTER_PANEL_PX, state_px])
     labels = {k: esc(k[1] if len({b for b, _ in nodes}) <= 1 else f"{k[0]} {k[1]}")
               for k in nodes}
     top = 300
@@ -335,17 +339,19 @@ def counters_figure(counters: pl.DataFrame, states: pl.DataFrame, t0_ns: int, t1
     for row_index in (1, 2):
         yref = "y" if row_index == 1 else f"y{row_index}"
         xref = "x domain" if row_index == 1 else f"x{row_index} domain"
-        bounds = (0, 96, 128, 256, top)
+        # REC has no bus-off level: only TEC > 255 takes a node off the bus
+        levels = COUNTER_LEVELS if row_index == 1 else COUNTER_LEVELS[:2]
+        bounds = (0, *(level for level, _ in levels), top)
         bands = [{"type": "rect", "xref": xref, "yref": yref, "x0": 0, "x1": 1, "y0": lo,
                   "y1": hi, "fillcolor": style.STATE_COLOURS[state], "opacity": 0.28,
                   "line": {"width": 0}, "layer": "below"}
-                 for state, lo, hi in zip(STATE_ORDER, bounds[:-1], bounds[1:], strict=True)]
+                 for state, lo, hi in zip(STATE_ORDER, bounds[:-1], bounds[1:], strict=False)]
         lines = [{"type": "line", "xref": xref, "yref": yref, "x0": 0, "x1": 1, "y0": level,
                   "y1": level, "line": {"color": style.RULE, "width": 1, "dash": "dot"}}
-                 for level, _ in COUNTER_LEVELS]
+                 for level, _ in levels]
         notes = [{"xref": xref, "yref": yref, "x": 1, "y": level, "xanchor": "right",
                   "yanchor": "bottom", "text": text, "showarrow": False,
-                  "font": {"size": 9, "color": style.MUTED}} for level, text in COUNTER_LEVELS]
+                  "font": {"size": 9, "color": style.MUTED}} for level, text in levels]
         extend_layout(fig, bands + lines, notes)
     for index, key in enumerate(nodes):  # one trace pair per node: a handful
         part = counters.filter((pl.col("bus") == key[0]) & (pl.col("node") == key[1])) \
@@ -376,7 +382,7 @@ def counters_figure(counters: pl.DataFrame, states: pl.DataFrame, t0_ns: int, t1
             fig.add_trace(go.Bar(x=[None], y=[None], name=state, orientation="h",
                                  marker={"color": style.STATE_COLOURS[state]},
                                  legendgroup="states"), row=3, col=1)
-    height = 520 + 14 * len(nodes)
+    height = 2 * COUNTER_PANEL_PX + state_px + 150
     fig.update_layout(**style.base_layout(height, barmode="overlay", bargap=0.3))
     fig.update_layout(legend={"orientation": "h", "y": -0.08, "x": 0})
     time_axis = _time_axis(t0_ns, t1_ns)

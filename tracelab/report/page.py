@@ -18,6 +18,7 @@ from tracelab.report import figures, style
 from tracelab.report.figures import NS_PER_S, esc, message_label
 
 PLOTLY_FILE = "plotly.min.js"
+LOSS_ROWS = 10
 CAUTION = ("Findings support, and do not replace, the engineer's judgement and the applicable "
            "functional-safety process and regulations.")
 CAUSE_WORDS = {"bus-disturbance": "a disturbance of the whole bus",
@@ -80,7 +81,9 @@ def verdict_sentence(faults: dict[str, Any] | None, errors: int = 0) -> tuple[st
         f"reached {STATE_WORDS.get(state, state)}"
     text = (f"{fd.get('node')} on bus {first.get('bus')} degraded first: {reached} at "
             f"{when}, confidence {_confidence(fd.get('confidence'))}")
-    return text + f"; {cause_words(first.get('cause'))}.", "bad"
+    cause = cause_words(first.get("cause"))
+    known = (first.get("cause") or {}).get("kind") not in (None, "none", "unknown")
+    return text + f"; {'most likely cause: ' if known else ''}{cause}.", "bad"
 
 
 def cause_words(cause: dict[str, Any] | None) -> str:
@@ -91,7 +94,7 @@ def cause_words(cause: dict[str, Any] | None) -> str:
     if kind == "unknown":
         return "the evidence is too thin to name a cause"
     what = CAUSE_WORDS.get(kind, kind.replace("-", " "))
-    return f"most likely cause: {what}" + (f" ({node})" if node else "")
+    return what + (f" ({node})" if node else "")
 
 
 def verdict(data: ReportData) -> tuple[str, str]:
@@ -154,26 +157,30 @@ def verdict_section(data: ReportData) -> str:
     parts = ['<section id="verdict"><h2>Verdict</h2>']
     if tone == "unknown" or not _results(data):
         parts.append(f'<p class="muted">{text}</p>')
-    for result in _results(data):  # one result per bus: a handful
+    # degraded buses first (earliest first), clean ones after in one line each
+    results = sorted(_results(data), key=lambda r: (
+        r.get("first_degraded") is None, (r.get("first_degraded") or {}).get("t_ns") or 0))
+    for result in results:  # one result per bus: a handful
         fd = result.get("first_degraded")
         parts.append(f"<h3>bus {esc(result.get('bus'))}</h3>")
         if result.get("verdict"):
             parts.append(f"<p>{esc(result['verdict'])}</p>")
         if not fd:
-            parts.append('<p class="muted">No node left error-active on this bus.</p>')
-        else:
-            when = _secs(fd.get("t_ns")) + (f" ({esc(fd['wall_time'])})"
-                                             if fd.get("wall_time") else "")
-            facts = [
-                ("first degraded node", f"<b>{esc(fd.get('node'))}</b>"),
-                ("state reached first", esc(fd.get("state"))), ("when", when),
-                ("confidence", esc(_confidence(fd.get("confidence")))),
-                ("cause", esc(cause_words(result.get("cause")))),
-            ]
-            if fd.get("worst_state") and fd.get("worst_state") != fd.get("state"):
-                facts.insert(3, ("worst state", f"{esc(fd['worst_state'])} at "
-                                                f"{_secs(fd.get('worst_t_ns'))}"))
-            parts.append(_facts(facts))
+            if not result.get("verdict"):
+                parts.append('<p class="muted">No node left error-active on this bus.</p>')
+            continue
+        when = _secs(fd.get("t_ns")) + (f" ({esc(fd['wall_time'])})"
+                                         if fd.get("wall_time") else "")
+        facts = [
+            ("first degraded node", f"<b>{esc(fd.get('node'))}</b>"),
+            ("state reached first", esc(fd.get("state"))), ("when", when),
+            ("confidence", esc(_confidence(fd.get("confidence")))),
+            ("most likely cause", esc(cause_words(result.get("cause")))),
+        ]
+        if fd.get("worst_state") and fd.get("worst_state") != fd.get("state"):
+            facts.insert(3, ("worst state", f"{esc(fd['worst_state'])} at "
+                                            f"{_secs(fd.get('worst_t_ns'))}"))
+        parts.append(_facts(facts))
         hypotheses = sorted(result.get("hypotheses") or [],
                             key=lambda h: -(h.get("score") or 0))
         if len(hypotheses) > 1:
@@ -223,19 +230,31 @@ def _count(value: Any) -> Any:
 
 TIMING_COLUMNS = (  # column, heading, format
     ("sender", "sender", "{}"), ("period_ns", "period", "ms"),
-    ("median_ns", "median interval", "ms"), ("cycle_std_ns", "cycle jitter σ", "ms"),
-    ("phase_std_ns", "phase jitter σ", "ms"), ("phase_max_abs_ns", "max |phase|", "ms"),
+    ("median_ns", "median", "ms"), ("cycle_std_ns", "cycle σ", "ms"),
+    ("phase_std_ns", "phase σ", "ms"), ("phase_max_abs_ns", "max |phase|", "ms"),
     ("drift_ppm", "drift", "{:+.1f} ppm"), ("frames", "frames", "{:,}"),
-    ("missing", "missing", "{:,}"), ("missing_in_loss", "lost by logger", "{:,}"),
+    ("missing", "missing", "{:,}"), ("missing_in_loss", "logger lost", "{:,}"),
     ("gaps", "gaps", "{:,}"), ("bursts", "bursts", "{:,}"),
 )
+
+
+def _duration(ns: float) -> str:
+    """A duration in the unit that reads best: 761 µs, 20.001 ms, 1.5 s."""
+    size = abs(ns)
+    if size >= 1e9:
+        return f"{ns / 1e9:,.4g} s"
+    if size >= 1e6:
+        return f"{ns / 1e6:.3f}".rstrip("0").rstrip(".") + " ms"
+    if size >= 1e3:
+        return f"{ns / 1e3:.0f} µs"
+    return f"{ns:.0f} ns"
 
 
 def _cell(value: Any, fmt: str) -> tuple[str, str]:
     if value is None:
         return "", ""
     if fmt == "ms":
-        return f"{value / 1e6:,.3f} ms", repr(float(value))
+        return _duration(float(value)), repr(float(value))
     if isinstance(value, int | float):
         return fmt.format(value), repr(float(value))
     return esc(value), esc(value)
@@ -252,7 +271,7 @@ def timing_table(timing: pl.DataFrame) -> str:
     body = []
     for row in timing.iter_rows(named=True):  # one row per message: hundreds at most
         label = esc(message_label(row["bus"], row["id"], row["ext"], row["name"]))
-        cells = [f"<td data-v='{label}'>{label}</td>"]
+        cells = [f"<td class='msg' data-v='{label}'>{label}</td>"]
         for col, _, fmt in shown:
             text, key = _cell(row[col], fmt)
             cls = "num" if fmt != "{}" else ""
@@ -263,8 +282,9 @@ def timing_table(timing: pl.DataFrame) -> str:
     return (f'<div class="scroll"><table id="timing-table"><thead><tr>{head}</tr></thead>'
             f'<tbody>{"".join(body)}</tbody></table></div>'
             '<p class="note">Worst first: missing frames, then phase jitter relative to the '
-            'period, then drift. Click a heading to sort. "lost by logger" counts frames missing '
-            "inside logger-loss intervals (not a bus fault).</p>")
+            "period, then drift. Click a heading to sort. median: median interval; cycle σ / "
+            "phase σ: standard deviation of the interval and of the arrival phase; "
+            '"logger lost": frames missing inside logger-loss intervals (not a bus fault).</p>')
 
 
 def quality_section(data: ReportData) -> str:
@@ -288,10 +308,13 @@ def quality_section(data: ReportData) -> str:
             f"<tr><td>{esc(r['bus'])}</td><td class='num'>{_secs(r['from_ns'])}</td>"
             f"<td class='num'>{_secs(r['to_ns'])}</td>"
             f"<td class='num'>{_int(r['count'])}</td></tr>"
-            for r in data.losses.head(50).iter_rows(named=True))
+            for r in data.losses.head(LOSS_ROWS).iter_rows(named=True))
+        more = (f'<p class="note">first {LOSS_ROWS} of {len(data.losses):,} shown; all are '
+                "in the <code>losses</code> view of <code>tracelab sql</code>.</p>"
+                if len(data.losses) > LOSS_ROWS else "")
         parts.append("<table><thead><tr><th>bus</th><th class='num'>from</th>"
                      "<th class='num'>until</th><th class='num'>frames lost</th></tr></thead>"
-                     f"{rows}</table>")
+                     f"{rows}</table>{more}")
     steps = int(h.get("backward_steps", 0) or 0)
     parts.append(f"<h3>backward time steps: {steps:,}</h3>")
     if steps:

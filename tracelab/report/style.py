@@ -35,7 +35,7 @@ STATE_COLOURS = {
 
 GAP_BUS = "#36414f"  # frames missing on the bus
 GAP_LOGGER = "#b9c0cb"  # frames the logger lost
-LOGGER_SHADE = "#9aa6b8"
+LOGGER_SHADE = "#8f99c4"  # logger-loss intervals: a cool violet-grey, unlike any gap cell
 
 
 def bus_colour(index: int) -> str:
@@ -70,7 +70,7 @@ CSS = Template("""
 * { box-sizing: border-box; }
 body { margin: 0; background: var(--page); color: var(--ink);
        font: 14px/1.5 Inter, 'Segoe UI', 'Helvetica Neue', Arial, sans-serif; }
-main { max-width: 1180px; margin: 0 auto; padding: 28px 24px 48px; }
+main { max-width: 1240px; margin: 0 auto; padding: 28px 24px 48px; }
 h1 { font-size: 22px; font-weight: 600; margin: 0 0 4px; letter-spacing: .2px; }
 h2 { font-size: 16px; font-weight: 600; margin: 0 0 12px; }
 h3 { font-size: 13px; font-weight: 600; margin: 18px 0 6px; color: var(--muted);
@@ -91,12 +91,13 @@ section { background: var(--paper); border: 1px solid var(--grid); border-radius
 .verdict.unknown { background: #f1f1ef; border-left-color: var(--muted); }
 table { border-collapse: collapse; width: 100%; font-variant-numeric: tabular-nums;
         font-size: 13px; }
-th, td { text-align: left; padding: 5px 8px; border-bottom: 1px solid var(--grid);
+th, td { text-align: left; padding: 5px 7px; border-bottom: 1px solid var(--grid);
          vertical-align: top; }
 th { color: var(--muted); font-weight: 600; font-size: 12px; white-space: nowrap; }
 th.sort { cursor: pointer; user-select: none; }
 th.sort::after { content: " \\2195"; color: #b5b8be; }
 td.num, th.num { text-align: right; white-space: nowrap; }
+td.msg { white-space: nowrap; }
 .scroll { max-height: 360px; overflow: auto; border: 1px solid var(--grid); border-radius: 6px; }
 .scroll thead th { position: sticky; top: 0; background: var(--paper); }
 .bad-cell { color: var(--red); font-weight: 600; }

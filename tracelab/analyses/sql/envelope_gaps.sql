@@ -17,9 +17,14 @@ cells AS (
     SELECT bus, id, ext, logger,
            unnest(range(from_ns // $bucket_ns, to_ns // $bucket_ns + 1)) AS cell
     FROM g
+),
+agg AS (
+    SELECT bus, id, ext, cell * $bucket_ns AS t_ns,
+           count(*) AS gaps, bool_and(logger) AS logger
+    FROM cells
+    GROUP BY bus, id, ext, cell
 )
-SELECT bus, id, ext, cell * $bucket_ns AS t_ns,
-       count(*) AS gaps, bool_and(logger) AS logger
-FROM cells
-GROUP BY ALL
-ORDER BY bus, id, t_ns
+SELECT bus, id, ext, t_ns, gaps, logger
+FROM agg
+-- messages with frames missing on the bus first, those only the logger lost after them
+ORDER BY bool_and(logger) OVER (PARTITION BY bus, id, ext), bus, ext, id, t_ns
