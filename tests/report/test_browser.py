@@ -46,6 +46,7 @@ def open_report(browser: Any, path: Path) -> tuple[Any, list[str]]:
     page = browser.new_page()
     page.on("console", lambda m: problems.append(m.text) if m.type == "error" else None)
     page.on("pageerror", lambda e: problems.append(str(e)))
+    page.on("dialog", lambda d: (problems.append(f"dialog: {d.message}"), d.dismiss()))
     page.goto(path.as_uri())
     page.wait_for_function("document.querySelectorAll('.fig .main-svg').length >= 6")
     return page, problems
@@ -97,11 +98,15 @@ def test_report_renders_in_chromium(browser: Any, report_path: Path) -> None:
     page.close()
 
 
-@pytest.mark.slow
 def test_demo_report_renders_in_chromium(browser: Any, tmp_path: Path) -> None:
+    """The bundled demo end to end (about 10 s): its scenario marks a test step with
+    ``<script>alert(1)</script>``; a dialog would be reported as a problem."""
     text = workflow.demo(tmp_path / "demo", quiet=True)
+    assert text.startswith("verdict: ")
     path = Path(text.splitlines()[-1].removeprefix("report: "))
+    assert os.path.getsize(path) < 10_000_000
     page, problems = open_report(browser, path)
     check_report(page, problems, "demo-report-top.png")
+    labels = page.locator("#fig-errors .annotation-text").all_text_contents()
+    assert any("<scr" in label for label in labels)  # drawn as text
     page.close()
-    assert os.path.getsize(path) < 10_000_000
