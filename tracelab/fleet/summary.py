@@ -82,12 +82,12 @@ def run_row(con: duckdb.DuckDBPyConnection, spec: RunSpec,
             faults_json: dict[str, Any] | None) -> dict[str, Any]:
     """The run's summary row from its dataset views, analyses and the faults JSON."""
     row = {**base_row(spec), "status": "ok", "reason": None}
-    first, last, rejects = con.execute(
-        "SELECT min(first_t_ns), max(last_t_ns), sum(rejects) FROM manifest").fetchone() or (
-        None, None, 0)
+    ((first, last, rejects),) = con.execute(
+        "SELECT min(first_t_ns), max(last_t_ns), sum(rejects) FROM manifest").fetchall()
     row.update(first_t_ns=first, last_t_ns=last, rejects=int(rejects or 0),
                duration_ns=(last - first) if first is not None and last is not None else None)
-    row["frames"] = int(con.execute("SELECT count(*) FROM frames").fetchone()[0])  # type: ignore[index]
+    ((frames,),) = con.execute("SELECT count(*) FROM frames").fetchall()
+    row["frames"] = int(frames)
     by_type = dict(con.execute("SELECT type, count(*) FROM errors GROUP BY type").fetchall())
     row["errors"] = int(sum(by_type.values()))
     for kind in ERROR_TYPES:
@@ -115,9 +115,9 @@ def _missing(con: duckdb.DuckDBPyConnection) -> dict[str, Any]:
     """Total missing frames (outside logger losses) and messages with any missing."""
     if "timing" not in _views(con):
         return {"missing": None, "messages_missing": None}
-    total, messages = con.execute(
+    ((total, messages),) = con.execute(
         "SELECT coalesce(sum(missing), 0), count(*) FILTER (WHERE missing > 0) "
-        "FROM timing").fetchone() or (0, 0)
+        "FROM timing").fetchall()
     return {"missing": int(total), "messages_missing": int(messages)}
 
 
