@@ -173,8 +173,16 @@ class BusEngine:
             if self.counters[n].bus_off:
                 dead |= self.node_mask[n]
         self.elig, self.dead, self.ackers = elig, dead, ackers
-        hot = any(c.tec or c.rec or c.bus_off for c in self.counters)
-        self.slow = bool(self.active) or ackers <= 1 or hot or self.susp_node >= 0
+        # Counters of isolated nodes cannot change; a TEC above zero matters only for that
+        # node's own frames (tecmask), a REC above zero for every frame.
+        live = [n for n in range(len(self.names)) if self._participating(n)]
+        rec_hot = any(self.counters[n].rec for n in live)
+        self.tecmask = 0
+        for n in live:
+            if self.counters[n].tec:
+                self.tecmask |= self.node_mask[n]
+        self.slow = (bool(self.active) or ackers <= 1 or rec_hot or bool(self.rec_run_start)
+                     or self.susp_node >= 0)
 
     def _uniform(self) -> float:
         if self._ui >= len(self._u):
@@ -361,7 +369,7 @@ class BusEngine:
 
         rt, rm, rd, clen = load(0)
         next_ev = self._next_event()
-        elig, dead, slow = self.elig, self.dead, self.slow
+        elig, dead, slow, tecmask = self.elig, self.dead, self.slow, self.tecmask
         while True:
             # Admit every release due by the bus-idle instant t (the per-frame hot path).
             while True:
@@ -388,7 +396,7 @@ class BusEngine:
                 over, pending = self._events(t, pending)
                 if over:
                     break
-                elig, dead, slow = self.elig, self.dead, self.slow
+                elig, dead, slow, tecmask = self.elig, self.dead, self.slow, self.tecmask
                 next_ev = self._next_event()
                 continue
             cand = pending & elig
@@ -398,10 +406,10 @@ class BusEngine:
                 continue
             low = cand & -cand
             r = low.bit_length() - 1
-            if slow:
+            if slow or low & tecmask:
                 t, pending = self._attempt(r, inst[r], idur[r], t, pending, out_t, out_g,
                                            dropped)
-                elig, dead, slow = self.elig, self.dead, self.slow
+                elig, dead, slow, tecmask = self.elig, self.dead, self.slow, self.tecmask
                 next_ev = self._next_event()
             else:
                 pending ^= low
