@@ -112,3 +112,22 @@ def test_same_seed_same_bytes(tmp_path: Path) -> None:
     simulate(sc, c, seed=6, quiet=True)
     assert a.read_bytes() == b.read_bytes()
     assert a.read_bytes() != c.read_bytes()
+
+
+def test_cli_simulate_and_bad_input(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
+    from tracelab.cli import main
+
+    path = scenario_file(tmp_path)
+    out = tmp_path / "cli.frames.gz"
+    assert main(["simulate", str(path), "-o", str(out), "--duration", "1s", "--seed", "2",
+                 "--quiet"]) == 0
+    printed = capsys.readouterr().out
+    assert "simulated run 'smoke' (seed 2): 1 s" in printed and str(out) in printed
+    assert json.loads(truth_path(out).read_text())["duration_ns"] == 10**9
+    assert main(["simulate", str(path), "-o", str(out), "--duration", "1 fortnight"]) == 2
+    assert "unknown unit 'fortnight'" in capsys.readouterr().err
+    bad = tmp_path / "bad.toml"
+    bad.write_text(SCENARIO.replace('kind = "rx-noise"', 'kind = "rx-nose"'), encoding="utf-8")
+    assert main(["simulate", str(bad), "-o", str(out)]) == 3
+    err = capsys.readouterr().err.strip()
+    assert err.count("\n") == 0 and "[fault 1] unknown fault kind 'rx-nose'" in err
