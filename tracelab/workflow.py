@@ -174,6 +174,27 @@ def _report_path(output: Path, run: str, several: bool) -> Path:
     return output / f"{safe}.html"
 
 
+def _covers(ds: Any, name: str, runs: list[str]) -> bool:
+    """Whether the stored analysis ``name`` has rows for every run with frames in ``runs``."""
+    import polars as pl
+
+    with_frames = set(ds.manifest().filter(pl.col("frames").fill_null(0) > 0)
+                      .filter(pl.col("run").is_in(runs))["run"].to_list())
+    if name == "faults":
+        stored = ds.read_analysis_json("faults")
+        if stored is None:
+            return False
+        return with_frames <= {r.get("run") for r in stored.get("results", [])}
+    path = ds.path / "analyses" / f"{name}.parquet"
+    if not path.exists():
+        return False
+    try:
+        seen = set(pl.scan_parquet(path).select("run").unique().collect()["run"].to_list())
+    except pl.exceptions.PolarsError:  # an output without a run column: take it as it is
+        return True
+    return with_frames <= seen
+
+
 def report(dataset: Path, output: Path, catalog: Path | None = None, run: str | None = None,
            shared_plotly: bool = False, load_limit: float = 0.5) -> list[Path]:
     from tracelab.analyses.envelopes import report_data
@@ -191,12 +212,13 @@ def report(dataset: Path, output: Path, catalog: Path | None = None, run: str | 
         if run not in runs:
             raise UsageError(f"{dataset}: no run '{run}'{did_you_mean(run, runs)}")
         runs = [run]
-    # Compute what the dataset lacks, for every run at once (a later --run finds it too).
-    if not ds.has_analysis("timing"):
+    # Compute what the dataset lacks (absent, or older than a run ingested since), for every
+    # run at once, so a later --run finds it too.
+    if not _covers(ds, "timing", runs):
         timing(dataset, catalog=catalog)
-    if not ds.has_analysis("load"):
+    if not _covers(ds, "load", runs):
         load(dataset)
-    if catalog is not None and not ds.has_analysis("faults"):
+    if catalog is not None and not _covers(ds, "faults", runs):
         faults(dataset, catalog=catalog)
     faults_json = ds.read_analysis_json("faults")
     con = ds.connect()

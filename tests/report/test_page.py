@@ -6,6 +6,7 @@ import json
 import re
 from pathlib import Path
 
+import polars as pl
 import pytest
 
 from tests.report.synthetic import FAULTS, RUN, SCRIPT_MARK, build_dataset
@@ -102,3 +103,27 @@ def test_verdict_sentence() -> None:
     assert verdict_sentence({"results": [{"bus": "a", "first_degraded": None}]}) == (
         "Clean run: no node left error-active.", "ok")
     assert verdict_sentence(None, errors=3)[1] == "unknown"
+
+
+def test_report_paths_for_one_and_several_runs(tmp_path: Path) -> None:
+    from tracelab.workflow import _report_path
+
+    assert _report_path(tmp_path / "r.html", "a/b", several=False) == tmp_path / "r.html"
+    assert _report_path(tmp_path / "r.html", "a/b", several=True) == tmp_path / "r-a_b.html"
+    assert _report_path(tmp_path / "out", "run 1", several=True) == tmp_path / "out" / "run_1.html"
+
+
+def test_report_recomputes_analyses_that_miss_a_run(dataset: Path, tmp_path: Path) -> None:
+    import shutil
+
+    from tracelab.store.dataset import open_dataset
+
+    copy = tmp_path / "ds"
+    shutil.copytree(dataset, copy)
+    ds = open_dataset(copy)
+    stale = ds.read_analysis("timing")
+    assert stale is not None
+    ds.write_analysis("timing", stale.with_columns(run=pl.lit("another-run")))
+    workflow.report(copy, tmp_path / "r.html")
+    refreshed = ds.read_analysis("timing")
+    assert refreshed is not None and refreshed["run"].unique().to_list() == [RUN]
