@@ -33,8 +33,6 @@ from tracelab.physics.confinement import (
 
 #: Probability of a type a hypothesis does not expect (an isolated node's non-ACK error).
 EPS = 0.02
-#: Error rate of attempts in which a hypothesis says no error can be seen.
-P_FORBIDDEN = 0.002
 #: Share of ACK errors among errors that a hypothesis does not attribute to a missing ACK.
 P_ACK_OTHER = 0.05
 #: Likelihood factor of one ESI bit contradicting the replayed state, and the cap per node.
@@ -80,8 +78,8 @@ def node_silences(ev: BusEvidence, gaps: pl.DataFrame | None = None,
 
     With the timing analysis' per-message gaps, a node is silent where the gaps of all its
     periodic messages overlap; otherwise (and for the open end of the log) the silences are the
-    gaps between the node's own frames longer than 8 median intervals and than the minimum
-    bus-off recovery time.
+    gaps between the node's own frames longer than 8 median and 4 99th-percentile intervals
+    and than the minimum bus-off recovery time.
     """
     min_ns = RECOVERY_SEQUENCES * RECOVERY_SEQUENCE_BITS * ev.bit_ns
     out: list[Silence] = []
@@ -91,8 +89,11 @@ def node_silences(ev: BusEvidence, gaps: pl.DataFrame | None = None,
                 out.append(Silence(n, ev.first_t_ns, None))
             continue
         step = np.diff(own)
-        median = float(np.median(step)) if step.size else float(ev.last_t_ns - ev.first_t_ns)
-        limit = max(8.0 * median, min_ns)
+        if step.size:
+            median, p99 = (float(v) for v in np.percentile(step, [50, 99]))
+        else:
+            median = p99 = float(ev.last_t_ns - ev.first_t_ns)
+        limit = max(8.0 * median, 4.0 * p99, min_ns)
         found: list[tuple[int, int | None]] = []
         if gaps is not None and catalog_keys and catalog_keys.get(n) and gaps.height:
             found = _intersect_gaps(gaps, catalog_keys[n], own, min_ns)
@@ -240,15 +241,16 @@ def _far_side_isolation(ev: BusEvidence, n: int, silence: Silence,
     return replay_node(with_extra_errors(ev, times, n, "ack", fid), n, False, config)
 
 
-def _bernoulli(k: int, m: int, free: bool) -> float:
-    """Log-likelihood of k failed attempts out of m: a fitted rate, or the forbidden rate."""
-    if m <= 0:
+def _poisson(k: int, exposure_ns: float) -> float:
+    """Log-likelihood of k errors over exposure_ns of bus time at the fitted rate k / exposure.
+
+    Errors hit an attempt in proportion to its length (noise per bit), so each group of
+    attempts has a rate per ns of bus time; the per-attempt terms common to every hypothesis
+    (the lengths of the errored attempts) are left out.
+    """
+    if k <= 0 or exposure_ns <= 0:
         return 0.0
-    k = min(k, m)
-    q = k / m if free else P_FORBIDDEN
-    if free and (k == 0 or k == m):
-        return 0.0
-    return k * math.log(q) + (m - k) * math.log(1 - q)
+    return k * math.log(k / exposure_ns) - k
 
 
 def _count_in(times: np.ndarray, intervals: list[tuple[int, int]]) -> int:
@@ -264,11 +266,12 @@ def _count_in(times: np.ndarray, intervals: list[tuple[int, int]]) -> int:
 def score(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Silence]) -> None:
     """Log-likelihood of the evidence under each hypothesis; scores are posteriors.
 
-    Every frame attempt (a frame in the log, or an error that destroyed one) is a Bernoulli
-    trial. A hypothesis splits the attempts into groups: groups where errors may happen get a
-    fitted rate (BIC penalty per rate), groups where the hypothesis says errors cannot be seen
-    get the rate P_FORBIDDEN. So a hypothesis wins by predicting where and when errors are
-    absent as well as where they are.
+    The bus time of all attempts (frames in the log, and the frames errors destroyed) is split
+    into groups, each with its own fitted error rate per ns and a BIC penalty per rate: the
+    whole bus (one rate); one node's frames vs the rest (transmit fault, isolation); and, for
+    a receive fault, the time while the node could flag errors vs the time it was
+    error-passive, its own frames apart (where a receive fault predicts no errors on others'
+    frames). A hypothesis wins by predicting where and when errors are absent as well.
     """
     errors = ev.events.with_row_index("k").filter(pl.col("kind") == KIND_ERROR)
     k_idx = errors["k"].to_numpy()
@@ -277,22 +280,31 @@ def score(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Silence]) -> N
     ack = (errors["type"] == "ack").to_numpy()
     known = tx >= 0
     n_err = int(tx.size)
-    attempts = ev.frames + n_err
-    penalty = 0.5 * math.log(max(2, attempts))
+    penalty = 0.5 * math.log(max(2, ev.frames + n_err))
+    total_busy = float(ev.frames_by_id["busy_ns"].sum() or 0.0)
+    mean_ns = total_busy / ev.frames if ev.frames else 250_000.0
+    node_busy = ev.share * total_busy
+    node_mean = np.array([node_busy[n] / own.size if own.size else mean_ns
+                          for n, own in enumerate(ev.own_t)])
+    exposure = total_busy + n_err * mean_ns
     lp_type_other = np.where(ack, math.log(P_ACK_OTHER), math.log(1 - P_ACK_OTHER))
     n_nodes = max(1, len(ev.nodes))
     attributed = (by >= 0) & known & (by != tx)
     lp_by_uniform = np.where(attributed, -math.log(n_nodes), 0.0)
+    bus_rate = _poisson(n_err, exposure) - penalty
     for h in hyps:  # loop over hypotheses (a few per node)
         n = h.node
         if h.kind in ("bus-disturbance", "silence") or n is None or h.facts.get("far_side"):
-            rate = _bernoulli(n_err, attempts, True) - penalty
+            rate = bus_rate
             lp = lp_type_other + lp_by_uniform
         elif h.kind in ("transmit-fault", "isolation"):
             mine = known & (tx == n)
-            k_own, m_own = int(mine.sum()), int(ev.own_t[n].size) + int(mine.sum())
-            rate = (_bernoulli(k_own, m_own, True)
-                    + _bernoulli(n_err - k_own, attempts - m_own, False) - penalty)
+            k_own = int(mine.sum())
+            own_exp = node_busy[n] + k_own * node_mean[n]
+            rate = (_poisson(k_own, own_exp) + _poisson(n_err - k_own, exposure - own_exp)
+                    - 2 * penalty)
+            if k_own * (exposure - own_exp) <= (n_err - k_own) * own_exp:
+                rate = -math.inf  # its frames fail no more often than the others': not it
             if h.kind == "isolation":
                 lp = np.where(mine, np.where(ack, math.log(1 - EPS), math.log(EPS)),
                               lp_type_other) + lp_by_uniform
@@ -309,9 +321,13 @@ def score(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Silence]) -> N
             mine = known & (tx == n)
             k_pown, k_poth = int((passive & mine).sum()), int((passive & ~mine).sum())
             k_act = n_err - k_pown - k_poth
-            rate = (_bernoulli(k_act, attempts - f_in - k_pown - k_poth, True)
-                    + _bernoulli(k_pown, own_in + k_pown, True)
-                    + _bernoulli(k_poth, f_in - own_in + k_poth, False) - 2 * penalty)
+            pown_exp = (own_in + k_pown) * node_mean[n]
+            poth_exp = (f_in - own_in + k_poth) * mean_ns
+            act_exp = max(exposure - pown_exp - poth_exp, 1.0)
+            rate = (_poisson(k_act, act_exp) + _poisson(k_pown, pown_exp)
+                    + _poisson(k_poth, poth_exp) - 3 * penalty)
+            if k_poth * act_exp >= k_act * poth_exp and poth_exp > 0:
+                rate = -math.inf  # errors on others' frames did not drop: not a receive fault
             lp_by = np.where(attributed & ~passive & (tx != n),
                              np.where(by == n, math.log(0.9), math.log(0.1 / n_nodes)),
                              lp_by_uniform)
@@ -329,8 +345,10 @@ def score(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Silence]) -> N
             h.facts["own_ack"] = int(np.sum(known & (tx == n) & ack))
             h.facts["own_frames"] = int(ev.own_t[n].size)
         h.facts["errors"] = int(known.sum())
-    best = max(h.loglik + math.log(h.prior) for h in hyps)
-    weights = [math.exp(h.loglik + math.log(h.prior) - best) for h in hyps]
+    finite = [h for h in hyps if math.isfinite(h.loglik)]
+    best = max(h.loglik + math.log(h.prior) for h in finite)
+    weights = [math.exp(h.loglik + math.log(h.prior) - best) if math.isfinite(h.loglik)
+               else 0.0 for h in hyps]
     total = sum(weights)
     for h, w in zip(hyps, weights, strict=True):
         h.score = w / total

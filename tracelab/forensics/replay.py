@@ -97,13 +97,16 @@ def _frame(con: duckdb.DuckDBPyConnection, query: str) -> pl.DataFrame:
     return con.sql(query).pl()
 
 
-def run_buses(con: duckdb.DuckDBPyConnection, run: str | None = None) -> list[tuple[str, str]]:
+def run_buses(con: duckdb.DuckDBPyConnection, run: str | None = None,
+              by_id: pl.DataFrame | None = None) -> list[tuple[str, str]]:
     """(run, bus) pairs that have any frames or errors, sorted."""
     where = f"WHERE run = {_sql(run)}" if run is not None else ""
-    rows = con.execute(
-        f"SELECT DISTINCT run, bus FROM (SELECT run, bus FROM frames {where} "
-        f"UNION SELECT run, bus FROM errors {where}) ORDER BY run, bus").fetchall()
-    return [(str(r), str(b)) for r, b in rows]
+    rows = set(con.execute(f"SELECT DISTINCT run, bus FROM errors {where}").fetchall())
+    if by_id is None:
+        rows |= set(con.execute(f"SELECT DISTINCT run, bus FROM frames {where}").fetchall())
+    else:
+        rows |= set(by_id.select("run", "bus").unique().iter_rows())
+    return sorted((str(r), str(b)) for r, b in rows)
 
 
 def _sender_codes(catalog: CatalogLike, bus: str, nodes: list[str]) -> pl.DataFrame:
@@ -132,33 +135,54 @@ def _nominal_bps(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run: str,
     return 500_000
 
 
+def frames_by_id(con: duckdb.DuckDBPyConnection, run: str | None = None) -> pl.DataFrame:
+    """One scan: frames, bus time and FD frames per (run, bus, id, ext)."""
+    where = f"WHERE run = {_sql(run)}" if run is not None else ""
+    return _frame(con, "SELECT run, bus, id, ext, count(*) AS frames, "
+                  "sum(duration_ns)::BIGINT AS busy_ns, count(*) FILTER (WHERE fd) AS fd_frames "
+                  f"FROM frames {where} GROUP BY ALL").with_columns(
+        pl.col("id").cast(pl.UInt32), pl.col("ext").cast(pl.Boolean))
+
+
 def load_bus_evidence(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run: str,
-                      bus: str) -> BusEvidence:
-    """Read frames, errors, status and losses of one (run, bus) into arrays."""
+                      bus: str, by_id: pl.DataFrame | None = None,
+                      only_pair: bool = False) -> BusEvidence:
+    """Read frames, errors, status and losses of one (run, bus) into arrays.
+
+    ``only_pair``: the views hold this (run, bus) only, so the frame scans need no filter.
+    """
     nodes = list(catalog.nodes_on(bus))
     codes = _sender_codes(catalog, bus, nodes)
-    extra = [n for (n,) in con.execute(
-        f"SELECT DISTINCT node FROM status WHERE run = {_sql(run)} AND bus = {_sql(bus)} "
-        f"UNION SELECT DISTINCT \"by\" FROM errors WHERE run = {_sql(run)} AND bus = {_sql(bus)} "
-        "AND \"by\" IS NOT NULL ORDER BY 1").fetchall() if n not in nodes]
-    nodes += extra
     where = f"run = {_sql(run)} AND bus = {_sql(bus)}"
-    # One pass over the frames: times, the key for the sender lookup and the ESI flag.
-    arrays = con.execute(
-        f"SELECT t_ns, (id::BIGINT * 2 + ext::INT)::BIGINT AS key, "
-        f"(fd::INT + (fd AND esi)::INT)::TINYINT AS esi FROM frames WHERE {where}").fetchnumpy()
-    frame_t = np.asarray(arrays["t_ns"], dtype=np.int64)
-    keys = np.asarray(arrays["key"], dtype=np.int64)
-    esi = np.asarray(arrays["esi"], dtype=np.int8)
+    extra = [n for (n,) in con.execute(
+        f"SELECT DISTINCT node FROM status WHERE {where} UNION SELECT DISTINCT \"by\" FROM "
+        f"errors WHERE {where} AND \"by\" IS NOT NULL ORDER BY 1").fetchall() if n not in nodes]
+    nodes += extra
+    if by_id is None:
+        by_id = frames_by_id(con, run)
+    by_id = by_id.filter((pl.col("run") == run) & (pl.col("bus") == bus)).drop("run", "bus")
+    by_id = by_id.join(codes.select("id", "ext", "sender", "code"), on=["id", "ext"],
+                       how="left")
+    scan = f"FROM frames{'' if only_pair else ' WHERE ' + where}"
+    # Column by column: DuckDB hands each over as one numpy array (the cheapest transfer).
+    frame_t = np.asarray(con.execute(f"SELECT t_ns {scan}").fetchnumpy()["t_ns"], np.int64)
+    ids = np.asarray(con.execute(f"SELECT id {scan}").fetchnumpy()["id"], np.int64)
+    any_ext = bool(by_id["ext"].any()) if by_id.height else False
+    if any_ext:
+        ext = np.asarray(con.execute(f"SELECT ext {scan}").fetchnumpy()["ext"], bool)
+        keys = ids * 2 + ext
+    else:
+        keys = ids * 2
+    if int(by_id["fd_frames"].sum() or 0):
+        flags = con.execute(f"SELECT (fd::INT + (fd AND esi)::INT)::TINYINT AS esi {scan}")
+        esi = np.asarray(flags.fetchnumpy()["esi"], np.int8)
+    else:
+        esi = np.zeros(frame_t.size, np.int8)
     if frame_t.size > 1 and bool(np.any(frame_t[1:] < frame_t[:-1])):
         order = np.argsort(frame_t, kind="stable")  # rare: logs with backward time steps
         frame_t, keys, esi = frame_t[order], keys[order], esi[order]
     frame_node = _map_keys(keys, codes)
-    own_t = [frame_t[frame_node == i] for i in range(len(nodes))]
-    by_id = _frame(con, f"SELECT id, ext, count(*) AS frames, sum(duration_ns)::BIGINT AS "
-                   f"busy_ns FROM frames WHERE {where} GROUP BY id, ext")
-    by_id = by_id.with_columns(pl.col("id").cast(pl.UInt32), pl.col("ext").cast(pl.Boolean)).join(
-        codes.select("id", "ext", "sender", "code"), on=["id", "ext"], how="left")
+    own_t = _split_by_node(frame_t, frame_node, len(nodes))
     busy = np.zeros(len(nodes), dtype=np.float64)
     for code, ns in zip(by_id["code"].fill_null(-1).to_list(), by_id["busy_ns"].to_list(),
                         strict=True):
@@ -172,12 +196,10 @@ def load_bus_evidence(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run:
     loss_arr = np.column_stack([np.asarray(losses["t_ns"], dtype=np.int64),
                                 np.asarray(losses["until_ns"], dtype=np.int64)]) \
         if len(losses["t_ns"]) else np.zeros((0, 2), dtype=np.int64)
-    span = con.execute(
-        f"SELECT min(t), max(t) FROM (SELECT min(t_ns) t FROM frames WHERE {where} UNION ALL "
-        f"SELECT max(t_ns) FROM frames WHERE {where} UNION ALL SELECT min(t_ns) FROM errors "
-        f"WHERE {where} UNION ALL SELECT max(t_ns) FROM errors WHERE {where})").fetchone()
-    first_t = int(span[0]) if span and span[0] is not None else 0
-    last_t = int(span[1]) if span and span[1] is not None else 0
+    ends = [int(frame_t[0]), int(frame_t[-1])] if frame_t.size else []
+    if events.height:
+        ends += [int(events["t_ns"].min()), int(events["t_ns"].max())]  # type: ignore[arg-type]
+    first_t, last_t = (min(ends), max(ends)) if ends else (0, 0)
     evidence = BusEvidence(run, bus, nodes, 1e9 / _nominal_bps(con, catalog, run, bus),
                            frame_t, frame_node, esi, own_t, share, events, loss_arr, first_t,
                            last_t, by_id, con)
@@ -185,12 +207,26 @@ def load_bus_evidence(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run:
     return evidence
 
 
+def _split_by_node(frame_t: np.ndarray, frame_node: np.ndarray, n: int) -> list[np.ndarray]:
+    """Per node, its frame times (sorted): one stable radix sort of the 16-bit codes."""
+    order = np.argsort(frame_node, kind="stable")
+    grouped = frame_t[order]
+    counts = np.bincount(frame_node.astype(np.int64) + 1, minlength=n + 1)
+    bounds = np.cumsum(counts)
+    return [grouped[bounds[i]:bounds[i + 1]] for i in range(n)]
+
+
 def _map_keys(keys: np.ndarray, codes: pl.DataFrame) -> np.ndarray:
-    """Sender index per frame from the (id, ext) key, vectorised (sorted-key lookup)."""
+    """Sender index per frame from the (id, ext) key, vectorised: a lookup table when all
+    identifiers are standard ones, else a sorted-key search."""
     cat_keys = (codes["id"].cast(pl.Int64) * 2 + codes["ext"].cast(pl.Int64)).to_numpy()
     cat_codes = codes["code"].to_numpy().astype(np.int16)
     if cat_keys.size == 0 or keys.size == 0:
         return np.full(keys.size, -1, dtype=np.int16)
+    if int(keys.max()) < 4096 and int(cat_keys.max()) < 4096 and int(keys.min()) >= 0:
+        table = np.full(4096, -1, dtype=np.int16)
+        table[cat_keys] = cat_codes
+        return table[keys]
     order = np.argsort(cat_keys)
     cat_keys, cat_codes = cat_keys[order], cat_codes[order]
     pos = np.searchsorted(cat_keys, keys)

@@ -7,6 +7,7 @@ object ``tracelab faults --json`` prints (the shape is spec: issue 5, section 2)
 from __future__ import annotations
 
 import datetime as dt
+import math
 import re
 from dataclasses import dataclass
 from typing import Any
@@ -27,6 +28,7 @@ from tracelab.forensics.replay import (
     BusEvidence,
     CatalogLike,
     NodeReplay,
+    frames_by_id,
     load_bus_evidence,
     replay_node,
     run_buses,
@@ -112,8 +114,11 @@ def replay_faults(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run: str
     counters: list[pl.DataFrame] = []
     states: list[pl.DataFrame] = []
     frames = events = 0
-    for r, bus in run_buses(con, run):  # loop over (run, bus) pairs
-        ev = load_bus_evidence(con, catalog, r, bus)
+    by_id = frames_by_id(con, run)
+    pairs = run_buses(con, run, by_id)
+    alone = run is None and len(pairs) == 1
+    for r, bus in pairs:  # loop over (run, bus) pairs
+        ev = load_bus_evidence(con, catalog, r, bus, by_id, only_pair=alone)
         frames += ev.frames
         events += ev.events.height
         bus_gaps = None
@@ -280,6 +285,8 @@ def _why(ev: BusEvidence, h: Hypothesis, best: Hypothesis) -> str:
     else:
         text = f"{name} fell silent with no errors explaining it"
     parts = ", ".join(f"{k} {v:.1f}" for k, v in h.parts.items() if v)
+    if not math.isfinite(h.loglik):
+        return text + "; ruled out: its error pattern is the opposite of what it predicts"
     text += f"; log-likelihood {h.loglik:.1f}" + (f" ({parts})" if parts else "")
     if h is not best:
         text += f", {best.loglik + _log(best.prior) - h.loglik - _log(h.prior):.1f} below the best"
@@ -287,8 +294,6 @@ def _why(ev: BusEvidence, h: Hypothesis, best: Hypothesis) -> str:
 
 
 def _log(x: float) -> float:
-    import math
-
     return math.log(x) if x > 0 else float("-inf")
 
 
