@@ -125,11 +125,11 @@ def test_interrupted_ingest_leaves_the_dataset_as_it_was(tmp_path: Path,
     real_write = ingest_module._PartWriter.write
 
     def crash_on_second_file(self: ingest_module._PartWriter, table: str,
-                             frame: pl.DataFrame) -> None:
+                             frame: pl.DataFrame, index: int) -> None:
         if self.run == "r3":
             raise KeyboardInterrupt  # the user pressed Ctrl-C half-way
         calls["n"] += 1
-        real_write(self, table, frame)
+        real_write(self, table, frame, index)
 
     monkeypatch.setattr(ingest_module._PartWriter, "write", crash_on_second_file)
     with pytest.raises(KeyboardInterrupt):
@@ -160,7 +160,8 @@ def test_crash_before_the_manifest_keeps_new_parts_invisible(
 
 def test_many_chunks_write_many_parts_with_the_same_rows(tmp_path: Path,
                                                         monkeypatch: pytest.MonkeyPatch) -> None:
-    records = [f"{t * 1000}\tP\tframe\t{t % 0x7FF:03X}\ts\t1\t{t % 256:02X}" for t in range(2000)]
+    records = [f"{(t - 40 * (t % 97 == 0)) * 1000}\t{'PC'[t % 3 == 0]}\tframe\t{t % 0x7FF:03X}\ts\t1\t"
+               f"{t % 256:02X}" for t in range(2000)]  # every 97th record steps back
     log = _log(tmp_path / "a.frames", records)
     monkeypatch.setattr("tracelab.format.reader.CHUNK_BYTES", 1000)
     ingest_logs([log], tmp_path / "small", quiet=True)
@@ -170,3 +171,8 @@ def test_many_chunks_write_many_parts_with_the_same_rows(tmp_path: Path,
     big = open_dataset(tmp_path / "big").table("frames").collect()
     assert len(open_dataset(tmp_path / "small").part_files("frames")) > 10
     assert small.drop("file").equals(big.drop("file"))
+    m_small = open_dataset(tmp_path / "small").manifest()
+    m_big = open_dataset(tmp_path / "big").manifest()
+    columns = ["lines", "header_lines", "frames", "backward_steps", "first_backward_line"]
+    assert m_small.select(columns).row(0) == m_big.select(columns).row(0)
+    assert m_big["backward_steps"][0] == 20 and m_big["first_backward_line"][0] == 7 + 97

@@ -77,11 +77,23 @@ class Chunk:
     first_t_ns: int | None = None
     last_t_ns: int | None = None
     bytes_read: int = 0  # bytes of the file on disk consumed so far (for progress bars)
+    bus_first: dict[str, tuple[int, int]] = field(default_factory=dict)  # bus: (t_ns, line)
+    bus_last: dict[str, int] = field(default_factory=dict)  # bus: last t_ns
 
     @property
     def records(self) -> int:
         return (self.frames.height + self.errors.height + self.status.height
                 + self.marks.height + self.losses.height)
+
+
+@dataclass(frozen=True)
+class Block:
+    """Raw bytes of whole lines (the last one unterminated only at the end of the file)."""
+
+    body: bytes
+    first_line: int
+    terminated: bool
+    bytes_read: int
 
 
 # --- opening and the header ---------------------------------------------------------------
@@ -450,9 +462,8 @@ class LogReader:
         except _CORRUPT as error:
             raise _corrupt(self.path, error) from error
 
-    def chunks(self, strict: bool = False) -> Iterator[Chunk]:
-        """Yield the records in chunks; LogFormatError on a fatal fault (a directive after
-        a record, corrupt compression) or, with ``strict``, on the first bad line."""
+    def blocks(self) -> Iterator[Block]:
+        """Split the stream into blocks of whole lines, numbered (sequential, cheap)."""
         carry = self._first
         line_no = self.header_lines
         while True:
@@ -463,13 +474,43 @@ class LogReader:
                 carry = data
             else:
                 body, carry = data[: cut + 1], data[cut + 1:]
-                chunk = self._chunk(body, line_no + 1, strict, terminated=True)
-                line_no += chunk.lines
-                yield chunk
+                yield Block(body, line_no + 1, True, self._raw.tell())
+                line_no += body.count(b"\n")
             if not block:
                 break
         if carry:
-            yield self._chunk(carry, line_no + 1, strict, terminated=False)
+            yield Block(carry, line_no + 1, False, self._raw.tell())
+
+    def parse(self, block: Block, strict: bool = False) -> Chunk:
+        """Typed tables of one block. Thread-safe: blocks may be parsed in parallel, then
+        passed to link() in order. LogFormatError on a fatal fault (a directive after a
+        record) or, with ``strict``, on the block's first bad line."""
+        if block.terminated and self.fast:
+            chunk = self._chunk_fast(block.body, block.first_line)
+            if chunk is not None:
+                chunk.bytes_read = block.bytes_read
+                return chunk
+        chunk = self._chunk_exact(block.body, block.first_line, strict, block.terminated)
+        chunk.bytes_read = block.bytes_read
+        return chunk
+
+    def link(self, chunk: Chunk) -> None:
+        """Count backward time steps across the boundary with the previous chunk (call in
+        line order)."""
+        for bus, (t_ns, line) in chunk.bus_first.items():
+            previous = self._last_t.get(bus)
+            if previous is not None and t_ns < previous:
+                chunk.backward_steps += 1
+                if chunk.first_backward_line is None or line < chunk.first_backward_line:
+                    chunk.first_backward_line = line
+        self._last_t.update(chunk.bus_last)
+
+    def chunks(self, strict: bool = False) -> Iterator[Chunk]:
+        """Yield the records in chunks, in order (see parse() for the errors)."""
+        for block in self.blocks():
+            chunk = self.parse(block, strict)
+            self.link(chunk)
+            yield chunk
 
     def _lines(self, body: bytes, terminated: bool) -> pl.DataFrame:
         """Columns text, bad (reason the line is not UTF-8, else null)."""
@@ -501,15 +542,6 @@ class LogReader:
                            f"column {error.start + 1})")
         return pl.DataFrame({"text": texts, "bad": bad}, schema={"text": pl.String,
                                                                  "bad": pl.String})
-
-    def _chunk(self, body: bytes, first_line: int, strict: bool, terminated: bool) -> Chunk:
-        """Fast path when the chunk is plain (LF only, UTF-8, every line valid), else the
-        exact path that finds each bad line and its reason."""
-        if terminated and self.fast:
-            chunk = self._chunk_fast(body, first_line)
-            if chunk is not None:
-                return chunk
-        return self._chunk_exact(body, first_line, strict, terminated)
 
     def _chunk_fast(self, body: bytes, first_line: int) -> Chunk | None:
         """Parse with polars' CSV reader and accept the chunk only when every line is valid;
@@ -584,7 +616,7 @@ class LogReader:
             marks=self._marks(rest), losses=self._losses(rest),
             rejects=pl.DataFrame(schema={"line": pl.Int64, "raw": pl.String,
                                          "reason": pl.String}),
-            lines=n, other_lines=n - n_ok - n_rest, bytes_read=self._raw.tell())
+            lines=n, other_lines=n - n_ok - n_rest)
         self._time_steps(timed, chunk)
         return chunk
 
@@ -624,13 +656,13 @@ class LogReader:
         chunk = Chunk(
             frames=self._frames(good), errors=self._errors(good), status=self._status(good),
             marks=self._marks(good), losses=self._losses(good), rejects=rejects, lines=n,
-            other_lines=other_lines, bytes_read=self._raw.tell())
+            other_lines=other_lines)
         self._time_steps(good, chunk)
         return chunk
 
     def _time_steps(self, good: pl.DataFrame, chunk: Chunk) -> None:
-        """Backward time steps per bus, carried across chunks (marks on '*' are not counted).
-        ``good`` holds bus, t_ns, line of the valid records in line order."""
+        """Backward time steps per bus within the chunk, and each bus's first and last time
+        for link() ('*' marks are not counted). ``good``: bus, t_ns, line in line order."""
         if good.height == 0:
             return
         chunk.first_t_ns = good["t_ns"].min()  # type: ignore[assignment]
@@ -642,15 +674,13 @@ class LogReader:
             t_bus = t_ns[mask]
             if t_bus.size == 0:
                 continue
+            lines_bus = lines[mask]
             back = np.flatnonzero(t_bus[1:] < t_bus[:-1]) + 1
             chunk.backward_steps += back.size
-            previous = self._last_t.get(decl.alias)
-            if previous is not None and t_bus[0] < previous:
-                chunk.backward_steps += 1
-                back = np.concatenate([[0], back])
             if back.size:
-                firsts.append(int(lines[mask][back[0]]))
-            self._last_t[decl.alias] = int(t_bus[-1])
+                firsts.append(int(lines_bus[back[0]]))
+            chunk.bus_first[decl.alias] = (int(t_bus[0]), int(lines_bus[0]))
+            chunk.bus_last[decl.alias] = int(t_bus[-1])
         chunk.first_backward_line = min(firsts) if firsts else None
 
     @staticmethod
@@ -733,7 +763,7 @@ def read_log(path: str | Path, strict: bool = False, fast: bool = True) -> LogTa
         tables = {name: pl.concat([getattr(c, name) for c in chunks]) if chunks else None
                   for name in ("frames", "errors", "status", "marks", "losses", "rejects")}
         if not chunks:
-            empty = reader._chunk(b"", reader.header_lines + 1, strict, terminated=False)
+            empty = reader.parse(Block(b"", reader.header_lines + 1, False, 0))
             tables = {name: getattr(empty, name) for name in tables}
         return LogTables(
             header=reader.header, header_lines=reader.header_lines,

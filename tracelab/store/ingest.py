@@ -9,10 +9,9 @@ from __future__ import annotations
 
 import hashlib
 import json
-import queue
 import shutil
-import threading
-from collections.abc import Iterator
+from collections import deque
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
@@ -22,7 +21,7 @@ import polars as pl
 
 import tracelab
 from tracelab.errors import TracelabError, UsageError
-from tracelab.format.reader import Chunk, LogReader
+from tracelab.format.reader import Block, Chunk, LogReader
 from tracelab.format.writer import LogHeader
 from tracelab.physics.bitlength import frame_bits, frame_durations_ns
 from tracelab.progress import progress
@@ -32,41 +31,9 @@ from tracelab.store.dataset import Dataset, create_or_open
 RECORD_TABLES = ("frames", "errors", "status", "marks", "losses")
 SHOWN_REJECTS = 3
 PARQUET_ZSTD_LEVEL = 1  # level 1 compresses frame tables nearly as well as 3, much faster
-
-
-def _prefetch(chunks: Iterator[Chunk], stop: threading.Event) -> Iterator[Chunk]:
-    """Read and validate the next chunk in a thread while the caller computes physics and
-    writes the previous one (polars and numpy release the GIL): two cores, two stages."""
-    box: queue.Queue[tuple[str, object]] = queue.Queue(maxsize=1)
-
-    def produce() -> None:
-        try:
-            for chunk in chunks:
-                while not stop.is_set():
-                    try:
-                        box.put(("chunk", chunk), timeout=0.1)
-                        break
-                    except queue.Full:
-                        continue
-                if stop.is_set():
-                    return
-            box.put(("end", None))
-        except BaseException as error:  # handed to the consumer, raised there
-            box.put(("error", error))
-
-    worker = threading.Thread(target=produce, name="tracelab-reader", daemon=True)
-    worker.start()
-    try:
-        while True:
-            kind, item = box.get()
-            if kind == "end":
-                return
-            if kind == "error":
-                raise item  # type: ignore[misc]
-            yield item  # type: ignore[misc]
-    finally:
-        stop.set()
-        worker.join()
+#: Chunks parsed, measured and written at once (polars and numpy release the GIL); one
+#: more waits read ahead, so memory stays at a few chunks whatever the file size.
+WORKERS = 2
 
 
 @dataclass
@@ -92,13 +59,14 @@ class FileSummary:
     def records(self) -> int:
         return sum(self.counts.values())
 
-    def add(self, chunk: Chunk) -> None:
+    def add(self, chunk: Chunk, counts: dict[str, int]) -> None:
+        """Fold in one chunk (in line order); ``counts``: rows per table of the chunk."""
         self.lines += chunk.lines
         self.header_lines += chunk.other_lines
         for table in RECORD_TABLES:
-            self.counts[table] += getattr(chunk, table).height
-        self.rejects += chunk.rejects.height
-        if len(self.first_rejects) < SHOWN_REJECTS and chunk.rejects.height:
+            self.counts[table] += counts[table]
+        self.rejects += counts["rejects"]
+        if len(self.first_rejects) < SHOWN_REJECTS and counts["rejects"]:
             head = chunk.rejects.head(SHOWN_REJECTS - len(self.first_rejects))
             self.first_rejects.extend(zip(head["line"].to_list(), head["reason"].to_list(),
                                           strict=True))
@@ -217,26 +185,24 @@ def _with_physics(frames: pl.DataFrame, header: LogHeader) -> pl.DataFrame:
 
 
 class _PartWriter:
-    """Writes one file's tables into a staging folder, one Parquet file per chunk."""
+    """Writes one file's tables into a staging folder: <table>/<chunk index>.parquet."""
 
     def __init__(self, folder: Path, run: str, file: str) -> None:
         self.folder, self.run, self.file = folder, run, file
-        self.written = dict.fromkeys(schema.TABLES, 0)
         for table in schema.TABLES:
             (folder / table).mkdir()
 
-    def write(self, table: str, frame: pl.DataFrame) -> None:
+    def write(self, table: str, frame: pl.DataFrame, index: int) -> None:
         frame = frame.with_columns(run=pl.lit(self.run), file=pl.lit(self.file))
         frame = schema.conform(frame, table)
-        frame.write_parquet(self.folder / table / f"{self.written[table]}.parquet",
+        frame.write_parquet(self.folder / table / f"{index}.parquet",
                             compression="zstd", compression_level=PARQUET_ZSTD_LEVEL)
-        self.written[table] += 1
 
     def close(self) -> None:
         """Every table gets at least one (possibly empty) file so views keep their schema."""
-        for table, count in self.written.items():
-            if count == 0:
-                self.write(table, schema.empty(table))
+        for table in schema.TABLES:
+            if not any((self.folder / table).iterdir()):
+                self.write(table, schema.empty(table), 0)
 
 
 def _check_paths(logs: list[Path]) -> None:
@@ -256,16 +222,40 @@ def _ingest_file(path: Path, sha: str, ds: Dataset, strict: bool, advance: objec
                               run=run_name(path, header), header=header,
                               lines=reader.header_lines, header_lines=reader.header_lines)
         parts = _PartWriter(folder, summary.run, summary.file)
-        done = 0
-        for chunk in _prefetch(reader.chunks(strict=strict), threading.Event()):
-            summary.add(chunk)
-            if chunk.frames.height:
-                parts.write("frames", _with_physics(chunk.frames, header))
+
+        def work(index: int, block: Block) -> tuple[Chunk, dict[str, int]]:
+            chunk = reader.parse(block, strict)
+            counts = {table: getattr(chunk, table).height for table in schema.TABLES}
+            if counts["frames"]:
+                parts.write("frames", _with_physics(chunk.frames, header), index)
             for table in ("errors", "status", "marks", "losses", "rejects"):
-                if getattr(chunk, table).height:
-                    parts.write(table, getattr(chunk, table))
+                if counts[table]:
+                    parts.write(table, getattr(chunk, table), index)
+            chunk.frames = chunk.frames.clear()  # written: free it before the merge
+            return chunk, counts
+
+        done = 0
+
+        def finish(future: Future[tuple[Chunk, dict[str, int]]]) -> None:
+            nonlocal done
+            chunk, counts = future.result()
+            reader.link(chunk)
+            summary.add(chunk, counts)
             advance(chunk.bytes_read - done)  # type: ignore[operator]
             done = chunk.bytes_read
+
+        pending: deque[Future[tuple[Chunk, dict[str, int]]]] = deque()
+        with ThreadPoolExecutor(WORKERS, thread_name_prefix="tracelab-ingest") as pool:
+            try:
+                for index, block in enumerate(reader.blocks()):
+                    pending.append(pool.submit(work, index, block))
+                    while len(pending) > WORKERS:
+                        finish(pending.popleft())
+                while pending:
+                    finish(pending.popleft())
+            finally:
+                for future in pending:
+                    future.cancel()
         parts.close()
     if summary.lines != summary.header_lines + summary.records + summary.rejects:
         raise AssertionError(f"{path}: line reconciliation failed ({summary.reconciliation()})")
