@@ -26,6 +26,8 @@ from tracelab.errors import UsageError
 MIN_WINDOW_NS = 1_000_000             # 1 ms
 MAX_WINDOW_NS = 3_600_000_000_000     # 1 h
 TOP_IDS = 10
+#: Times from -4e18 ns (about -127 years) are windowed correctly (see load_heads.sql).
+K_OFFSET_NS = 4 * 10**18
 WINDOW_COLUMNS = ("run", "bus", "window_ns", "t_ns", "busy_ns", "load_ratio", "frames",
                   "error_frames")
 
@@ -66,7 +68,8 @@ def bus_load(con: duckdb.DuckDBPyConnection, window_ns: int = 100_000_000,
     """Load per window of ``window_ns`` for every (run, bus) in ``con``'s frames and errors."""
     check_window(window_ns)
     install_macros(con)
-    params = {"run": run, "window_ns": int(window_ns), "top": int(top)}
+    params = {"run": run, "window_ns": int(window_ns), "top": int(top),
+              "k_offset": K_OFFSET_NS // int(window_ns)}
     if query_scalar(con, "SELECT count(*) FROM errors WHERE $run::VARCHAR IS NULL "
                     "OR run = $run::VARCHAR", {"run": run}):
         run_sql(con, "load_errors", params)

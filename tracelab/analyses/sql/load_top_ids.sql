@@ -1,9 +1,9 @@
 -- Identifiers by share of busy time per (run, bus): share = the id's frame time / all busy
 -- time (frames and error frames) of that bus in the run. The $top largest per (run, bus).
--- Reads the per-identifier grouping set of load_heads.sql.
 WITH per_id AS (
-    SELECT run, bus, id, ext, frames, busy_ns
-    FROM tl_grouped WHERE NOT by_window AND frames > 0
+    SELECT run, bus, id, ext, count(*) AS frames, sum(duration_ns) AS busy_ns
+    FROM frames WHERE $run::VARCHAR IS NULL OR run = $run::VARCHAR
+    GROUP BY run, bus, id, ext
 ),
 total AS (SELECT run, bus, sum(busy_ns) AS total_ns FROM tl_load GROUP BY run, bus),
 ranked AS (
