@@ -143,3 +143,29 @@ def test_no_progress_bar_when_stderr_is_not_a_terminal(tmp_path: Path,
     assert main(["ingest", str(log), "-o", str(tmp_path / "ds")]) == 0
     captured = capsys.readouterr()
     assert captured.err == "" and "50 records" in captured.out
+
+
+RAW_CASES = [
+    ("non-UTF-8", (HEADER + GOOD).encode() + b"5\tP\tmark\tcaf\xe9\n6\tP\tmark\tok\n",
+     "not valid UTF-8 text (byte 0xE9 at column 13)", 2),
+    ("truncated final line", (HEADER + GOOD + "5\tP\tframe\t0C0\ts\t8\t1122").encode(),
+     "truncated final line (no line end; the logger may have lost power)", 1),
+]
+
+
+@pytest.mark.parametrize(("name", "content", "reason", "records"), RAW_CASES,
+                         ids=[c[0] for c in RAW_CASES])
+def test_raw_byte_faults_in_both_modes(tmp_path: Path, dataset: Path,
+                                       capsys: pytest.CaptureFixture[str], name: str,
+                                       content: bytes, reason: str, records: int) -> None:
+    log = _write(tmp_path / "raw.frames", content)
+    before = _snapshot(dataset)
+    capsys.readouterr()
+    assert main(["ingest", str(log), "-o", str(dataset), "--strict", "-q"]) == 3
+    message = _one_line_error(capsys.readouterr().err)
+    assert message.startswith(f"tracelab: {log}:{BAD_LINE}: ") and reason in message
+    assert _snapshot(dataset) == before
+    assert main(["ingest", str(log), "-o", str(dataset), "-q"]) == 0
+    out = capsys.readouterr().out
+    assert f"+ {records} records" in out and f"first: {log}:{BAD_LINE}: " in out
+    assert reason in out
