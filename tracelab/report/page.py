@@ -190,7 +190,7 @@ def verdict_section(data: ReportData) -> str:
         if hypotheses:
             rows = "".join(
                 f"<tr><td>{'best' if i == 0 else 'runner-up' if i == 1 else ''}</td>"
-                f"<td>{esc(h.get('name'))}</td><td class='num'>{esc(_confidence(h.get('score')))}</td>"
+                f"<td class='msg'>{esc(h.get('name'))}</td><td class='num'>{esc(_confidence(h.get('score')))}</td>"
                 f"<td>{esc(h.get('why'))}</td></tr>" for i, h in enumerate(hypotheses[:4]))
             parts.append("<h3>hypotheses</h3><table><thead><tr><th></th><th>hypothesis</th>"
                          f"<th class='num'>score</th><th>why</th></tr></thead>{rows}</table>")
