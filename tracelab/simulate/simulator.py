@@ -27,7 +27,8 @@ from tracelab.simulate.schedule import build_schedule
 #: The logger loses whole 10 ms slots of records (buffer overflows come in bursts).
 LOSS_SLOT_NS = 10_000_000
 HEX = np.frombuffer(b"0123456789ABCDEF", dtype=np.uint8)
-WRITE_CHUNK = 1 << 16
+WRITE_CHUNK = 1 << 18
+INTERMISSION_BITS = 3
 
 
 @dataclass
@@ -113,17 +114,20 @@ def run_buses(scenario: Scenario, duration_ns: int, seed: int, quiet: bool = Tru
     return results
 
 
-def _frame_records(res: BusResult) -> pl.DataFrame:
-    """t_ns, rank, line of every transmitted frame, formatted without a Python loop."""
+def frame_stamps(res: BusResult) -> np.ndarray:
+    """Time stamp of every transmitted frame: end of EOF (stamp=end) or SOF (stamp=start)."""
+    if res.schedule.bus.stamp == "end":
+        return res.end_ns - int(round(INTERMISSION_BITS * 1e9 / res.schedule.bus.nominal_bps))
+    return res.start_ns
+
+
+def frame_lines(res: BusResult, which: np.ndarray) -> list[str]:
+    """Frame records ``which`` (positions in the transmitted frames) as log lines, formatted
+    without a Python loop over frames."""
     s = res.schedule
-    g = res.release
+    g = res.release[which]
     ranks = s.rank[g]
     ks = s.k[g]
-    bit_ns = 1e9 / s.bus.nominal_bps
-    if s.bus.stamp == "end":
-        t = res.end_ns - int(round(3 * bit_ns))
-    else:
-        t = res.start_ns
     width = max([m.nbytes for m in s.messages] + [1])
     chars = np.zeros((len(g), 2 * width), dtype=np.uint8)
     for m in s.messages:  # a loop over messages (tens), each vectorised over its frames
@@ -134,49 +138,54 @@ def _frame_records(res: BusResult) -> pl.DataFrame:
         chars[sel, 0:2 * m.nbytes:2] = HEX[rows >> 4]
         chars[sel, 1:2 * m.nbytes:2] = HEX[rows & 15]
     payload = pl.Series(chars.view(f"S{2 * width}").ravel()).cast(pl.Utf8)
-    idents = np.array([m.id_hex for m in s.messages] or [""], dtype=object)
-    forms = np.array([m.form for m in s.messages] or [""], dtype=object)
-    dlcs = np.array([str(m.dlc) for m in s.messages] or [""], dtype=object)
+    prefix = np.array([f"\t{s.bus.alias}\tframe\t{m.id_hex}\t{m.form}" for m in s.messages]
+                      or [""], dtype=object)
+    dlcs = np.array([f"\t{m.dlc}\t" for m in s.messages] or [""], dtype=object)
     frame = pl.DataFrame({
-        "t_ns": t.astype(np.int64),
-        "rank": ranks.astype(np.int64),
-        "ident": pl.Series(idents[ranks], dtype=pl.Utf8),
-        "form": pl.Series(forms[ranks], dtype=pl.Utf8),
-        "esi": res.esi,
+        "t_ns": frame_stamps(res)[which].astype(np.int64),
+        "prefix": pl.Series(prefix[ranks], dtype=pl.Utf8),
+        "esi": res.esi[which],
         "dlc": pl.Series(dlcs[ranks], dtype=pl.Utf8),
         "payload": payload,
     })
-    return frame.select(
-        "t_ns", "rank",
-        pl.concat_str([
-            pl.col("t_ns").cast(pl.Utf8), pl.lit(s.bus.alias), pl.lit("frame"), pl.col("ident"),
-            pl.when(pl.col("esi")).then(pl.col("form") + "e").otherwise(pl.col("form")),
-            pl.col("dlc"),
-            pl.when(pl.col("payload") == "").then(pl.lit("-")).otherwise(pl.col("payload")),
-        ], separator="\t").alias("line"),
-    )
+    line = pl.concat_str([
+        pl.col("t_ns").cast(pl.Utf8), pl.col("prefix"),
+        pl.when(pl.col("esi")).then(pl.lit("e")).otherwise(pl.lit("")),
+        pl.col("dlc"),
+        pl.when(pl.col("payload") == "").then(pl.lit("-")).otherwise(pl.col("payload")),
+    ])
+    return frame.select(line.alias("line"))["line"].to_list()
 
 
-def _bus_records(res: BusResult) -> pl.DataFrame:
-    """Frames, errors and status records of one bus in time order."""
-    frames = _frame_records(res).with_columns(pl.lit(0, pl.Int8).alias("kind"))
-    other = pl.DataFrame(
-        {"t_ns": [r[0] for r in res.records], "rank": [r[1] for r in res.records],
-         "line": [r[2] for r in res.records]},
-        schema={"t_ns": pl.Int64, "rank": pl.Int64, "line": pl.Utf8},
-    ).with_columns(pl.lit(1, pl.Int8).alias("kind"))
-    return pl.concat([frames, other]).sort("t_ns", maintain_order=True)
+@dataclass
+class _BusLog:
+    """One bus's records in time order as (time, source) arrays: source >= 0 is a position
+    in the transmitted frames, source < 0 is -1 - index into ``other``."""
+
+    res: BusResult
+    t_ns: np.ndarray
+    source: np.ndarray
+    other: list[str]
 
 
-def _logger_loss(records: pl.DataFrame, bus: str, faults: list[FaultSpec], duration_ns: int,
-                 rng: np.random.Generator
-                 ) -> tuple[pl.DataFrame, list[dict[str, Any]], np.ndarray]:
-    """Drop whole 10 ms slots of records with probability ``rate`` inside each window and
-    write one ``loss`` record per run of consecutive dropped records.
+def _bus_log(res: BusResult) -> _BusLog:
+    stamps = frame_stamps(res)
+    records = sorted(res.records, key=lambda r: r[0])  # errors and status (rare)
+    t_other = np.array([r[0] for r in records], dtype=np.int64)
+    t = np.concatenate([stamps, t_other])
+    source = np.concatenate([np.arange(len(stamps), dtype=np.int64),
+                             -1 - np.arange(len(records), dtype=np.int64)])
+    order = np.argsort(t, kind="stable")  # frames before other records at equal times
+    return _BusLog(res, t[order], source[order], [r[2] for r in records])
 
-    Returns the kept records with the loss records merged in, the loss runs (truth) and
-    the ranks of the lost frames."""
-    t = records["t_ns"].to_numpy()
+
+def _logger_loss(log: _BusLog, faults: list[FaultSpec], duration_ns: int,
+                 rng: np.random.Generator) -> tuple[list[dict[str, Any]], np.ndarray]:
+    """Drop whole 10 ms slots of records with probability ``rate`` inside each window; one
+    ``loss`` record per run of consecutive dropped records takes the place of the first.
+
+    Changes ``log`` in place; returns the loss runs (truth) and the ranks of lost frames."""
+    t = log.t_ns
     drop = np.zeros(len(t), dtype=bool)
     for f in faults:  # a loop over logger-loss faults (a handful)
         end = duration_ns if f.end_ns is None else min(f.end_ns, duration_ns)
@@ -186,23 +195,23 @@ def _logger_loss(records: pl.DataFrame, bus: str, faults: list[FaultSpec], durat
         slot = np.clip((t - f.start_ns) // LOSS_SLOT_NS, 0, n_slots - 1)
         drop |= inside & lost[slot]
     if not drop.any():
-        return records, [], np.zeros(0, np.int64)
+        return [], np.zeros(0, np.int64)
+    bus = log.res.schedule.bus.alias
     edges = np.diff(np.concatenate([[0], drop.astype(np.int8), [0]]))
     starts = np.flatnonzero(edges == 1)
     stops = np.flatnonzero(edges == -1)  # exclusive
-    losses: list[dict[str, Any]] = [
-        {"bus": bus, "from_ns": int(t[a]), "to_ns": int(t[b - 1]), "dropped": int(b - a)}
-              for a, b in zip(starts, stops, strict=True)]  # one per loss run (rare)
-    loss_records = pl.DataFrame({
-        "t_ns": [x["from_ns"] for x in losses], "rank": [-1] * len(losses),
-        "line": [loss_line(x["from_ns"], bus, x["dropped"], x["to_ns"]) for x in losses],
-        "kind": [2] * len(losses),
-    }, schema={"t_ns": pl.Int64, "rank": pl.Int64, "line": pl.Utf8, "kind": pl.Int8})
-    dropped = pl.Series(drop)
-    lost_ranks = records.filter(dropped & (pl.col("kind") == 0))["rank"].to_numpy()
-    # A loss record takes the place (and time) of the first record it covers.
-    merged = pl.concat([records.filter(~dropped), loss_records]).sort("t_ns", maintain_order=True)
-    return merged, losses, lost_ranks
+    lost_frames = log.source[drop & (log.source >= 0)]
+    lost_ranks = log.res.schedule.rank[log.res.release[lost_frames]]
+    losses: list[dict[str, Any]] = []
+    keep = ~drop
+    for a, b in zip(starts, stops, strict=True):  # one per loss run (rare)
+        losses.append({"bus": bus, "from_ns": int(t[a]), "to_ns": int(t[b - 1]),
+                       "dropped": int(b - a)})
+        log.other.append(loss_line(int(t[a]), bus, int(b - a), int(t[b - 1])))
+        log.source[a] = -len(log.other)
+        keep[a] = True
+    log.t_ns, log.source = log.t_ns[keep], log.source[keep]
+    return losses, lost_ranks
 
 
 def simulate(scenario: Scenario, out_path: str | Path, duration_ns: int | None = None,
@@ -214,28 +223,30 @@ def simulate(scenario: Scenario, out_path: str | Path, duration_ns: int | None =
     seed = scenario.run.seed if seed is None else seed
     results = run_buses(scenario, duration_ns, seed, quiet=quiet)
     loss_rng = np.random.default_rng(np.random.SeedSequence([seed, 0x1055]))
-    parts = []
+    logs: list[_BusLog] = []
     loss_truth: list[dict[str, Any]] = []
     logger_dropped: dict[tuple[str, int], int] = {}
-    for order, res in enumerate(results):
+    for res in results:
         bus = res.schedule.bus.alias
-        records = _bus_records(res)
+        log = _bus_log(res)
         faults = [f for f in scenario.faults if f.kind == "logger-loss" and bus in f.buses]
         if faults:
-            records, losses, lost_ranks = _logger_loss(records, bus, faults, duration_ns,
-                                                       loss_rng)
+            losses, lost_ranks = _logger_loss(log, faults, duration_ns, loss_rng)
             for rank, count in enumerate(np.bincount(lost_ranks)):
                 logger_dropped[(bus, rank)] = int(count)
             loss_truth.extend(losses)
-        parts.append(records.select("t_ns", "line").with_columns(
-            pl.lit(order, pl.Int32).alias("bus_order")))
-    marks = pl.DataFrame(
-        {"t_ns": [m.t_ns for m in scenario.marks if m.t_ns < duration_ns],
-         "line": [mark_line(m.t_ns, m.bus, m.text) for m in scenario.marks
-                  if m.t_ns < duration_ns]},
-        schema={"t_ns": pl.Int64, "line": pl.Utf8},
-    ).with_columns(pl.lit(-1, pl.Int32).alias("bus_order"))
-    merged = pl.concat([marks, *parts]).sort(["t_ns", "bus_order"], maintain_order=True)
+        logs.append(log)
+    marks = [m for m in scenario.marks if m.t_ns < duration_ns]
+    mark_lines = [mark_line(m.t_ns, m.bus, m.text) for m in marks]
+    # Global order: time, then marks before bus records, then bus declaration order.
+    t_all = np.concatenate([np.array([m.t_ns for m in marks], dtype=np.int64)]
+                           + [log.t_ns for log in logs])
+    bus_all = np.concatenate([np.full(len(marks), -1, dtype=np.int64)]
+                             + [np.full(len(log.t_ns), i, dtype=np.int64)
+                                for i, log in enumerate(logs)])
+    pos_all = np.concatenate([np.arange(len(marks), dtype=np.int64)]
+                             + [np.arange(len(log.t_ns), dtype=np.int64) for log in logs])
+    order = np.lexsort((pos_all, bus_all, t_all))
     header = LogHeader(
         buses=[BusDecl(b.alias, b.nominal_bps, b.data_bps, b.stamp, b.name)
                for b in scenario.catalog.buses.values()],
@@ -243,10 +254,10 @@ def simulate(scenario: Scenario, out_path: str | Path, duration_ns: int | None =
         meta={"run": scenario.run.name, "seed": str(seed), "source": "tracelab-simulate",
               "version": tracelab_version},
     )
-    lines = merged["line"]
     with LogWriter(out_path, header) as writer:
-        for offset in range(0, len(lines), WRITE_CHUNK):
-            writer.lines(lines.slice(offset, WRITE_CHUNK).to_list())
+        for offset in range(0, len(order), WRITE_CHUNK):
+            writer.lines(_chunk_lines(order[offset:offset + WRITE_CHUNK], bus_all, pos_all,
+                                      logs, mark_lines))
         n_records = writer.records
     truth = build_truth(scenario, results, duration_ns, seed, loss_truth, logger_dropped)
     tpath = truth_path(out_path)
@@ -260,6 +271,28 @@ def simulate(scenario: Scenario, out_path: str | Path, duration_ns: int | None =
     )
     summary.elapsed_s = time.perf_counter() - started
     return summary
+
+
+def _chunk_lines(chunk: np.ndarray, bus_all: np.ndarray, pos_all: np.ndarray,
+                 logs: list[_BusLog], mark_lines: list[str]) -> list[str]:
+    """The log lines of one chunk of the global record order (frames formatted per bus)."""
+    out = np.empty(len(chunk), dtype=object)
+    buses = bus_all[chunk]
+    positions = pos_all[chunk]
+    is_mark = buses < 0
+    for i in np.flatnonzero(is_mark):  # marks: a handful per run
+        out[i] = mark_lines[positions[i]]
+    for b, log in enumerate(logs):  # a loop over buses
+        mine = np.flatnonzero(buses == b)
+        if not len(mine):
+            continue
+        source = log.source[positions[mine]]
+        frames = source >= 0
+        if frames.any():
+            out[mine[frames]] = frame_lines(log.res, source[frames])
+        for i, src in zip(mine[~frames], source[~frames], strict=True):  # errors, status, loss
+            out[i] = log.other[-1 - src]
+    return out.tolist()
 
 
 def build_truth(scenario: Scenario, results: list[BusResult], duration_ns: int, seed: int,
