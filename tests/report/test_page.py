@@ -127,3 +127,35 @@ def test_report_recomputes_analyses_that_miss_a_run(dataset: Path, tmp_path: Pat
     workflow.report(copy, tmp_path / "r.html")
     refreshed = ds.read_analysis("timing")
     assert refreshed is not None and refreshed["run"].unique().to_list() == [RUN]
+
+
+def test_report_of_an_ingested_log_without_catalog(tmp_path: Path) -> None:
+    """Real ingest, no catalog: timing and load are computed, the verdict says the replay did
+    not run, and the logged status records feed the counter chart."""
+    from tracelab.format.writer import (
+        BusDecl,
+        LogHeader,
+        LogWriter,
+        frame_line,
+        mark_line,
+        status_line,
+    )
+
+    header = LogHeader(buses=[BusDecl("body", 500_000)], origin="2026-03-01T08:00:00Z",
+                       meta={"run": "plain", "vehicle": "rig-2"})
+    log = tmp_path / "plain.frames"
+    with LogWriter(log, header) as out:
+        for k in range(2000):  # 20 s of a 10 ms message
+            t_ns = k * 10_000_000 + 1_000_000
+            out.line(frame_line(t_ns, "body", 0x100, False, False, False, False, False, 8,
+                                bytes(8)))
+            if k % 100 == 0:
+                out.line(status_line(t_ns + 1, "body", "vcu", k // 20, 0))
+        out.line(mark_line(19_000_000_000, "*", "end </script><b>x</b>"))
+    workflow.ingest([log], tmp_path / "ds", quiet=True)
+    (path,) = workflow.report(tmp_path / "ds", tmp_path / "plain.html")
+    text = path.read_text(encoding="utf-8")
+    assert "fault-confinement replay not run" in text
+    assert "</script><b>x" not in text
+    counters = _figures(text)["fig-counters"]["figure"]["data"]
+    assert any(trace.get("name") == "vcu" for trace in counters)
