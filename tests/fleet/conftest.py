@@ -1,4 +1,4 @@
-"""Shared fleets: small hand-made logs processed once per session by the real pipeline."""
+"""The shared fleet: short simulated runs processed once per session by the real pipeline."""
 
 from __future__ import annotations
 
@@ -7,7 +7,7 @@ from pathlib import Path
 
 import pytest
 
-from tests.fleet.synth import CATALOG, write_run
+from tests.fleet.simfleet import DRIFT, SILENT, TX_NOISE, Night, write_catalogs, write_night
 from tracelab import workflow
 from tracelab.fleet.batch import BatchSummary, run_batch
 from tracelab.fleet.job import PipelineSteps
@@ -25,17 +25,18 @@ class Fleet:
     summary: BatchSummary
 
 
+#: The session fleet: three vehicles, three nights each, known faults on the third night.
+NIGHTS = [Night("alder", 1), Night("alder", 2), Night("alder", 3, TX_NOISE.format(node="tms")),
+          Night("birch", 1), Night("birch", 2, suffix=".frames.zst"), Night("birch", 3, SILENT),
+          Night("cedar", 1), Night("cedar", 2, suffix=".frames"), Night("cedar", 3, DRIFT)]
+
+
 def make_root(root: Path) -> Path:
-    """Two vehicles, three nights each; birch drops every 5th drive_command frame on night 3;
-    one log that is not a log at all."""
-    for v, vehicle in enumerate(("alder", "birch")):
-        (root / vehicle).mkdir(parents=True)
-        (root / vehicle / "catalog.toml").write_text(CATALOG)
-        for night in range(3):
-            drop = 5 if (vehicle == "birch" and night == 2) else 0
-            write_run(root / vehicle / f"2026-11-0{night + 1}" / "run.frames.gz",
-                      f"{vehicle}-n{night}", vehicle, f"2026-11-0{night + 1}T22:00:00Z",
-                      seconds=1.0, drop_every=drop, seed=v * 10 + night)
+    """Simulate NIGHTS under ``root`` (catalog.toml per vehicle) plus one file that is not a
+    log at all."""
+    write_catalogs(root, sorted({n.vehicle for n in NIGHTS}))
+    for night in NIGHTS:
+        write_night(root, night)
     (root / BAD_LOG).parent.mkdir(parents=True)
     (root / BAD_LOG).write_bytes(b"\x00\x01 not a log\n")
     return root

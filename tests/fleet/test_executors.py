@@ -34,6 +34,16 @@ def snapshot(fleet: Path) -> dict[str, pl.DataFrame]:
     return out
 
 
+def _same(a: pl.Series, b: pl.Series) -> bool:
+    """Equal, floats up to summation order (DuckDB aggregates in parallel)."""
+    if a.dtype.is_float() and b.dtype.is_float() and a.len() == b.len():
+        both = pl.DataFrame({"a": a, "b": b})
+        return bool(both.select(
+            ((pl.col("a") - pl.col("b")).abs() <= 1e-9 * pl.col("a").abs().clip(1.0))
+            .fill_null(pl.col("a").is_null() & pl.col("b").is_null()).all()).item())
+    return a.equals(b)
+
+
 def test_killed_worker_loses_and_duplicates_nothing(small_fleet: Fleet, tmp_path: Path) -> None:
     executor = DaskExecutor(workers=2)
     killed: list[str] = []
@@ -54,11 +64,11 @@ def test_killed_worker_loses_and_duplicates_nothing(small_fleet: Fleet, tmp_path
     finally:
         executor.close()
     assert killed, "no worker was busy to kill"
-    assert (first.processed, first.failed) == (6, 1), first.describe()  # only the bad log
-    assert (again.processed, again.skipped) == (0, 7)
+    assert (first.processed, first.failed) == (9, 1), first.describe()  # only the bad log
+    assert (again.processed, again.skipped) == (0, 10)
     reference, got = snapshot(small_fleet.fleet), snapshot(fleet)
     for name, frame in reference.items():
-        differ = [c for c in frame.columns if not frame[c].equals(got[name][c])]
+        differ = [c for c in frame.columns if not _same(frame[c], got[name][c])]
         assert not differ, (name, differ)
     runs = got["runs"].filter(pl.col("status") == "ok")
     assert got["frames"].height == runs["frames"].sum()  # no run counted twice

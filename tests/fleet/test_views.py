@@ -28,14 +28,14 @@ def test_views_span_all_runs_with_vehicle_and_date(small_fleet: Fleet) -> None:
     assert set(runs["status"]) == {"ok", "failed"}
     per_run = con.sql("SELECT vehicle, date, run, count(*) AS n FROM frames GROUP BY ALL").pl()
     joined = per_run.join(runs, on=["vehicle", "date", "run"])
-    assert joined.height == 6 and (joined["n"] == joined["frames"]).all()
+    assert joined.height == 9 and (joined["n"] == joined["frames"]).all()
     assert con.execute("SELECT DISTINCT typeof(date) FROM frames").fetchall() == [("DATE",)]
     views = {r[0] for r in con.sql("SELECT view_name FROM duckdb_views() "
                                    "WHERE NOT internal").fetchall()}
     assert {"frames", "errors", "timing", "gaps", "load", "load_summary", "runs",
             "regressions", "manifest", "message_stats", "verdicts"} <= views
-    flagged = con.sql("SELECT run FROM regressions").fetchall()
-    assert flagged == [("birch-n2",)] * len(flagged) and flagged
+    flagged = set(con.sql("SELECT run, metric FROM regressions").fetchall())
+    assert {("birch-03", "missing"), ("cedar-03", "abs_drift_ppm")} <= flagged
 
 
 def test_sql_command_over_a_fleet(small_fleet: Fleet, capsys: pytest.CaptureFixture[str]) -> None:
@@ -45,7 +45,7 @@ def test_sql_command_over_a_fleet(small_fleet: Fleet, capsys: pytest.CaptureFixt
                  "SELECT vehicle, count(*) AS runs FROM runs WHERE status = 'ok' "
                  "GROUP BY vehicle ORDER BY vehicle", "--format", "csv"]) == 0
     out = capsys.readouterr().out
-    assert "alder,3" in out and "birch,3" in out
+    assert "alder,3" in out and "birch,3" in out and "cedar,3" in out
 
 
 def test_hive_layout_read_as_is(small_fleet: Fleet) -> None:
@@ -58,7 +58,7 @@ def test_hive_layout_read_as_is(small_fleet: Fleet) -> None:
     # plain DuckDB, no tracelab views
     rows = duckdb.sql(f"SELECT DISTINCT vehicle FROM read_parquet('{frames_dir}/*/*/*.parquet', "
                       "hive_partitioning = true) ORDER BY 1").fetchall()
-    assert rows == [("alder",), ("birch",)]
+    assert rows == [("alder",), ("birch",), ("cedar",)]
 
 
 def test_not_a_fleet(tmp_path) -> None:  # type: ignore[no-untyped-def]
@@ -69,10 +69,10 @@ def test_not_a_fleet(tmp_path) -> None:  # type: ignore[no-untyped-def]
 def test_index_links_every_report(small_fleet: Fleet) -> None:
     page = (small_fleet.fleet / "index.html").read_text()
     links = re.findall(r'href="([^"]+\.html)"', page)
-    assert len(links) == 6
+    assert len(links) == 9
     for link in links:
         assert (small_fleet.fleet / html.unescape(link)).is_file()
-    assert page.count('class="chart"') == 3  # alder, birch, and the unknown vehicle
+    assert page.count('class="chart"') == 4  # three vehicles and the unknown one
     assert (small_fleet.fleet / "plotly.min.js").is_file()
 
 
