@@ -6,7 +6,6 @@ here, as a fleet's loggers would write it.
 
 from __future__ import annotations
 
-
 from dataclasses import dataclass
 from pathlib import Path
 
