@@ -25,7 +25,9 @@ import polars as pl
 
 from tracelab.physics.confinement import (
     DEFAULT_CONFIG,
+    FIRST_DETECTOR_EXTRA_REC,
     PASSIVE_LIMIT,
+    RECEIVE_ERROR_REC,
     RECOVERY_SEQUENCE_BITS,
     RECOVERY_SEQUENCES,
     STATE_RANK,
@@ -455,39 +457,81 @@ class NodeReplay:
         return worst, at
 
 
+ROLE_NONE, ROLE_TX, ROLE_TX_ACK, ROLE_RX, ROLE_RX_FIRST, ROLE_RX_UNKNOWN, ROLE_STATUS = range(7)
+
+
+def _roles(ev: BusEvidence, node: int) -> list[int]:
+    """What each event is to this node (vectorised over events)."""
+    e = ev.events
+    kind = e["kind"].to_numpy()
+    tx = e["tx"].to_numpy()
+    by = e["by_node"].to_numpy()
+    ack = (e["type"] == "ack").fill_null(False).to_numpy()
+    status = kind == KIND_STATUS
+    role = np.where(tx == node, np.where(ack, ROLE_TX_ACK, ROLE_TX),
+                    np.where(ack, ROLE_NONE, np.where(by == node, ROLE_RX_FIRST,
+                                                      np.where(by < 0, ROLE_RX_UNKNOWN,
+                                                               ROLE_RX))))
+    role = np.where(status, np.where(e["node"].to_numpy() == node, ROLE_STATUS, ROLE_NONE),
+                    role)
+    return [int(r) for r in role.tolist()]
+
+
 def replay_node(ev: BusEvidence, node: int, assume_first: bool = False,
-                config: ConfinementConfig = DEFAULT_CONFIG) -> NodeReplay:
-    """Apply the rules table to one node, event by event (a loop over error/status events)."""
+                config: ConfinementConfig = DEFAULT_CONFIG, keep_rows: bool = True) -> NodeReplay:
+    """Apply the rules table to one node, event by event (a loop over error/status events).
+
+    keep_rows=False keeps transitions, bus-off episodes and status checks but not every
+    counter change (for candidate replays that may not win).
+
+    The hot path (successes, receive errors) is written out with the rule constants of
+    tracelab.physics.confinement; rare paths (transmit errors with their exceptions, bus-off,
+    recovery, status records) go through NodeCounters.
+    """
     out = NodeReplay(ev.nodes[node], assume_first)
     c = NodeCounters(config=config)
     state: State = "error-active"
     recovery_at: int | None = None
     uncertain = False
     own_before = ev.ev_own_before[node]
+    frames_before = ev.ev_frames_before
+    loss_since = ev.ev_loss_since_prev
+    roles = _roles(ev, node)
     fb_prev = ob_prev = 0
     t_prev = ev.first_t_ns
-    events = ev.events
-    kinds = events["kind"].to_list()
-    types = events["type"].to_list()
-    txs = events["tx"].to_list()
-    bys = events["by_node"].to_list()
-    status_node = events["node"].to_list()
-    status_tec = events["tec"].to_list()
-    status_rec = events["rec"].to_list()
+    status_tec = ev.events["tec"].to_list()
+    status_rec = ev.events["rec"].to_list()
     rows = out.rows
+    state_before = out.state_before
+    warn = config.warning_level
+    inclusive = config.warning_inclusive
+    rec_reset = config.rec_after_passive_reception
+    max_tec = max_rec = 0
+
+    def state_now() -> State:
+        if c.bus_off:
+            return "bus-off"
+        tec, rec = c.tec, c.rec
+        if tec > PASSIVE_LIMIT or rec > PASSIVE_LIMIT:
+            return "error-passive"
+        hot = tec if tec > rec else rec
+        if hot >= warn if inclusive else hot > warn:
+            return "warning"
+        return "error-active"
 
     def record(t_ns: int, cause: str) -> None:
         nonlocal state
-        new = c.state
-        rows.append((t_ns, c.tec, c.rec, new, cause, uncertain))
+        new = state_now()
+        if keep_rows or new != state:
+            rows.append((t_ns, c.tec, c.rec, new, cause, uncertain))
         if new != state:
             out.transitions.append({"t_ns": t_ns, "from": state, "to": new})
             state = new
 
     # Loop over error and status events (rare compared with frames), never over frames.
     for k, t_e in enumerate(ev.ev_t):
-        fb, ob = ev.ev_frames_before[k], own_before[k]
-        if ev.ev_loss_since_prev[k]:
+        fb, ob = frames_before[k], own_before[k]
+        if loss_since[k]:
             uncertain = True
         # 1. successes since the previous event, with the downward state changes among them
         if c.bus_off:
@@ -496,57 +540,63 @@ def replay_node(ev: BusEvidence, node: int, assume_first: bool = False,
                 out.bus_off[-1]["to_ns"] = recovery_at
                 record(recovery_at, "recovery")
                 recovery_at = None
-        elif fb > fb_prev:
-            own_n, recv_n = ob - ob_prev, (fb - fb_prev) - (ob - ob_prev)
+        elif fb > fb_prev and (c.tec or c.rec):
+            own_n = ob - ob_prev
+            recv_n = fb - fb_prev - own_n
             if state != "error-active":
                 _downward(ev, node, c, config, fb_prev, ob_prev, own_n, recv_n, record)
             tec0, rec0 = c.tec, c.rec
-            c.transmit_success(own_n)
-            c.receive_success(recv_n)
-            if (c.tec, c.rec) != (tec0, rec0) and (c.tec, c.rec) != (rows[-1][1], rows[-1][2]):
+            c.tec = tec0 - own_n if tec0 > own_n else 0  # rule g, own_n times
+            if recv_n:  # rule h, recv_n times
+                if rec0 > PASSIVE_LIMIT:
+                    c.rec = max(0, rec_reset - (recv_n - 1))
+                else:
+                    c.rec = rec0 - recv_n if rec0 > recv_n else 0
+            if (c.tec != tec0 or c.rec != rec0) and (not rows
+                                                      or (c.tec, c.rec) != rows[-1][1:3]):
                 record(t_e, "successes")
         if uncertain and c.tec == 0 and c.rec == 0 and not _in_loss(ev, t_e):
             uncertain = False
         fb_prev, ob_prev, t_prev = fb, ob, t_e
-        out.state_before.append(c.state)
+        state_before.append(state)
         # 2. the event itself
-        if kinds[k] == KIND_STATUS:
-            if status_node[k] != node:
-                continue
+        role = roles[k]
+        if role == ROLE_NONE:
+            continue
+        if role == ROLE_STATUS:
             tec_s, rec_s = int(status_tec[k]), int(status_rec[k])
-            out.status_checks.append({"t_ns": t_e, "tec": c.tec, "rec": c.rec, "state": c.state,
+            out.status_checks.append({"t_ns": t_e, "tec": c.tec, "rec": c.rec, "state": state,
                                       "status_tec": tec_s, "status_rec": rec_s,
                                       "status_state": state_of(tec_s, rec_s, config=config),
                                       "uncertain": uncertain})
             if (c.tec, c.rec) != (tec_s, rec_s):
-                was_off = c.bus_off
                 c.tec, c.rec = tec_s, rec_s
-                c.bus_off = was_off or tec_s > 255
+                c.bus_off = c.bus_off or tec_s > 255
+                max_tec, max_rec = max(max_tec, c.tec), max(max_rec, c.rec)
                 uncertain = False
-                out.max_tec, out.max_rec = max(out.max_tec, c.tec), max(out.max_rec, c.rec)
                 record(t_e, "status")
-            else:
-                uncertain = False
+            uncertain = False
             continue
         if c.bus_off:
             continue
-        tx, by = txs[k], bys[k]
-        ack = types[k] == "ack"
-        if tx == node:
-            c.transmit_error(ack_error=ack)
-        elif ack:
-            continue  # an ACK error concerns the transmitter only
+        if role in (ROLE_TX, ROLE_TX_ACK):
+            c.transmit_error(ack_error=role == ROLE_TX_ACK)
+            if c.tec > max_tec:
+                max_tec = c.tec
         else:
-            first = by == node
-            if by < 0 and assume_first and state in ("error-active", "warning"):
-                first = True
+            bonus = role == ROLE_RX_FIRST
+            if role == ROLE_RX_UNKNOWN and assume_first and state in ("error-active",
+                                                                      "warning"):
+                bonus = True
                 out.first_bonus_events += 1
-            c.receive_error(first_detector=first)
-        out.max_tec, out.max_rec = max(out.max_tec, c.tec), max(out.max_rec, c.rec)
+            c.rec += RECEIVE_ERROR_REC + (FIRST_DETECTOR_EXTRA_REC if bonus else 0)  # a, b
+            if c.rec > max_rec:
+                max_rec = c.rec
         record(t_e, "error")
         if c.bus_off and recovery_at is None:
             recovery_at = recovery_end_ns(ev, t_e, config)
             out.bus_off.append({"from_ns": t_e, "to_ns": recovery_at})
+    out.max_tec, out.max_rec = max_tec, max_rec
     # tail: successes after the last event up to the end of the log
     if c.bus_off and recovery_at is not None and recovery_at <= max(ev.last_t_ns, t_prev):
         c.recover()

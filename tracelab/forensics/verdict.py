@@ -143,7 +143,7 @@ def bus_verdict(ev: BusEvidence, origin: str | None, gaps: pl.DataFrame | None,
     attributed_everywhere = bool((ev.events.filter(pl.col("kind") == KIND_ERROR)["by_node"]
                                   >= 0).all()) if ev.events.height else True
     first = base if attributed_everywhere else [
-        replay_node(ev, n, True, config) for n in range(len(ev.nodes))]
+        replay_node(ev, n, True, config, keep_rows=False) for n in range(len(ev.nodes))]
     silences = node_silences(ev, gaps, catalog_keys)
     hyps = candidates(ev, base, first, silences)
     score(ev, hyps, silences)
@@ -154,6 +154,8 @@ def bus_verdict(ev: BusEvidence, origin: str | None, gaps: pl.DataFrame | None,
     n_errors = errors.height
     clean = n_errors == 0 and not silences
     winner = hyps[0]
+    if winner.kind == "receive-fault" and winner.node is not None and not attributed_everywhere:
+        winner.replays[winner.node] = replay_node(ev, winner.node, True, config)  # with rows
     thin = (n_errors < MIN_ERRORS and not silences) or winner.score < MIN_CONFIDENCE
     if clean:
         first_deg = None
@@ -358,19 +360,19 @@ def _evidence(ev: BusEvidence, h: Hypothesis, silences: list[Silence],
 
 
 def _counters_frame(ev: BusEvidence, h: Hypothesis) -> pl.DataFrame:
-    cols: dict[str, list[Any]] = {k: [] for k in COUNTERS_SCHEMA}
+    parts = []
+    names = ["t_ns", "tec", "rec", "state", "cause", "uncertain"]
     for rep in h.replays:  # loop over nodes; rows are counter changes (rare)
-        for t_ns, tec, rec, state, cause, uncertain in rep.rows:
-            cols["node"].append(rep.node)
-            cols["t_ns"].append(t_ns)
-            cols["tec"].append(tec)
-            cols["rec"].append(rec)
-            cols["state"].append(state)
-            cols["cause"].append(cause)
-            cols["uncertain"].append(uncertain)
-    n = len(cols["node"])
-    cols["run"], cols["bus"], cols["hypothesis"] = [ev.run] * n, [ev.bus] * n, [h.name] * n
-    return pl.DataFrame(cols, schema=COUNTERS_SCHEMA).sort(["node", "t_ns"], maintain_order=True)
+        if not rep.rows:
+            continue
+        frame = pl.DataFrame(rep.rows, schema=[(n, COUNTERS_SCHEMA[n]) for n in names],
+                             orient="row")
+        parts.append(frame.with_columns(pl.lit(rep.node).alias("node")))
+    if not parts:
+        return pl.DataFrame(schema=COUNTERS_SCHEMA)
+    out = pl.concat(parts).with_columns(pl.lit(ev.run).alias("run"), pl.lit(ev.bus).alias("bus"),
+                                        pl.lit(h.name).alias("hypothesis"))
+    return out.select(list(COUNTERS_SCHEMA)).sort(["node", "t_ns"], maintain_order=True)
 
 
 def _states_frame(ev: BusEvidence, h: Hypothesis) -> pl.DataFrame:
