@@ -89,6 +89,17 @@ def test_report_renders_in_chromium(browser: Any, report_path: Path) -> None:
     ranges = page.evaluate("""() => ['fig-load', 'fig-gaps', 'fig-counters'].map(
         id => document.getElementById(id).layout.xaxis.range)""")
     assert ranges == [[10, 20]] * 3
+    # the window buttons: "1 s" shows the 1 s traces only
+    def visible() -> list[int]:
+        return page.evaluate("""() => document.getElementById('fig-load')._fullData
+            .filter(t => t.visible === true).map(t => t.x.length)""")
+
+    before = visible()
+    page.locator("#fig-load .updatemenu-button").nth(1).click()
+    page.wait_for_function("""() => document.getElementById('fig-load')._fullData
+        .filter(t => t.visible === true && t.x.length === 60).length > 0""")
+    after = visible()
+    assert len(after) == len(before) and max(after) == 60 < max(before)  # 60 s of 1 s windows
     # the sortable table: a click on "missing" puts the most missing frames first
     heads = page.locator("#timing-table th")
     column = heads.all_text_contents().index("missing")
