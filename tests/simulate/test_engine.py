@@ -209,3 +209,23 @@ def test_status_records_and_attribution(tmp_path: Path) -> None:
                                               ("2000000000", "a"), ("2000000000", "b")]
     errors = [line.split("\t") for _, _, line in res.records if "\terror\t" in line]
     assert errors and all(e[7] == "b" for e in errors)
+
+
+def test_bus_off_recovery_on_a_saturated_bus_counts_frame_tails(tmp_path: Path) -> None:
+    body = message("100", "a", "5ms") + "".join(
+        message(f"{0x200 + i:03X}", "b", "1ms") for i in range(10)) + (
+        '[[fault]]\nnode = "a"\nkind = "tx-noise"\nevery = 1\nend = "30ms"\n')
+    res = run(scenario(tmp_path, body, duration="200ms", nodes="a b c"))
+    off = node(res, "a").bus_off[0]
+    b_frames = sent_by_node(res, "b")
+    between = int(((b_frames > off["from_ns"]) & (b_frames < off["to_ns"])).sum())
+    # rule l: each frame's 11 recessive tail bits are one occurrence; back-to-back frames
+    # leave no idle time, so recovery needs 128 of them (the first is the error frame's own)
+    assert 126 <= between <= 128
+    assert off["to_ns"] - off["from_ns"] > 100 * 1408 * BIT_NS / 11
+
+
+def sent_by_node(res: BusResult, sender: str) -> np.ndarray:
+    s = res.schedule
+    mine = np.array([s.messages[r].sender == sender for r in s.rank[res.release]], dtype=bool)
+    return res.start_ns[mine]
