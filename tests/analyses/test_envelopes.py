@@ -115,4 +115,6 @@ def test_report_data_of_a_dataset(tmp_path: Path) -> None:
     assert data.timing["missing"][0] == data.timing["missing"].max()  # worst first
     assert set(data.load["bus"].unique()) == {"body", "chassis"}
     assert len(data.marks) == data.marks_total == 3
+    assert data.loss_summary.rows() == [("chassis", 1, 30_500_000_000, 31_500_000_000,
+                                         1_000_000_000, 12)]
     assert [r["bus"] for r in data.faults["results"]] == ["body", "chassis"]  # type: ignore[index]

@@ -50,6 +50,7 @@ class ReportData:
     gaps: pl.DataFrame = field(default_factory=pl.DataFrame)
     gap_bucket_ns: int = 1
     losses: pl.DataFrame = field(default_factory=pl.DataFrame)
+    loss_summary: pl.DataFrame = field(default_factory=pl.DataFrame)
     errors: pl.DataFrame = field(default_factory=pl.DataFrame)
     counters: pl.DataFrame = field(default_factory=pl.DataFrame)
     states: pl.DataFrame = field(default_factory=pl.DataFrame)
@@ -326,6 +327,10 @@ def report_data(con: duckdb.DuckDBPyConnection, run: str, faults: dict[str, Any]
         data.gaps = gap_cells(con, run, data.gap_bucket_ns)
     data.losses = _frame(con, "SELECT bus, t_ns AS from_ns, until_ns AS to_ns, count FROM losses "
                               "WHERE run = $run ORDER BY t_ns", {"run": run})
+    data.loss_summary = _frame(
+        con, "SELECT bus, count(*) AS records, min(t_ns) AS from_ns, max(until_ns) AS to_ns, "
+             "sum(until_ns - t_ns) AS lost_ns, sum(count) AS frames FROM losses "
+             "WHERE run = $run GROUP BY bus ORDER BY bus", {"run": run})
     data.errors = _frame(con, envelope_sql("errors"), {"run": run, "bucket_ns": bucket_ns})
     data.counters = counter_envelopes(con, run, bucket_ns, views)
     if "node_states" in views:

@@ -303,6 +303,17 @@ def quality_section(data: ReportData) -> str:
         parts.append("<table><thead><tr><th>where</th><th>reason</th><th>line</th></tr>"
                      f"</thead>{rows}</table>{more}")
     parts.append(f"<h3>logger losses: {len(data.losses):,}</h3>")
+    if not data.loss_summary.is_empty():
+        rows = "".join(
+            f"<tr><td>{esc(r['bus'])}</td><td class='num'>{_int(r['records'])}</td>"
+            f"<td class='num'>{_secs(r['from_ns'])}</td><td class='num'>{_secs(r['to_ns'])}</td>"
+            f"<td class='num'>{_duration(float(r['lost_ns'] or 0))}</td>"
+            f"<td class='num'>{_int(r['frames'])}</td></tr>"
+            for r in data.loss_summary.iter_rows(named=True))
+        parts.append("<table><thead><tr><th>bus</th><th class='num'>records</th>"
+                     "<th class='num'>first</th><th class='num'>last until</th>"
+                     "<th class='num'>time lost</th><th class='num'>frames lost</th></tr>"
+                     f"</thead>{rows}</table><h3>first loss records</h3>")
     if not data.losses.is_empty():
         rows = "".join(
             f"<tr><td>{esc(r['bus'])}</td><td class='num'>{_secs(r['from_ns'])}</td>"
