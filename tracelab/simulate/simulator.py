@@ -67,7 +67,7 @@ class SimulationSummary:
         rate = self.frames / self.elapsed_s if self.elapsed_s else 0.0
         lines = [f"simulated run '{self.run}' (seed {self.seed}): {self.duration_ns / 1e9:g} s "
                  f"of bus time, {self.frames} frames, {self.records} records in "
-                 f"{self.elapsed_s:.1f} s ({rate / 1000:.0f} k frames/s)"]
+                 f"{self.elapsed_s:.1f} s ({rate:,.0f} frames/s)"]
         for b in self.buses:
             lines.append(f"  bus {b.bus}: {b.frames} frames, {b.error_frames} error frames, "
                          f"load {100 * b.load_ratio:.1f} %")
