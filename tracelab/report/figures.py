@@ -25,6 +25,8 @@ COUNTER_LEVELS = ((96, "warning 96"), (128, "error-passive 128"), (256, "bus-off
 STATE_ORDER = ("error-active", "warning", "error-passive", "bus-off")
 MARK_LABEL_CHARS = 28
 COUNTER_PANEL_PX = 200
+LABEL_CHAR_PX = 7.0  # average glyph width of the 12 px sans-serif labels
+MIN_LEFT_PX, MAX_LEFT_PX = 72, 300
 STATE_ROW_PX = 18
 MIN_DRIFT_RANGE_PPM = 5.0  # crystal tolerances are tens of ppm; less is noise at this scale
 MIN_DEVIATION_RANGE_PCT = 0.5
@@ -395,3 +397,18 @@ def counters_figure(counters: pl.DataFrame, states: pl.DataFrame, t0_ns: int, t1
                                 title={"text": "state"})
     add_marks(fig, marks)
     return fig
+
+
+def align_time_axes(figs: Sequence[go.Figure]) -> None:
+    """Give every time figure the same left margin (room for the longest category label), so
+    linked time axes also line up on the page."""
+    longest = 0
+    for fig in figs:
+        for trace in fig.data:
+            labels = trace.y if trace.type in ("heatmap", "bar") and trace.y is not None else ()
+            longest = max([longest, *(len(html.unescape(str(v))) for v in labels if v)])
+    left = int(min(MAX_LEFT_PX, max(MIN_LEFT_PX, LABEL_CHAR_PX * longest + 30)))
+    for fig in figs:
+        margin = fig.layout.margin
+        fig.update_layout(margin={"l": left, "r": margin.r, "t": margin.t, "b": margin.b})
+        fig.update_yaxes(automargin=False)

@@ -13,6 +13,7 @@ from typing import Any
 import plotly.graph_objects as go
 import polars as pl
 
+from tracelab import __version__
 from tracelab.analyses.envelopes import ReportData
 from tracelab.report import figures, style
 from tracelab.report.figures import NS_PER_S, esc, message_label
@@ -352,7 +353,7 @@ def build_figures(data: ReportData, load_limit: float) -> dict[str, tuple[go.Fig
         names = {(b, i, e): n for b, i, e, n in
                  data.timing.select("bus", "id", "ext", "name").iter_rows() if n}
     t0, t1 = data.t0_ns, data.t1_ns
-    return {
+    built = {
         "fig-load": (figures.load_figure(data.load, data.load_stats, buses, t0, t1, load_limit,
                                          data.marks), True),
         "fig-deviation": (figures.deviation_figure(data.timing, buses), False),
@@ -364,6 +365,8 @@ def build_figures(data: ReportData, load_limit: float) -> dict[str, tuple[go.Fig
         "fig-counters": (figures.counters_figure(data.counters, data.states, t0, t1, data.marks),
                          True),
     }
+    figures.align_time_axes([fig for fig, time in built.values() if time])
+    return built
 
 
 def _json_for_script(obj: Any) -> str:
@@ -467,7 +470,8 @@ def render(data: ReportData, load_limit: float = 0.5, plotly_src: str | None = N
         "<h3>TEC and REC per node</h3>" + div("fig-counters") +
         f'<p class="note">{counters_note}</p></section>',
         quality_section(data),
-        f'<footer id="caution"><p><b>Caution.</b> {CAUTION}</p></footer>',
+        f'<footer id="caution"><p><b>Caution.</b> {CAUTION}</p>'
+        f"<p>Written by tracelab {esc(__version__)}.</p></footer>",
     ]
     if plotly_src is None:
         plotly_tag = f"<script>{plotly_js()}</script>"
