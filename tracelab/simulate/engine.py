@@ -27,7 +27,6 @@ from tracelab.physics.bitlength import (
     header_bits,
 )
 from tracelab.physics.confinement import (
-    PASSIVE_LIMIT,
     RECOVERY_SEQUENCE_BITS,
     RECOVERY_SEQUENCES,
     ConfinementConfig,
@@ -597,4 +596,4 @@ class BusEngine:
                          self.busy_error_ns)
 
 
-__all__ = ["BusEngine", "BusResult", "NodeTruth", "PASSIVE_LIMIT"]
+__all__ = ["BusEngine", "BusResult", "NodeTruth"]
