@@ -139,3 +139,16 @@ def test_describe_reads_like_an_incident_note() -> None:
     text = replay_faults(s.connect(), synth.catalog()).describe()
     assert "alpha degraded first" in text and "transmit-side fault in alpha" in text
     assert "2026-03-04T05:06:07" in text
+
+
+def test_catalog_that_does_not_know_the_bus_says_so() -> None:
+    from pathlib import Path
+
+    from tracelab.network.catalog import BusSpec, Catalog
+
+    s = synth.generate(2000, fault="tx", culprit="alpha", p=0.4, attribute=False, seed=1,
+                       fault_from_slot=200)
+    other = Catalog(Path("other.toml"), {"other": BusSpec("other", 250_000)}, {}, ())
+    v = replay_faults(s.connect(), other).as_json()["results"][0]
+    assert v["cause"] == {"kind": "unknown", "node": None}
+    assert "check --catalog" in v["verdict"]

@@ -156,7 +156,10 @@ def bus_verdict(ev: BusEvidence, origin: str | None, gaps: pl.DataFrame | None,
     winner = hyps[0]
     if winner.kind == "receive-fault" and winner.node is not None and not attributed_everywhere:
         winner.replays[winner.node] = replay_node(ev, winner.node, True, config)  # with rows
-    thin = (n_errors < MIN_ERRORS and not silences) or winner.score < MIN_CONFIDENCE
+    known_tx = int((errors["tx"] >= 0).sum()) if n_errors else 0
+    blind = not ev.nodes or (n_errors > 0 and known_tx < n_errors / 2)
+    thin = ((n_errors < MIN_ERRORS and not silences) or winner.score < MIN_CONFIDENCE
+            or blind)
     if clean:
         first_deg = None
         cause = {"kind": "none", "node": None}
@@ -180,7 +183,9 @@ def bus_verdict(ev: BusEvidence, origin: str | None, gaps: pl.DataFrame | None,
         "nodes": [_node_json(rep) for rep in winner.replays],
         "status_agreement": _status_agreement(winner.replays),
         "assumptions": _assumptions(config, attributed_everywhere, winner),
-        "verdict": _sentence(ev, cause, first_deg, hyps, thin, clean),
+        "verdict": _sentence(ev, cause, first_deg, hyps, thin, clean)
+        + (f" The catalog names the sender of only {known_tx} of {n_errors} errored frames"
+           f" ({len(ev.nodes)} nodes on bus {ev.bus}); check --catalog." if blind else ""),
         "runner_up": ({"name": hyps[1].name, "score": round(hyps[1].score, 4),
                        "why": hyps[1].why} if len(hyps) > 1 else None),
         "evidence": _evidence(ev, winner, silences, first_deg),
