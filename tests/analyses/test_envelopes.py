@@ -61,6 +61,8 @@ def test_load_windows_fit_the_run() -> None:
     frame, _ = _load_frame(300)  # a 30 s run
     con = _con(load=frame)
     assert envelopes.load_windows(con, "r", 300 * WINDOW_NS) == [100_000_000, 1_000_000_000]
+    odd = _con(load=frame.with_columns(window_ns=pl.lit(300_000_000)))
+    assert envelopes.load_windows(odd, "r", 3600 * 300_000_000) == [300_000_000, 60_000_000_000]
 
 
 def test_a_day_of_windows_stays_a_few_thousand_points() -> None:

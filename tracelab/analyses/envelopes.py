@@ -188,9 +188,9 @@ def load_windows(con: duckdb.DuckDBPyConnection, run: str, span_ns: int) -> list
     if base is None:
         return []
     base = int(base)
-    sizes = [w for w in LOAD_WINDOWS_NS if w >= base and w % base == 0
-             and span_ns >= MIN_WINDOWS_PER_RUN * w]
-    return sizes or [base]
+    coarser = {w for w in LOAD_WINDOWS_NS if w > base and w % base == 0
+               and span_ns >= MIN_WINDOWS_PER_RUN * w}
+    return sorted(coarser | {base})  # the stored window is always offered
 
 
 def load_envelopes(con: duckdb.DuckDBPyConnection, run: str, span_ns: int,
