@@ -18,8 +18,9 @@ BIT_NS = 2_000  # 500 kbit/s
 
 
 def write_dataset(path: Path, frames: int, ids: int = 200, buses: int = 2,
-                  seed: int = 1) -> Path:
-    """``frames`` periodic frames of ``ids`` identifiers over ``buses`` buses, one run."""
+                  seed: int = 1, drop: float = 0.0) -> Path:
+    """``frames`` periodic frames of ``ids`` identifiers over ``buses`` buses, one run;
+    ``drop`` removes that fraction of frames at random (gaps in every stream)."""
     t0 = time.perf_counter()
     rng = np.random.default_rng(seed)
     period = rng.choice(PERIODS_NS, ids)
@@ -43,7 +44,11 @@ def write_dataset(path: Path, frames: int, ids: int = 200, buses: int = 2,
         "bits": bits, "duration_ns": dur,
         "file": pl.Series(["bench.frames"]).extend_constant("bench.frames", total - 1),
         "line": np.arange(total, dtype=np.int64) + 1,
-    }).sort("t_ns")
+    })
+    if drop:
+        frame = frame.filter(pl.Series(rng.random(total) >= drop))
+    frame = frame.sort("t_ns")
+    total = frame.height
     sha = hashlib.sha256(f"bench-{frames}-{seed}".encode()).hexdigest()
     part = path / "parts" / sha16(sha)
     for table in schema.TABLES:

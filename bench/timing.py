@@ -29,10 +29,12 @@ GROUP BY bus, id
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__)
     parser.add_argument("--frames", type=int, default=2_000_000)
+    parser.add_argument("--drop", type=float, default=0.0,
+                        help="fraction of frames removed at random (gaps in every stream)")
     parser.add_argument("--repeat", type=int, default=3, help="best of N runs of each")
     args = parser.parse_args()
     with tempfile.TemporaryDirectory() as tmp:
-        ds = write_dataset(Path(tmp) / "ds", args.frames)
+        ds = write_dataset(Path(tmp) / "ds", args.frames, drop=args.drop)
         con = open_dataset(ds).connect()
         rows = con.sql(BARE).fetchall()  # warm the file cache for both contenders
         bare_s = job_s = float("inf")

@@ -170,3 +170,15 @@ def test_empty_dataset() -> None:
     result = timing(con)
     assert result.timing.height == 0 and result.gaps.height == 0
     assert isinstance(result.timing, pl.DataFrame)
+
+
+def test_cycle_index_blocks_do_not_change_results(monkeypatch: pytest.MonkeyPatch) -> None:
+    # tiny blocks put gaps and bursts in many blocks and at block edges
+    rng = np.random.default_rng(11)
+    t = periodic_series(rng, 10_000_000, 2000, 30_000, drift_ppm=20, drop=40, extra=15)
+    con = connect_tables(frames_table(t, 0x42))
+    import tracelab.analyses.timing as module
+
+    for block in (1, 2, 7, 64, 4096):
+        monkeypatch.setattr(module, "CYCLE_BLOCK", block)
+        _check(timing(con).timing.row(0, named=True), reference(t, None))

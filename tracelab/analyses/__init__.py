@@ -39,7 +39,9 @@ def run_sql(con: duckdb.DuckDBPyConnection, name: str,
     params = params or {}
     relation = None
     for text in statements(name):
-        wanted = {p: params[p] for p in set(_PARAM_RE.findall(text)) if p in params}
+        code = "\n".join(line for line in text.splitlines()
+                         if not line.lstrip().startswith("--"))
+        wanted = {p: params[p] for p in set(_PARAM_RE.findall(code)) if p in params}
         try:
             relation = con.sql(text, params=wanted or None)
         except duckdb.Error as error:

@@ -33,6 +33,8 @@ TIMING_COLUMNS = (
     "phase_std_ns", "phase_max_abs_ns", "drift_ppm",
     "missing", "gaps", "bursts", "missing_in_loss",
 )
+#: Frames per block of the cycle-index correction (timing_cycles.sql).
+CYCLE_BLOCK = 64
 GAP_COLUMNS = ("run", "bus", "id", "ext", "from_ns", "to_ns", "missing", "in_loss")
 _CATALOG_SCHEMA = {"bus": pl.String, "id": pl.UInt32, "ext": pl.Boolean, "name": pl.String,
                    "sender": pl.String, "period_ns": pl.Int64}
@@ -101,7 +103,7 @@ def timing(con: duckdb.DuckDBPyConnection, catalog: Catalog | None = None,
     con.register("_tl_catalog_in", _catalog_frame(catalog).to_arrow())
     con.execute("CREATE OR REPLACE TEMP TABLE tl_catalog AS SELECT * FROM _tl_catalog_in")
     con.unregister("_tl_catalog_in")
-    params = {"run": run, "gap_factor": float(gap_factor)}
+    params = {"run": run, "gap_factor": float(gap_factor), "block": CYCLE_BLOCK}
     run_sql(con, "timing_arrivals", params)
     if query_scalar(con, "SELECT count(DISTINCT g) <> count(*) FROM tl_streams"):
         raise StoreError("timing: two streams share a 64-bit key; please report this dataset")
