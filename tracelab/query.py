@@ -56,9 +56,10 @@ def open_session(path: str | Path) -> duckdb.DuckDBPyConnection:
 
         con = open_dataset(path).connect()
     install_macros(con)
-    root = str(path.resolve()).rstrip("/") + "/"
+    # the views name files by the path as given; a symlinked path is allowed both ways
+    roots = sorted({str(p).rstrip("/") + "/" for p in (path.absolute(), path.resolve())})
     try:
-        con.execute("SET allowed_directories = $dirs", {"dirs": [root]})
+        con.execute("SET allowed_directories = $dirs", {"dirs": roots})
         con.execute("SET enable_external_access = false")
         con.execute("SET lock_configuration = true")
     except duckdb.Error as error:  # never run unlocked
