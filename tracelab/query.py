@@ -225,8 +225,12 @@ def interactive(con: duckdb.DuckDBPyConnection, lines: Iterable[str] | None = No
     input (tests, pipes); otherwise input() with history. Errors print and the prompt goes on."""
     stdout = stdout or sys.stdout
     save_history: Callable[[], None] = lambda: None  # noqa: E731
-    if lines is None:
+    if lines is None and not sys.stdin.isatty():  # piped statements: no prompts
+        source: Iterable[str] = sys.stdin
+    elif lines is None:
         save_history = _setup_history()
+        stdout.write("tracelab sql (read-only). .tables lists the views, .help the commands, "
+                     "end statements with ';'.\n")
         source = _prompted_lines()
     else:
         source = iter(lines)
