@@ -171,14 +171,19 @@ def _with_physics(frames: pl.DataFrame, header: LogHeader) -> pl.DataFrame:
         mask = (bus == decl.alias).to_numpy()
         if not mask.any():
             continue
-        duration[mask] = frame_durations_ns(bits[mask], data_phase[mask], decl.nominal_bps,
-                                            decl.data_bps)
+        whole = bool(mask.all())  # one bus in the chunk: no gathers
+        dur = frame_durations_ns(bits if whole else bits[mask],
+                                 data_phase if whole else data_phase[mask], decl.nominal_bps,
+                                 decl.data_bps)
+        t_bus = t_ns if whole else t_ns[mask]
         if decl.stamp == "end":  # t_ns is the end of EOF: the 3-bit intermission follows
             ifs_ns = frame_durations_ns(np.array([3]), np.array([0]), decl.nominal_bps,
                                         decl.data_bps)[0]
-            start[mask] = t_ns[mask] - (duration[mask] - ifs_ns)
+            t_bus = t_bus - (dur - ifs_ns)
+        if whole:
+            duration, start = dur, t_bus
         else:
-            start[mask] = t_ns[mask]
+            duration[mask], start[mask] = dur, t_bus
     return frames.with_columns(
         bits=lengths["bits"].cast(pl.UInt16), duration_ns=pl.Series(duration),
         start_ns=pl.Series(start), end_ns=pl.Series(start + duration))
