@@ -104,3 +104,22 @@ def test_status_records_agree_with_attributed_replay() -> None:
     assert agreement["records"] == len(s.status)
     assert agreement["tec_equal"] == agreement["records"]
     assert agreement["rec_equal"] == agreement["records"]
+
+
+@pytest.mark.parametrize("assume_first", [False, True])
+def test_quiet_nodes_vectorised_walk_equals_the_event_loop(assume_first: bool,
+                                                           monkeypatch: pytest.MonkeyPatch) -> None:
+    from tracelab.forensics import replay
+
+    s = synth.generate(4000, fault="bus", p=0.01, attribute=False, seed=9)
+    ev = load_bus_evidence(s.connect(), synth.catalog(), "r1", "can0")
+    fast = [replay_node(ev, n, assume_first) for n in range(len(ev.nodes))]
+    assert all(rep.rows_frame is not None for rep in fast)  # the walk did run
+    monkeypatch.setattr(replay, "_quiet_replay", lambda *args: None)
+    for n, rep in enumerate(fast):
+        slow = replay_node(ev, n, assume_first)
+        assert rep.rows_frame is not None
+        assert [tuple(r) for r in rep.rows_frame.iter_rows()] == slow.rows
+        assert (rep.max_tec, rep.max_rec) == (slow.max_tec, slow.max_rec)
+        assert rep.first_bonus_events == slow.first_bonus_events
+        assert slow.transitions == [] and rep.state_before == slow.state_before

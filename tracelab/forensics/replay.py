@@ -31,6 +31,7 @@ from tracelab.physics.confinement import (
     RECOVERY_SEQUENCE_BITS,
     RECOVERY_SEQUENCES,
     STATE_RANK,
+    TRANSMIT_ERROR_TEC,
     ConfinementConfig,
     NodeCounters,
     State,
@@ -419,6 +420,7 @@ class NodeReplay:
     node: str
     assume_first: bool
     rows: list[tuple[int, int, int, str, str, bool]] = field(default_factory=list)
+    rows_frame: pl.DataFrame | None = None  # the same rows, built vectorised (quiet nodes)
     transitions: list[dict[str, Any]] = field(default_factory=list)
     bus_off: list[dict[str, int]] = field(default_factory=list)
     state_before: list[str] = field(default_factory=list)  # per event, before it applies
@@ -460,7 +462,7 @@ class NodeReplay:
 ROLE_NONE, ROLE_TX, ROLE_TX_ACK, ROLE_RX, ROLE_RX_FIRST, ROLE_RX_UNKNOWN, ROLE_STATUS = range(7)
 
 
-def _roles(ev: BusEvidence, node: int) -> list[int]:
+def _role_array(ev: BusEvidence, node: int) -> np.ndarray:
     """What each event is to this node (vectorised over events)."""
     e = ev.events
     kind = e["kind"].to_numpy()
@@ -474,7 +476,73 @@ def _roles(ev: BusEvidence, node: int) -> list[int]:
                                                                ROLE_RX))))
     role = np.where(status, np.where(e["node"].to_numpy() == node, ROLE_STATUS, ROLE_NONE),
                     role)
-    return [int(r) for r in role.tolist()]
+    return role.astype(np.int64)
+
+
+def _roles(ev: BusEvidence, node: int) -> list[int]:
+    return [int(r) for r in _role_array(ev, node).tolist()]
+
+
+def _reflected_walk(jumps: np.ndarray, declines: np.ndarray) -> np.ndarray:
+    """Counter after each event: c_k = jumps_k + max(0, c_{k-1} - declines_k), c_-1 = 0.
+
+    The unrolled form c_k = max_j (sum jumps[j..k] - sum declines[j+1..k]) is a cumulative
+    maximum, so the whole trajectory is three numpy passes (rules a/b/c with g/h below 128).
+    """
+    a = np.cumsum(jumps)
+    d = np.cumsum(declines)
+    a_before = np.concatenate([[0], a[:-1]])
+    return a - d + np.maximum.accumulate(d - a_before)
+
+
+def _quiet_replay(ev: BusEvidence, node: int, assume_first: bool,
+                  config: ConfinementConfig, keep_rows: bool) -> NodeReplay | None:
+    """The replay of a node that never reaches the warning level, without a Python loop.
+
+    Below the warning level no exception of the rules applies (no ACK exception, no REC
+    reset, no bus-off, the node can always flag), so TEC and REC are two reflected walks.
+    Returns None when the node does reach it, or when status records or logger losses need
+    the event loop.
+    """
+    if ev.losses.shape[0] or not ev.ev_t:
+        return None
+    role = _role_array(ev, node)
+    if bool(np.any(role == ROLE_STATUS)):
+        return None
+    own = np.asarray(ev.ev_own_before[node], dtype=np.int64)
+    all_ = np.asarray(ev.ev_frames_before, dtype=np.int64)
+    own_d = np.diff(own, prepend=0)
+    recv_d = np.diff(all_, prepend=0) - own_d
+    tx = (role == ROLE_TX) | (role == ROLE_TX_ACK)
+    rx_first = (role == ROLE_RX_FIRST) | ((role == ROLE_RX_UNKNOWN) & assume_first)
+    rx = rx_first | (role == ROLE_RX) | (role == ROLE_RX_UNKNOWN)
+    a_tec = np.where(tx, TRANSMIT_ERROR_TEC, 0)
+    a_rec = np.where(rx, RECEIVE_ERROR_REC, 0) + np.where(rx_first, FIRST_DETECTOR_EXTRA_REC, 0)
+    tec = _reflected_walk(a_tec, own_d)
+    rec = _reflected_walk(a_rec, recv_d)
+    level = config.warning_level + (0 if config.warning_inclusive else 1)
+    if int(tec.max()) >= level or int(rec.max()) >= level:
+        return None
+    out = NodeReplay(ev.nodes[node], assume_first)
+    out.state_before = ["error-active"] * len(ev.ev_t)
+    out.first_bonus_events = int(np.sum((role == ROLE_RX_UNKNOWN) & assume_first))
+    out.max_tec, out.max_rec = int(tec.max()), int(rec.max())
+    if keep_rows:
+        t = np.asarray(ev.ev_t, dtype=np.int64)
+        pre_tec, pre_rec = tec - a_tec, rec - a_rec
+        prev_tec = np.concatenate([[0], tec[:-1]])
+        prev_rec = np.concatenate([[0], rec[:-1]])
+        declined = (pre_tec != prev_tec) | (pre_rec != prev_rec)
+        hit = tx | rx
+        order = np.sort(np.concatenate([2 * np.flatnonzero(declined),
+                                        2 * np.flatnonzero(hit) + 1]))
+        k, o = order // 2, order % 2  # per event: the decline row first, then the jump
+        out.rows_frame = pl.DataFrame({
+            "t_ns": t[k], "tec": np.where(o == 1, tec[k], pre_tec[k]).astype(np.int32),
+            "rec": np.where(o == 1, rec[k], pre_rec[k]).astype(np.int32),
+            "state": "error-active", "cause": np.where(o == 1, "error", "successes"),
+            "uncertain": False})
+    return out
 
 
 def replay_node(ev: BusEvidence, node: int, assume_first: bool = False,
@@ -488,6 +556,9 @@ def replay_node(ev: BusEvidence, node: int, assume_first: bool = False,
     tracelab.physics.confinement; rare paths (transmit errors with their exceptions, bus-off,
     recovery, status records) go through NodeCounters.
     """
+    quiet = _quiet_replay(ev, node, assume_first, config, keep_rows)
+    if quiet is not None:
+        return quiet
     out = NodeReplay(ev.nodes[node], assume_first)
     c = NodeCounters(config=config)
     state: State = "error-active"

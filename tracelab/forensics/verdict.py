@@ -368,10 +368,13 @@ def _counters_frame(ev: BusEvidence, h: Hypothesis) -> pl.DataFrame:
     parts = []
     names = ["t_ns", "tec", "rec", "state", "cause", "uncertain"]
     for rep in h.replays:  # loop over nodes; rows are counter changes (rare)
-        if not rep.rows:
+        if rep.rows_frame is not None:
+            frame = rep.rows_frame.select(pl.col(n).cast(COUNTERS_SCHEMA[n]) for n in names)
+        elif rep.rows:
+            frame = pl.DataFrame(rep.rows, schema=[(n, COUNTERS_SCHEMA[n]) for n in names],
+                                 orient="row")
+        else:
             continue
-        frame = pl.DataFrame(rep.rows, schema=[(n, COUNTERS_SCHEMA[n]) for n in names],
-                             orient="row")
         parts.append(frame.with_columns(pl.lit(rep.node).alias("node")))
     if not parts:
         return pl.DataFrame(schema=COUNTERS_SCHEMA)
