@@ -120,3 +120,9 @@ def test_report_data_of_a_dataset(tmp_path: Path) -> None:
     assert data.loss_summary.rows() == [("chassis", 1, 30_500_000_000, 31_500_000_000,
                                          1_000_000_000, 12)]
     assert [r["bus"] for r in data.faults["results"]] == ["body", "chassis"]  # type: ignore[index]
+
+
+def test_faults_of_other_runs_do_not_make_a_run_clean() -> None:
+    faults = {"results": [{"run": "a", "bus": "P", "first_degraded": None}]}
+    assert envelopes._run_faults(faults, "b") is None
+    assert envelopes._run_faults(faults, "a") == faults

@@ -296,11 +296,12 @@ def counter_envelopes(con: duckdb.DuckDBPyConnection, run: str, bucket_ns: int,
 
 
 def _run_faults(faults: dict[str, Any] | None, run: str) -> dict[str, Any] | None:
-    """The faults.json object restricted to this run's results."""
+    """The faults.json object restricted to this run's results; None when the replay did not
+    cover this run (a run ingested after it), so the page never calls it clean unseen."""
     if not isinstance(faults, dict):
         return None
     results = [r for r in faults.get("results", []) if r.get("run") in (None, run)]
-    return {**faults, "results": results}
+    return {**faults, "results": results} if results else None
 
 
 def report_data(con: duckdb.DuckDBPyConnection, run: str, faults: dict[str, Any] | None = None,
