@@ -270,9 +270,33 @@ def demo(output: Path, quiet: bool = False) -> str:
     paths = report(dataset, output / "report.html", catalog=scenario)
     ds = open_dataset(dataset)
     errors = int(ds.manifest()["errors"].fill_null(0).sum())
-    sentence, _ = verdict_sentence(ds.read_analysis_json("faults"), errors)
-    lines = [f"verdict: {sentence}"] + [f"report: {p}" for p in paths]
+    faults_json = ds.read_analysis_json("faults")
+    sentence, _ = verdict_sentence(faults_json, errors)
+    lines = [f"verdict: {sentence}", *_demo_truth(log, faults_json)]
+    lines += [f"report: {p}" for p in paths]
     return "\n".join(lines)
+
+
+def _demo_truth(log: Path, faults_json: Any) -> list[str]:
+    """One line comparing the verdict with the simulator's ground truth, when it is there."""
+    import json
+
+    truth_path = log.with_name(log.name + ".truth.json")
+    if not truth_path.exists():
+        return []
+    truth = json.loads(truth_path.read_text(encoding="utf-8"))
+    found = {r.get("bus"): (r.get("first_degraded") or {}).get("node")
+             for r in (faults_json or {}).get("results", [])}
+    lines = []
+    for entry in truth.get("first_degraded") or []:  # one entry per bus
+        first = entry.get("first_warning") or entry.get("first")
+        if not first:
+            continue
+        agrees = "agrees" if found.get(entry.get("bus")) == first.get("node") else "DIFFERS"
+        lines.append(f"truth:   {first.get('node')} on bus {entry.get('bus')} reached "
+                     f"{first.get('state')} first at {first.get('t_ns', 0) / 1e9:.3f} s "
+                     f"(simulator ground truth; the replay {agrees})")
+    return lines
 
 
 # --- fleet --------------------------------------------------------------------------------
