@@ -169,13 +169,13 @@ def load_bus_evidence(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run:
     scan = f"FROM frames{'' if only_pair else ' WHERE ' + where}"
     # Column by column: DuckDB hands each over as one numpy array (the cheapest transfer).
     frame_t = np.asarray(con.execute(f"SELECT t_ns {scan}").fetchnumpy()["t_ns"], np.int64)
-    ids = np.asarray(con.execute(f"SELECT id {scan}").fetchnumpy()["id"], np.int64)
+    ids = np.asarray(con.execute(f"SELECT id {scan}").fetchnumpy()["id"])
     any_ext = bool(by_id["ext"].any()) if by_id.height else False
     if any_ext:
         ext = np.asarray(con.execute(f"SELECT ext {scan}").fetchnumpy()["ext"], bool)
-        keys = ids * 2 + ext
+        keys = ids.astype(np.int64) * 2 + ext
     else:
-        keys = ids * 2
+        keys = ids  # standard identifiers only: the key is the identifier
     if int(by_id["fd_frames"].sum() or 0):
         flags = con.execute(f"SELECT (fd::INT + (fd AND esi)::INT)::TINYINT AS esi {scan}")
         esi = np.asarray(flags.fetchnumpy()["esi"], np.int8)
@@ -184,7 +184,7 @@ def load_bus_evidence(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run:
     if frame_t.size > 1 and bool(np.any(frame_t[1:] < frame_t[:-1])):
         order = np.argsort(frame_t, kind="stable")  # rare: logs with backward time steps
         frame_t, keys, esi = frame_t[order], keys[order], esi[order]
-    frame_node = _map_keys(keys, codes)
+    frame_node = _map_keys(keys, codes, with_ext=any_ext)
     own_t = _split_by_node(frame_t, frame_node, len(nodes))
     busy = np.zeros(len(nodes), dtype=np.float64)
     for code, ns in zip(by_id["code"].fill_null(-1).to_list(), by_id["busy_ns"].to_list(),
@@ -219,14 +219,19 @@ def _split_by_node(frame_t: np.ndarray, frame_node: np.ndarray, n: int) -> list[
     return [grouped[bounds[i]:bounds[i + 1]] for i in range(n)]
 
 
-def _map_keys(keys: np.ndarray, codes: pl.DataFrame) -> np.ndarray:
-    """Sender index per frame from the (id, ext) key, vectorised: a lookup table when all
-    identifiers are standard ones, else a sorted-key search."""
-    cat_keys = (codes["id"].cast(pl.Int64) * 2 + codes["ext"].cast(pl.Int64)).to_numpy()
-    cat_codes = codes["code"].to_numpy().astype(np.int16)
+def _map_keys(keys: np.ndarray, codes: pl.DataFrame, with_ext: bool = True) -> np.ndarray:
+    """Sender index per frame from the key (id * 2 + ext, or the id alone when no frame is
+    extended), vectorised: a lookup table for small keys, else a sorted-key search."""
+    if with_ext:
+        cat_keys = (codes["id"].cast(pl.Int64) * 2 + codes["ext"].cast(pl.Int64)).to_numpy()
+        cat_codes = codes["code"].to_numpy().astype(np.int16)
+    else:
+        std = codes.filter(~pl.col("ext"))
+        cat_keys = std["id"].cast(pl.Int64).to_numpy()
+        cat_codes = std["code"].to_numpy().astype(np.int16)
     if cat_keys.size == 0 or keys.size == 0:
         return np.full(keys.size, -1, dtype=np.int16)
-    if int(keys.max()) < 4096 and int(cat_keys.max()) < 4096 and int(keys.min()) >= 0:
+    if int(keys.max()) < 4096 and int(cat_keys.max()) < 4096:
         table = np.full(4096, -1, dtype=np.int16)
         table[cat_keys] = cat_codes
         return table[keys]
