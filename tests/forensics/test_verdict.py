@@ -152,3 +152,21 @@ def test_catalog_that_does_not_know_the_bus_says_so() -> None:
     v = replay_faults(s.connect(), other).as_json()["results"][0]
     assert v["cause"] == {"kind": "unknown", "node": None}
     assert "check --catalog" in v["verdict"]
+
+
+def test_silences_from_the_timing_gaps() -> None:
+    import polars as pl
+
+    s = synth.generate(3000, seed=2)
+    delta = synth.IDS["delta"]
+    cut, back = s.frames[1200]["t_ns"], s.frames[2000]["t_ns"]
+    s.frames = [f for f in s.frames if not (f["id"] == delta and cut < f["t_ns"] < back)]
+    times = [f["t_ns"] for f in s.frames if f["id"] == delta]
+    last = max(t for t in times if t <= cut)
+    nxt = min(t for t in times if t >= back)
+    gaps = pl.DataFrame({"run": ["r1"], "bus": ["can0"], "id": [delta], "ext": [False],
+                         "from_ns": [last], "to_ns": [nxt], "missing": [20], "in_loss": [False]},
+                        schema_overrides={"id": pl.UInt32})
+    v = replay_faults(s.connect(), synth.catalog(), gaps=gaps).as_json()["results"][0]
+    assert v["evidence"]["silences"] == [{"node": "delta", "from_ns": last, "to_ns": nxt}]
+    assert v["cause"]["node"] == "delta"
