@@ -66,12 +66,14 @@ def test_changed_part_reprocesses_its_run_only(small_fleet: Fleet, tmp_path: Pat
 
 def test_exit_code_says_whether_anything_failed(small_fleet: Fleet, tmp_path: Path) -> None:
     root = tmp_path / "logs"
-    shutil.copytree(small_fleet.root / "birch", root / "birch")
+    (root / "birch").mkdir(parents=True)
+    shutil.copy(small_fleet.root / "birch" / "catalog.toml", root / "birch")
+    shutil.copytree(small_fleet.root / "birch" / "2026-11-01", root / "birch" / "2026-11-01")
     (root / "broken.frames.zst").write_bytes(b"\x28\xb5\x2f\xfd truncated zstd")
-    assert main(["batch", str(root), "-o", str(tmp_path / "f1"), "--workers", "1",
-                 "-q"]) == EXIT_INPUT
-    (root / "broken.frames.zst").unlink()
-    assert main(["batch", str(root), "-o", str(tmp_path / "f2"), "--workers", "1", "-q"]) == 0
+    fleet = str(tmp_path / "fleet")
+    assert main(["batch", str(root), "-o", fleet, "--workers", "1", "-q"]) == EXIT_INPUT
+    (root / "broken.frames.zst").unlink()  # nothing new and nothing failed this time
+    assert main(["batch", str(root), "-o", fleet, "--workers", "1", "-q"]) == 0
 
 
 def test_usage_errors_are_one_line(tmp_path: Path, capsys: object) -> None:

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import os
+import shutil
 from pathlib import Path
 
 import polars as pl
@@ -21,16 +22,17 @@ async def _die() -> None:
     os._exit(1)
 
 
-def snapshot(fleet: Path) -> dict[str, pl.DataFrame]:
-    """Everything a user reads from a fleet, in a stable order."""
+def snapshot(fleet: Path, vehicle: str) -> dict[str, pl.DataFrame]:
+    """Everything a user reads about one vehicle from a fleet, in a stable order."""
     con = connect_fleet(fleet)
-    out = {"runs": con.sql("SELECT * FROM runs ORDER BY key").pl(),
-           "regressions": con.sql("SELECT * FROM regressions ORDER BY ALL").pl()}
+    where = f"WHERE vehicle = '{vehicle}'"
+    out = {"runs": con.sql(f"SELECT * EXCLUDE (catalog) FROM runs {where} ORDER BY key").pl(),
+           "regressions": con.sql(f"SELECT * FROM regressions {where} ORDER BY ALL").pl()}
     for table in ("frames", "errors", "timing", "gaps", "load", "load_summary", "verdicts",
                   "message_stats"):
-        out[table] = con.sql(f"SELECT * EXCLUDE (file) FROM {table} ORDER BY ALL"
-                             if "file" in con.sql(f"SELECT * FROM {table} LIMIT 0").columns
-                             else f"SELECT * FROM {table} ORDER BY ALL").pl()
+        columns = con.sql(f"SELECT * FROM {table} LIMIT 0").columns
+        drop = "EXCLUDE (file)" if "file" in columns else ""
+        out[table] = con.sql(f"SELECT * {drop} FROM {table} {where} ORDER BY ALL").pl()
     return out
 
 
@@ -56,17 +58,18 @@ def test_killed_worker_loses_and_duplicates_nothing(small_fleet: Fleet, tmp_path
             killed.append(busy[0])
             executor.client.run(_die, workers=[busy[0]], wait=False)
 
-    fleet = tmp_path / "dask"
+    root, fleet = tmp_path / "logs", tmp_path / "dask"
+    shutil.copytree(small_fleet.root / "birch", root / "birch")
     try:
-        first = run_batch(small_fleet.root, fleet, STEPS, executor=executor, quiet=True,
+        first = run_batch(root, fleet, STEPS, executor=executor, quiet=True,
                           on_result=kill_a_busy_worker)
-        again = run_batch(small_fleet.root, fleet, STEPS, executor=executor, quiet=True)
+        again = run_batch(root, fleet, STEPS, executor=executor, quiet=True)
     finally:
         executor.close()
     assert killed, "no worker was busy to kill"
-    assert (first.processed, first.failed) == (9, 1), first.describe()  # only the bad log
-    assert (again.processed, again.skipped) == (0, 10)
-    reference, got = snapshot(small_fleet.fleet), snapshot(fleet)
+    assert (first.processed, first.failed) == (3, 0), first.describe()
+    assert (again.processed, again.skipped) == (0, 3)
+    reference, got = snapshot(small_fleet.fleet, "birch"), snapshot(fleet, "birch")
     for name, frame in reference.items():
         differ = [c for c in frame.columns if not _same(frame[c], got[name][c])]
         assert not differ, (name, differ)

@@ -18,7 +18,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from tracelab.errors import InputError
+from tracelab.errors import CatalogError, LogFormatError
 from tracelab.fleet import layout
 from tracelab.fleet.discover import RunSpec
 
@@ -41,7 +41,7 @@ class RunResult:
     key: str
     status: str  # "ok" | "failed"
     reason: str | None
-    retry: bool  # failed for a reason other than the input: try again next batch
+    retry: bool  # failed for a reason other than a bad log or catalog: retried next batch
     row: dict[str, Any] = field(default_factory=dict)
     elapsed_s: float = 0.0
     reused: bool = False
@@ -84,7 +84,7 @@ def process_run(spec: RunSpec, fleet: str, steps: PipelineSteps) -> RunResult:
         row = _run_pipeline(spec, fleet_path, staging, steps)
         layout.write_json(record, row)
         return RunResult(spec.key, "ok", None, False, row, time.perf_counter() - start)
-    except InputError as error:  # the user's data: final until the file changes
+    except (LogFormatError, CatalogError) as error:  # the input: final until a file changes
         return failed_result(spec, str(error), retry=False,
                              elapsed_s=time.perf_counter() - start)
     except Exception as error:  # noqa: BLE001 - isolation: any bug fails this run only
