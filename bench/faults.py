@@ -91,7 +91,9 @@ def write_dataset(path: Path, frames: int, error_ratio: float, seed: int = 1) ->
                            row_group_size=1_000_000)
     manifest = {name: None for name in schema.MANIFEST}
     manifest.update(file="bench.frames", sha256=sha, frames=frames, errors=n_err, run="bench",
-                    first_t_ns=int(t[0]), last_t_ns=int(t[-1]), buses="[]", meta="{}",
+                    first_t_ns=int(t[0]), last_t_ns=int(t[-1]), meta="{}",
+                    buses='[{"alias": "can0", "nominal_bps": 500000, "data_bps": null, '
+                          '"stamp": "end", "name": null}]',
                     origin="2026-11-30T21:00:00Z")
     pl.DataFrame([manifest], schema=schema.MANIFEST).write_parquet(path / "manifest.parquet")
     print(f"dataset: {frames:,} frames, {n_err:,} error records, "

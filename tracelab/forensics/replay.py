@@ -138,8 +138,42 @@ def _nominal_bps(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run: str,
     return 500_000
 
 
-def frames_by_id(con: duckdb.DuckDBPyConnection, run: str | None = None) -> pl.DataFrame:
-    """One scan: frames, bus time and FD frames per (run, bus, id, ext)."""
+def single_pair(con: duckdb.DuckDBPyConnection, run: str | None = None
+                ) -> tuple[str, str] | None:
+    """(run, bus) when the manifest holds one run with one declared bus, else None."""
+    import json
+
+    try:
+        rows = con.execute("SELECT DISTINCT run, buses FROM manifest").fetchall()
+    except duckdb.Error:
+        return None
+    pairs = set()
+    for r, buses in rows:
+        try:
+            aliases = [b["alias"] for b in json.loads(buses or "[]")]
+        except (ValueError, TypeError, KeyError):
+            return None
+        if len(aliases) != 1:
+            return None
+        pairs.add((str(r), str(aliases[0])))
+    if len(pairs) != 1 or (run is not None and next(iter(pairs))[0] != run):
+        return None
+    return next(iter(pairs))
+
+
+def frames_by_id(con: duckdb.DuckDBPyConnection, run: str | None = None,
+                 pair: tuple[str, str] | None = None) -> pl.DataFrame:
+    """One scan: frames, bus time and FD frames per (run, bus, id, ext).
+
+    ``pair``: the dataset holds this (run, bus) only; the scan then groups by identifier.
+    """
+    if pair is not None:
+        frame = _frame(con, "SELECT id, ext, count(*) AS frames, sum(duration_ns)::BIGINT "
+                       "AS busy_ns, count(*) FILTER (WHERE fd) AS fd_frames FROM frames "
+                       "GROUP BY ALL")
+        return frame.select(pl.lit(pair[0]).alias("run"), pl.lit(pair[1]).alias("bus"),
+                            pl.col("id").cast(pl.UInt32), pl.col("ext").cast(pl.Boolean),
+                            "frames", "busy_ns", "fd_frames")
     where = f"WHERE run = {_sql(run)}" if run is not None else ""
     return _frame(con, "SELECT run, bus, id, ext, count(*) AS frames, "
                   "sum(duration_ns)::BIGINT AS busy_ns, count(*) FILTER (WHERE fd) AS fd_frames "

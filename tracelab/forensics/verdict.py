@@ -32,6 +32,7 @@ from tracelab.forensics.replay import (
     load_bus_evidence,
     replay_node,
     run_buses,
+    single_pair,
 )
 from tracelab.physics.confinement import DEFAULT_CONFIG, ConfinementConfig
 
@@ -114,9 +115,10 @@ def replay_faults(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run: str
     counters: list[pl.DataFrame] = []
     states: list[pl.DataFrame] = []
     frames = events = 0
-    by_id = frames_by_id(con, run)
+    pair = single_pair(con, run)
+    by_id = frames_by_id(con, run, pair)
     pairs = run_buses(con, run, by_id)
-    alone = run is None and len(pairs) == 1
+    alone = len(pairs) == 1 and (run is None or pair is not None)
     for r, bus in pairs:  # loop over (run, bus) pairs
         ev = load_bus_evidence(con, catalog, r, bus, by_id, only_pair=alone)
         frames += ev.frames
