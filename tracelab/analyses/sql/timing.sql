@@ -8,11 +8,8 @@ WITH cyc AS (
 ),
 stats AS (
     SELECT g,
-           median(dt_ns) AS median_ns, avg(dt_ns) AS mean_ns,
-           min(dt_ns) AS min_ns, max(dt_ns) AS max_ns,
            stddev_pop(dt_ns - period_ns) FILTER (regular) AS cycle_std_ns,
-           quantile_cont(dt_ns - period_ns, 0.01) FILTER (regular) AS cycle_p01_ns,
-           quantile_cont(dt_ns - period_ns, 0.99) FILTER (regular) AS cycle_p99_ns,
+           quantile_cont(dt_ns - period_ns, [0.01, 0.99]) FILTER (regular) AS cycle_q_ns,
            max(abs(dt_ns - period_ns)) FILTER (regular) AS cycle_max_abs_ns,
            regr_slope(t_rel_ns, cycle) AS slope_ns, regr_intercept(t_rel_ns, cycle) AS icpt_ns,
            count(*) FILTER (dt_ns < 0.5 * period_ns) AS bursts
@@ -33,8 +30,12 @@ gapsum AS (
 )
 SELECT p.run, p.bus, p.id, p.ext, p.name, p.sender, p.frames AS count,
        p.period_ns, CASE WHEN p.period_ns IS NOT NULL THEN p.period_source END AS period_source,
-       s.median_ns, s.mean_ns, s.min_ns, s.max_ns,
-       s.cycle_std_ns, s.cycle_p01_ns, s.cycle_p99_ns, s.cycle_max_abs_ns,
+       CASE WHEN p.period_ns IS NOT NULL THEN p.median_ns END AS median_ns,
+       CASE WHEN p.period_ns IS NOT NULL THEN p.mean_ns END AS mean_ns,
+       CASE WHEN p.period_ns IS NOT NULL THEN p.min_ns END AS min_ns,
+       CASE WHEN p.period_ns IS NOT NULL THEN p.max_ns END AS max_ns,
+       s.cycle_std_ns, s.cycle_q_ns[1] AS cycle_p01_ns, s.cycle_q_ns[2] AS cycle_p99_ns,
+       s.cycle_max_abs_ns,
        ph.phase_std_ns, ph.phase_max_abs_ns,
        (s.slope_ns / p.period_ns - 1) * 1e6 AS drift_ppm,
        CASE WHEN p.period_ns IS NOT NULL THEN coalesce(g.missing, 0) END AS missing,

@@ -7,7 +7,7 @@
 -- stream's frames are cut into blocks of $block positions: the correction at the start of
 -- every block comes from a running sum over the (few) blocks, and only the frames of blocks
 -- that hold an irregular step need a running sum of their own. No second full sort.
-CREATE OR REPLACE TEMP TABLE tl_steps AS
+CREATE OR REPLACE TEMP VIEW tl_steps AS
 SELECT a.g, a.t_ns, a.dt_ns, a.rn, p.period_ns,
        CASE WHEN a.rn = 0 THEN 0 ELSE round(a.dt_ns / p.period_ns)::BIGINT - 1 END AS extra
 FROM tl_arrivals a JOIN tl_periods p ON a.g = p.g
@@ -42,4 +42,4 @@ SELECT g, t_ns, dt_ns, period_ns,
                                      ROWS UNBOUNDED PRECEDING))::DOUBLE
 FROM keyed WHERE n_irregular > 0;
 
-DROP TABLE tl_steps;
+DROP VIEW tl_steps;

@@ -9,7 +9,8 @@
 CREATE OR REPLACE TEMP TABLE tl_periods AS
 WITH raw AS (
     SELECT g, count(*) AS frames, count(dt_ns) AS n_dt, median(dt_ns) AS m0_ns,
-           min(t_ns) AS t0_ns
+           min(t_ns) AS t0_ns, avg(dt_ns) AS mean_ns, min(dt_ns) AS min_ns,
+           max(dt_ns) AS max_ns
     FROM tl_arrivals GROUP BY g
 ),
 named AS (
@@ -25,6 +26,7 @@ band AS (
     GROUP BY a.g
 )
 SELECT n.g, n.run, n.bus, n.id, n.ext, n.frames, n.t0_ns, n.name, n.sender,
+       n.m0_ns AS median_ns, n.mean_ns, n.min_ns, n.max_ns,
        CASE WHEN n.in_catalog THEN n.catalog_period_ns
             WHEN n.n_dt >= 4 AND coalesce(b.n_band, 0) >= 0.8 * n.n_dt
                 THEN round(b.m1_ns)::BIGINT
