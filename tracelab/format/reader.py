@@ -56,6 +56,8 @@ _CORRUPT = (OSError, EOFError, zlib.error, zstandard.ZstdError)
 #: Every form FORM_RE accepts, for a cheap is_in() on the fast path.
 VALID_FORMS = tuple(f"{k}{rest}" for k in "sx" for rest in ("", "r", "f", "fb", "fe", "fbe"))
 _FAST_SCHEMA = {f"field_{i}": pl.String for i in range(_MAX_FIELDS + 1)}
+_FORM_ENUM = pl.Enum(list(VALID_FORMS))
+_DLC_ENUM = pl.Enum([str(dlc) for dlc in range(16)])
 
 FRAME_COLUMNS = ("bus", "t_ns", "id", "ext", "rtr", "fd", "brs", "esi", "dlc", "data", "line")
 
@@ -558,8 +560,10 @@ class LogReader:
         if rows.height != n:
             return None
         c, f = pl.col, [pl.col(name) for name in _FAST_SCHEMA]
-        aliases = [b.alias for b in self.header.buses]
-        fd_buses = [b.alias for b in self.header.buses if b.data_bps is not None]
+        if not self.header.buses:
+            return None
+        bus_enum = pl.Enum([b.alias for b in self.header.buses])
+        fd_codes = [i for i, b in enumerate(self.header.buses) if b.data_bps is not None]
         # form as an index into VALID_FORMS: s, sr, sf, sfb, sfe, sfbe, x, xr, ... (6 each)
         variant = c("form_code") % 6
         rows = rows.with_columns(
@@ -571,27 +575,26 @@ class LogReader:
                 f[3].str.to_integer(base=16, strict=False)),
             payload=pl.when(f[6] == NONE).then(pl.lit(b"")).otherwise(
                 f[6].str.decode("hex", strict=False)),
-            form_code=f[4].replace_strict({v: i for i, v in enumerate(VALID_FORMS)},
-                                          default=None, return_dtype=pl.Int16),
-            dlc=f[5].replace_strict({str(i): i for i in range(16)}, default=None,
-                                    return_dtype=pl.Int16),
-            bus=f[1],
+            # an Enum cast is a table lookup: the index of the form, or of the DLC text
+            form_code=f[4].cast(_FORM_ENUM, strict=False).to_physical().cast(pl.Int16),
+            dlc=f[5].cast(_DLC_ENUM, strict=False).to_physical().cast(pl.Int16),
+            bus=f[1], bus_code=f[1].cast(bus_enum, strict=False).to_physical(),
             other=(f[0].is_null() & f[1].is_null() | f[0].str.starts_with("#")).fill_null(False),
-        ).with_columns(
-            ext=c("form_code") >= 6, rtr=variant == 1, fd=variant >= 2,
-            brs=(variant == 3) | (variant == 5), esi=variant >= 4,
+        ).with_columns(variant=variant).with_columns(
+            ext=c("form_code") >= 6, rtr=c("variant") == 1, fd=c("variant") >= 2,
+            brs=(c("variant") == 3) | (c("variant") == 5), esi=c("variant") >= 4,
         )
         payload_table = pl.lit(pl.Series(CLASSIC_PAYLOAD_BYTES + FD_PAYLOAD_BYTES, dtype=pl.Int64))
         need = pl.when(c("rtr")).then(0).otherwise(
             payload_table.gather(c("dlc") + 16 * c("fd").cast(pl.Int16)))
         frame_ok = (
-            (f[2] == "frame") & c("t_ns").is_not_null() & c("bus").is_in(aliases)
+            (f[2] == "frame") & c("t_ns").is_not_null() & c("bus_code").is_not_null()
             & c("id").is_not_null() & c("form_code").is_not_null() & f[7].is_null()
             & pl.when(c("ext")).then(c("id") <= MAX_EXTENDED_ID).otherwise(c("id") <= MAX_BASE_ID)
-            & (c("payload").bin.size() == need) & (~c("brs") | c("bus").is_in(fd_buses))
+            & (c("payload").bin.size() == need) & (~c("brs") | c("bus_code").is_in(fd_codes))
         ).fill_null(False)
-        marks = rows.select(frame_ok=frame_ok, rest=~frame_ok & ~c("other"))
-        ok_mask, rest_mask = marks["frame_ok"], marks["rest"]
+        ok_mask = rows.select(frame_ok).to_series()
+        rest_mask = ~ok_mask & ~rows["other"]
         n_ok, n_rest = int(ok_mask.sum()), int(rest_mask.sum())
         rest = rows.filter(rest_mask) if n_rest else rows.clear()
         if n_rest:  # other kinds and odd-but-valid frames: the exact checks, on few rows
