@@ -202,16 +202,16 @@ def load_bus_evidence(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run:
                        how="left")
     scan = f"FROM frames{'' if only_pair else ' WHERE ' + where}"
     # Column by column: DuckDB hands each over as one numpy array (the cheapest transfer).
-    frame_t = np.asarray(con.execute(f"SELECT t_ns {scan}").fetchnumpy()["t_ns"], np.int64)
-    ids = np.asarray(con.execute(f"SELECT id {scan}").fetchnumpy()["id"])
+    frame_t = np.asarray(con.sql(f"SELECT t_ns {scan}").fetchnumpy()["t_ns"], np.int64)
+    ids = np.asarray(con.sql(f"SELECT id {scan}").fetchnumpy()["id"])
     any_ext = bool(by_id["ext"].any()) if by_id.height else False
     if any_ext:
-        ext = np.asarray(con.execute(f"SELECT ext {scan}").fetchnumpy()["ext"], bool)
+        ext = np.asarray(con.sql(f"SELECT ext {scan}").fetchnumpy()["ext"], bool)
         keys = ids.astype(np.int64) * 2 + ext
     else:
         keys = ids  # standard identifiers only: the key is the identifier
     if int(by_id["fd_frames"].sum() or 0):
-        flags = con.execute(f"SELECT (fd::INT + (fd AND esi)::INT)::TINYINT AS esi {scan}")
+        flags = con.sql(f"SELECT (fd::INT + (fd AND esi)::INT)::TINYINT AS esi {scan}")
         esi = np.asarray(flags.fetchnumpy()["esi"], np.int8)
     else:
         esi = np.zeros(frame_t.size, np.int8)
@@ -248,9 +248,9 @@ def _split_by_node(frame_t: np.ndarray, frame_node: np.ndarray, n: int) -> list[
     """Per node, its frame times (sorted): one stable radix sort of the 16-bit codes."""
     order = np.argsort(frame_node, kind="stable")
     grouped = frame_t[order]
-    counts = np.bincount(frame_node.astype(np.int64) + 1, minlength=n + 1)
-    bounds = np.cumsum(counts)
-    return [grouped[bounds[i]:bounds[i + 1]] for i in range(n)]
+    bounds = np.searchsorted(frame_node[order], np.arange(-1, n + 1, dtype=np.int16),
+                             side="left")
+    return [grouped[bounds[i + 1]:bounds[i + 2]] for i in range(n)]
 
 
 def _map_keys(keys: np.ndarray, codes: pl.DataFrame, with_ext: bool = True) -> np.ndarray:
