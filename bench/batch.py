@@ -1,6 +1,6 @@
 """Fleet batch throughput: local executor with 2 workers vs 1, and Dask vs local.
 
-    .venv/bin/python bench/batch.py [--runs 30] [--seconds 20]
+    .venv/bin/python bench/batch.py [--runs 30] [--seconds 60]
 
 Generates its own fleet (3 vehicles, periodic traffic on two buses), then runs the whole
 per-run pipeline (ingest, timing, load, faults, report) into a fresh fleet per executor.
@@ -97,7 +97,7 @@ def timed(root: Path, work: Path, name: str, **options: object) -> float:
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--runs", type=int, default=30)
-    parser.add_argument("--seconds", type=float, default=20.0, help="bus time per run")
+    parser.add_argument("--seconds", type=float, default=60.0, help="bus time per run")
     args = parser.parse_args()
     with tempfile.TemporaryDirectory(prefix="tracelab-bench-") as tmp:
         work = Path(tmp)

@@ -92,8 +92,8 @@ SILENT = """
 [[fault]]
 node = "bms"
 kind = "silent"
-start = "1s"
-end = "2s"
+start = "0.6s"
+end = "1.4s"
 """
 DRIFT = """
 [[fault]]
