@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import os
 import shutil
 from collections import deque
 from concurrent.futures import Future, ThreadPoolExecutor
@@ -20,7 +21,7 @@ import numpy as np
 import polars as pl
 
 import tracelab
-from tracelab.errors import TracelabError, UsageError
+from tracelab.errors import UsageError
 from tracelab.format.reader import Block, Chunk, LogReader
 from tracelab.format.writer import LogHeader
 from tracelab.physics.bitlength import frame_bits, frame_durations_ns
@@ -216,6 +217,8 @@ def _check_paths(logs: list[Path]) -> None:
             raise UsageError(f"{path}: no such file")
         if not path.is_file():
             raise UsageError(f"{path}: not a file")
+        if not os.access(path, os.R_OK):
+            raise UsageError(f"{path}: not readable (permission denied)")
 
 
 def _ingest_file(path: Path, sha: str, ds: Dataset, strict: bool, advance: object
@@ -295,8 +298,9 @@ def ingest_logs(logs: list[Path] | list[str], dataset: Path | str, strict: bool 
                 staged[sha] = folder
                 result.files.append(summary)
         rows = pl.DataFrame([f.row() for f in result.files], schema=schema.MANIFEST)
-        ds.commit(staged, rows)
-    except (TracelabError, Exception, KeyboardInterrupt):
+        if staged or not ds.manifest_path.exists():  # all skipped: nothing to rewrite
+            ds.commit(staged, rows)
+    except BaseException:  # failed or interrupted: drop what was staged, then re-raise
         for folder in staged.values():
             shutil.rmtree(folder, ignore_errors=True)
         ds.remove_leftovers()
