@@ -95,7 +95,9 @@ def test_same_file_is_skipped_unless_forced(tmp_path: Path) -> None:
     log = _log(tmp_path / "a.frames", ["1\tP\tmark\tx"])
     copy = _log(tmp_path / "copy.frames", ["1\tP\tmark\tx"])
     ingest_logs([log], tmp_path / "ds", quiet=True)
+    before = _snapshot(tmp_path / "ds")
     again = ingest_logs([log, copy], tmp_path / "ds", quiet=True)
+    assert _snapshot(tmp_path / "ds") == before  # a no-op run rewrites nothing
     assert again.skipped == [str(log), str(copy)] and again.files == []
     ds = open_dataset(tmp_path / "ds")
     assert ds.connect().execute("select count(*) from marks").fetchone() == (1,)
