@@ -204,3 +204,13 @@ def test_valid_chunks_take_the_fast_path(tmp_path: Path) -> None:
     assert chunk is not None and chunk.frames.height == 4 and chunk.other_lines == 3
     with LogReader(path) as reader:  # one bad line sends the chunk to the exact path
         assert reader._chunk_fast(body + b"5\tQ\tmark\tx\n", 4) is None
+
+
+def test_a_line_without_end_cannot_exhaust_memory(tmp_path: Path,
+                                                  monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setattr("tracelab.format.reader.MAX_LINE_BYTES", 1000)
+    path = _write(tmp_path, HEADER + GOOD + "x" * 5000)
+    with LogReader(path, chunk_bytes=256) as reader, pytest.raises(
+            LogFormatError, match="line is longer than") as caught:
+        list(reader.chunks())
+    assert caught.value.line == 5

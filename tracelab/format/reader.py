@@ -47,6 +47,7 @@ from tracelab.format.grammar import (
 from tracelab.format.writer import BusDecl, LogHeader
 
 CHUNK_BYTES = 8 * 1024 * 1024
+MAX_LINE_BYTES = 64 * 1024 * 1024
 _HEADER_LINE_LIMIT = 64 * 1024  # a longer line cannot be a directive: it ends the header
 _MAX_FIELDS = 3 + max(len(v) for v in RECORD_FIELDS.values())
 _DIGITS = r"^[0-9]{1,19}$"  # up to int64; to_integer(strict=False) nulls an overflow
@@ -474,6 +475,9 @@ class LogReader:
             cut = data.rfind(b"\n")
             if cut < 0:
                 carry = data
+                if len(carry) > MAX_LINE_BYTES:  # memory stays bounded on garbage input
+                    raise LogFormatError(str(self.path), line_no + 1, "line is longer than "
+                                         f"{MAX_LINE_BYTES >> 20} MiB: not a frame log?")
             else:
                 body, carry = data[: cut + 1], data[cut + 1:]
                 yield Block(body, line_no + 1, True, self._raw.tell())
