@@ -123,3 +123,19 @@ def test_quiet_nodes_vectorised_walk_equals_the_event_loop(assume_first: bool,
         assert (rep.max_tec, rep.max_rec) == (slow.max_tec, slow.max_rec)
         assert rep.first_bonus_events == slow.first_bonus_events
         assert slow.transitions == [] and rep.state_before == slow.state_before
+
+
+def test_split_by_node_both_ways_agree() -> None:
+    import numpy as np
+
+    from tracelab.forensics.replay import _split_by_node
+
+    rng = np.random.default_rng(3)
+    t = np.cumsum(rng.integers(1, 100, 5000))
+    codes = rng.integers(-1, 12, 5000).astype(np.int16)
+    few, many = _split_by_node(t, codes, 8), _split_by_node(t, codes, 12)
+    for i in range(12):
+        expected = t[codes == i]  # reference: numpy boolean indexing
+        assert np.array_equal(many[i], expected)
+        if i < 8:
+            assert np.array_equal(few[i], expected)

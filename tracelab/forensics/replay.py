@@ -245,7 +245,10 @@ def load_bus_evidence(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run:
 
 
 def _split_by_node(frame_t: np.ndarray, frame_node: np.ndarray, n: int) -> list[np.ndarray]:
-    """Per node, its frame times (sorted): one stable radix sort of the 16-bit codes."""
+    """Per node, its frame times (sorted): a compress per node for a few nodes, else one
+    stable radix sort of the 16-bit codes (cheaper than many passes)."""
+    if n <= 8:
+        return [np.compress(frame_node == i, frame_t) for i in range(n)]
     order = np.argsort(frame_node, kind="stable")
     grouped = frame_t[order]
     bounds = np.searchsorted(frame_node[order], np.arange(-1, n + 1, dtype=np.int16),
