@@ -91,6 +91,8 @@ class Dataset:
 
         try:
             con = duckdb.connect(":memory:")
+            if threads := os.environ.get("TRACELAB_THREADS"):  # a batch worker's share of cores
+                con.execute(f"SET threads = {int(threads)}")
             for table in schema.TABLES:
                 files = self.part_files(table)
                 if files:
