@@ -9,7 +9,6 @@ returns the finished record, so it neither loses nor duplicates data.
 
 from __future__ import annotations
 
-import os
 import shutil
 import time
 import uuid
@@ -57,13 +56,6 @@ def failed_result(spec: RunSpec, reason: str, retry: bool, elapsed_s: float = 0.
     return RunResult(spec.key, "failed", reason, retry, failed_row(spec, reason), elapsed_s)
 
 
-def _limit_threads() -> None:
-    """Several runs share the machine: keep each worker's DuckDB to its share of the cores."""
-    threads = os.environ.get("TRACELAB_THREADS")
-    if threads:
-        os.environ.setdefault("POLARS_MAX_THREADS", threads)
-
-
 def process_run(spec: RunSpec, fleet: str, steps: PipelineSteps) -> RunResult:
     """Run the whole pipeline for one run; never raises for a bad log (the run fails alone)."""
     import json
@@ -77,7 +69,6 @@ def process_run(spec: RunSpec, fleet: str, steps: PipelineSteps) -> RunResult:
         row = json.loads(record.read_text(encoding="utf-8"))
         return RunResult(spec.key, "ok", None, False, row, time.perf_counter() - start,
                          reused=True)
-    _limit_threads()
     staging = fleet_path / layout.STAGING_DIR / f"{spec.key[:16]}-{uuid.uuid4().hex[:8]}"
     try:
         staging.mkdir(parents=True)
@@ -112,9 +103,6 @@ def _run_pipeline(spec: RunSpec, fleet: Path, staging: Path, steps: PipelineStep
                            shared_plotly=True)
     con = open_dataset(dataset).connect()
     try:
-        threads = os.environ.get("TRACELAB_THREADS")
-        if threads:
-            con.execute(f"SET threads = {int(threads)}")
         row = summary.run_row(con, spec, faults_json)
         stats = summary.message_stats(con, spec)
         out = staging / "out"
