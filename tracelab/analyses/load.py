@@ -77,7 +77,8 @@ def bus_load(con: duckdb.DuckDBPyConnection, window_ns: int = 100_000_000,
         con.execute("CREATE OR REPLACE TEMP TABLE tl_error_spans (run VARCHAR, bus VARCHAR, "
                     "s BIGINT, e BIGINT)")
     run_sql(con, "load_heads", params)
-    longest_ns = query_scalar(con, "SELECT max(longest_ns) FROM tl_heads")
+    longest_ns = query_scalar(con, "SELECT greatest((SELECT max(longest_ns) FROM tl_ids), "
+                                   "(SELECT max(e - s) FROM tl_error_spans))")
     if longest_ns is not None and longest_ns > window_ns:  # rare: very short windows
         run_sql(con, "load_long", params)
     else:

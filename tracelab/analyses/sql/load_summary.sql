@@ -14,15 +14,12 @@ peak AS (
     FROM tl_load l JOIN agg a ON a.run = l.run AND a.bus = l.bus AND l.load_ratio = a.max
     GROUP BY l.run, l.bus
 ),
-span AS (
-    SELECT run, bus, min(first_ns) AS first_ns, max(last_ns) AS last_ns
-    FROM tl_heads GROUP BY run, bus
-)
+span AS (SELECT run, bus, first_ns, last_ns FROM tl_span)
 SELECT a.run, a.bus, a.window_ns, a.windows, a.mean, a.p50, a.p95, a.p99, a.max, p.max_t_ns,
        a.frames::BIGINT AS frames, a.error_frames::BIGINT AS error_frames,
        a.busy_ns::BIGINT AS busy_ns, (s.last_ns - s.first_ns) AS span_ns,
        a.frames / nullif((s.last_ns - s.first_ns) / 1e9, 0) AS frames_per_s
 FROM agg a
 JOIN peak p ON p.run = a.run AND p.bus = a.bus
-JOIN span s ON s.run = a.run AND s.bus = a.bus
+LEFT JOIN span s ON s.run = a.run AND s.bus = a.bus
 ORDER BY a.run, a.bus;

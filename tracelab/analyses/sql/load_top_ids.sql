@@ -1,10 +1,6 @@
 -- Identifiers by share of busy time per (run, bus): share = the id's frame time / all busy
 -- time (frames and error frames) of that bus in the run. The $top largest per (run, bus).
-WITH per_id AS (
-    SELECT run, bus, id, ext, count(*) AS frames, sum(duration_ns) AS busy_ns
-    FROM frames WHERE $run::VARCHAR IS NULL OR run = $run::VARCHAR
-    GROUP BY run, bus, id, ext
-),
+WITH per_id AS (SELECT run, bus, id, ext, frames, busy_ns FROM tl_ids),
 total AS (SELECT run, bus, sum(busy_ns) AS total_ns FROM tl_load GROUP BY run, bus),
 ranked AS (
     SELECT p.run, p.bus, p.id, p.ext, p.frames, p.busy_ns::BIGINT AS busy_ns,
