@@ -66,14 +66,17 @@ def test_changed_part_reprocesses_its_run_only(small_fleet: Fleet, tmp_path: Pat
 
 def test_exit_code_says_whether_anything_failed(small_fleet: Fleet, tmp_path: Path) -> None:
     root = tmp_path / "logs"
-    (root / "birch").mkdir(parents=True)
-    shutil.copy(small_fleet.root / "birch" / "catalog.toml", root / "birch")
     shutil.copytree(small_fleet.root / "birch" / "2026-11-01", root / "birch" / "2026-11-01")
+    catalog = shutil.copy(small_fleet.root / "birch" / "catalog.toml", tmp_path / "net.toml")
     (root / "broken.frames.zst").write_bytes(b"\x28\xb5\x2f\xfd truncated zstd")
-    fleet = str(tmp_path / "fleet")
-    assert main(["batch", str(root), "-o", fleet, "--workers", "1", "-q"]) == EXIT_INPUT
+    args = ["batch", str(root), "-o", str(tmp_path / "fleet"), "--catalog", str(catalog),
+            "--workers", "1", "-q"]
+    assert main(args) == EXIT_INPUT
+    runs = pl.read_parquet(tmp_path / "fleet" / RUNS_FILE).filter(pl.col("status") == "ok")
+    assert runs["catalog"].to_list() == [str(Path(catalog).resolve())]  # --catalog applies
+    assert runs["cause_kind"].to_list() == ["none"]  # and the fault replay ran with it
     (root / "broken.frames.zst").unlink()  # nothing new and nothing failed this time
-    assert main(["batch", str(root), "-o", fleet, "--workers", "1", "-q"]) == 0
+    assert main(args) == 0
 
 
 def test_usage_errors_are_one_line(tmp_path: Path, capsys: object) -> None:
