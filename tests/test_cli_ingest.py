@@ -169,3 +169,14 @@ def test_raw_byte_faults_in_both_modes(tmp_path: Path, dataset: Path,
     out = capsys.readouterr().out
     assert f"+ {records} records" in out and f"first: {log}:{BAD_LINE}: " in out
     assert reason in out
+
+
+def test_strict_rerun_skips_a_file_already_ingested_with_rejects(
+        tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    log = _write(tmp_path / "bad.frames", record_log("5\tQ\tmark\tx"))
+    assert main(["ingest", str(log), "-o", str(tmp_path / "ds"), "-q"]) == 0
+    before = _snapshot(tmp_path / "ds")
+    capsys.readouterr()
+    assert main(["ingest", str(log), "-o", str(tmp_path / "ds"), "--strict", "-q"]) == 0
+    assert "skipped 1 already ingested" in capsys.readouterr().out
+    assert _snapshot(tmp_path / "ds") == before

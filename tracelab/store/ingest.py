@@ -12,6 +12,7 @@ import json
 import os
 import shutil
 from collections import deque
+from collections.abc import Callable
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
@@ -21,7 +22,7 @@ import numpy as np
 import polars as pl
 
 import tracelab
-from tracelab.errors import UsageError
+from tracelab.errors import LogFormatError, UsageError
 from tracelab.format.reader import Block, Chunk, LogReader
 from tracelab.format.writer import LogHeader
 from tracelab.physics.bitlength import frame_bits, frame_durations_ns
@@ -221,50 +222,76 @@ def _check_paths(logs: list[Path]) -> None:
             raise UsageError(f"{path}: not readable (permission denied)")
 
 
-def _ingest_file(path: Path, sha: str, ds: Dataset, strict: bool, advance: object
+class _AlreadyIngested(Exception):
+    """The file's sha256 (computed alongside) is in the dataset: stop and skip it."""
+
+    def __init__(self, done_bytes: int) -> None:
+        super().__init__()
+        self.done_bytes = done_bytes
+
+
+def _ingest_file(path: Path, sha_future: Future[str], is_new: Callable[[str], bool],
+                 ds: Dataset, strict: bool, advance: Callable[[float], None]
                  ) -> tuple[FileSummary, Path]:
+    """Stage one file's parts. The sha256 is computed in parallel; once known, a file that is
+    already in the dataset stops early (_AlreadyIngested), so a re-run costs about a hash."""
     folder = ds.new_staging_dir()
-    with LogReader(path) as reader:
-        header = reader.header
-        summary = FileSummary(file=str(path), sha256=sha, bytes=path.stat().st_size,
-                              run=run_name(path, header), header=header,
-                              lines=reader.header_lines, header_lines=reader.header_lines)
-        parts = _PartWriter(folder, summary.run, summary.file)
+    done = 0
 
-        def work(index: int, block: Block) -> tuple[Chunk, dict[str, int]]:
-            chunk = reader.parse(block, strict)
-            counts = {table: getattr(chunk, table).height for table in schema.TABLES}
-            if counts["frames"]:
-                parts.write("frames", _with_physics(chunk.frames, header), index)
-            for table in ("errors", "status", "marks", "losses", "rejects"):
-                if counts[table]:
-                    parts.write(table, getattr(chunk, table), index)
-            chunk.frames = chunk.frames.clear()  # written: free it before the merge
-            return chunk, counts
+    def check_sha(wait: bool) -> None:
+        if (wait or sha_future.done()) and not is_new(sha_future.result()):
+            raise _AlreadyIngested(done)
 
-        done = 0
+    try:
+        with LogReader(path) as reader:
+            header = reader.header
+            summary = FileSummary(file=str(path), sha256="", bytes=path.stat().st_size,
+                                  run=run_name(path, header), header=header,
+                                  lines=reader.header_lines, header_lines=reader.header_lines)
+            parts = _PartWriter(folder, summary.run, summary.file)
 
-        def finish(future: Future[tuple[Chunk, dict[str, int]]]) -> None:
-            nonlocal done
-            chunk, counts = future.result()
-            reader.link(chunk)
-            summary.add(chunk, counts)
-            advance(chunk.bytes_read - done)  # type: ignore[operator]
-            done = chunk.bytes_read
+            def work(index: int, block: Block) -> tuple[Chunk, dict[str, int]]:
+                chunk = reader.parse(block, strict)
+                counts = {table: getattr(chunk, table).height for table in schema.TABLES}
+                if counts["frames"]:
+                    parts.write("frames", _with_physics(chunk.frames, header), index)
+                for table in ("errors", "status", "marks", "losses", "rejects"):
+                    if counts[table]:
+                        parts.write(table, getattr(chunk, table), index)
+                chunk.frames = chunk.frames.clear()  # written: free it before the merge
+                return chunk, counts
 
-        pending: deque[Future[tuple[Chunk, dict[str, int]]]] = deque()
-        with ThreadPoolExecutor(WORKERS, thread_name_prefix="tracelab-ingest") as pool:
-            try:
-                for index, block in enumerate(reader.blocks()):
-                    pending.append(pool.submit(work, index, block))
-                    while len(pending) > WORKERS:
+            def finish(future: Future[tuple[Chunk, dict[str, int]]]) -> None:
+                nonlocal done
+                chunk, counts = future.result()
+                reader.link(chunk)
+                summary.add(chunk, counts)
+                advance(chunk.bytes_read - done)
+                done = chunk.bytes_read
+                check_sha(wait=False)
+
+            pending: deque[Future[tuple[Chunk, dict[str, int]]]] = deque()
+            with ThreadPoolExecutor(WORKERS, thread_name_prefix="tracelab-ingest") as pool:
+                try:
+                    for index, block in enumerate(reader.blocks()):
+                        pending.append(pool.submit(work, index, block))
+                        while len(pending) > WORKERS:
+                            finish(pending.popleft())
+                    while pending:
                         finish(pending.popleft())
-                while pending:
-                    finish(pending.popleft())
-            finally:
-                for future in pending:
-                    future.cancel()
-        parts.close()
+                finally:
+                    for future in pending:
+                        future.cancel()
+            parts.close()
+        check_sha(wait=True)
+    except LogFormatError:
+        check_sha(wait=True)  # a file already ingested is skipped, even with --strict
+        shutil.rmtree(folder, ignore_errors=True)
+        raise
+    except BaseException:
+        shutil.rmtree(folder, ignore_errors=True)
+        raise
+    summary.sha256 = sha_future.result()
     if summary.lines != summary.header_lines + summary.records + summary.rejects:
         raise AssertionError(f"{path}: line reconciliation failed ({summary.reconciliation()})")
     return summary, folder
@@ -287,15 +314,20 @@ def ingest_logs(logs: list[Path] | list[str], dataset: Path | str, strict: bool 
     staged: dict[str, Path] = {}
     try:
         total = sum(p.stat().st_size for p in paths)
-        with progress("ingest", total=total, quiet=quiet) as advance:
+        with progress("ingest", total=total, quiet=quiet) as advance, \
+                ThreadPoolExecutor(1, thread_name_prefix="tracelab-sha256") as hasher:
             for path in paths:
-                sha = _sha256(path)
-                if sha in staged or (sha in known and not force):
+                def is_new(sha: str) -> bool:
+                    return sha not in staged and (force or sha not in known)
+
+                try:
+                    summary, folder = _ingest_file(path, hasher.submit(_sha256, path), is_new,
+                                                   ds, strict, advance)
+                except _AlreadyIngested as skip:
                     result.skipped.append(str(path))
-                    advance(path.stat().st_size)
+                    advance(path.stat().st_size - skip.done_bytes)
                     continue
-                summary, folder = _ingest_file(path, sha, ds, strict, advance)
-                staged[sha] = folder
+                staged[summary.sha256] = folder
                 result.files.append(summary)
         rows = pl.DataFrame([f.row() for f in result.files], schema=schema.MANIFEST)
         if staged or not ds.manifest_path.exists():  # all skipped: nothing to rewrite
