@@ -234,7 +234,7 @@ def _commit(fleet: Path, specs: list[RunSpec], logs: dict[str, LogFile],
     manifest = pl.DataFrame(manifest_rows, schema=MANIFEST, strict=False)
     layout.replace_atomically(fleet / layout.MANIFEST_FILE,
                               lambda tmp: manifest.write_parquet(tmp))
-    _collect_garbage(fleet, set(runs["key"].to_list()))
+    _collect_garbage(fleet, set(runs.filter(pl.col("status") == "ok")["key"].to_list()))
     return flags.height
 
 
