@@ -173,19 +173,21 @@ def _with_physics(frames: pl.DataFrame, header: LogHeader) -> pl.DataFrame:
         mask = (bus == decl.alias).to_numpy()
         if not mask.any():
             continue
-        whole = bool(mask.all())  # one bus in the chunk: no gathers
-        dur = frame_durations_ns(bits if whole else bits[mask],
-                                 data_phase if whole else data_phase[mask], decl.nominal_bps,
-                                 decl.data_bps)
-        t_bus = t_ns if whole else t_ns[mask]
+        # whole arrays and a select: cheaper than gathering and scattering the bus's frames
+        # (a bus without data= has no BRS frames, so its own data-phase bits are 0 and the
+        # data rate it is given here only touches other buses' frames, which are discarded)
+        dur = frame_durations_ns(bits, data_phase, decl.nominal_bps,
+                                 decl.data_bps or decl.nominal_bps)
+        begin = t_ns
         if decl.stamp == "end":  # t_ns is the end of EOF: the 3-bit intermission follows
             ifs_ns = frame_durations_ns(np.array([3]), np.array([0]), decl.nominal_bps,
                                         decl.data_bps)[0]
-            t_bus = t_bus - (dur - ifs_ns)
-        if whole:
-            duration, start = dur, t_bus
+            begin = t_ns - (dur - ifs_ns)
+        if mask.all():
+            duration, start = dur, begin
         else:
-            duration[mask], start[mask] = dur, t_bus
+            np.copyto(duration, dur, where=mask)
+            np.copyto(start, begin, where=mask)
     return frames.with_columns(
         bits=lengths["bits"].cast(pl.UInt16), duration_ns=pl.Series(duration),
         start_ns=pl.Series(start), end_ns=pl.Series(start + duration))
