@@ -124,11 +124,13 @@ def test_info_prints_runs_counts_rejects_and_backward_steps(
     assert "rejects: 1; backward time steps: 1" in out
     assert "run r7: 1 file(s)" in out and "vehicle utv-07" in out
     assert "bus C: nominal 500,000 bit/s, data 2,000,000 bit/s, stamp=end" in out
+    assert f"  file {log} (run r7): 7 lines, 1 rejects, first backward step at line 6" in out
     assert main(["info", str(tmp_path / "ds"), "--json"]) == 0
     import json
 
     info = json.loads(capsys.readouterr().out)
     assert info["totals"]["marks"] == 2 and info["runs"][0]["run"] == "r7"
+    assert info["files"][0]["file"] == str(log) and info["files"][0]["backward_steps"] == 1
 
 
 def test_info_on_a_plain_directory_is_one_line(tmp_path: Path,

@@ -22,10 +22,11 @@ class DatasetInfo:
     runs: list[dict[str, Any]]
     totals: dict[str, int]
     buses: list[dict[str, Any]]
+    files: list[dict[str, Any]]
 
     def as_dict(self) -> dict[str, Any]:
         return {"dataset": str(self.path), "runs": self.runs, "totals": self.totals,
-                "buses": self.buses}
+                "buses": self.buses, "files": self.files}
 
     def describe(self) -> str:
         t = self.totals
@@ -47,6 +48,11 @@ class DatasetInfo:
             out.append(f"run {run['run']}: {run['files']} file(s), {span}{origin}{vehicle}; "
                        f"{run['frames']:,} frames, {run['rejects']:,} rejects, "
                        f"{run['backward_steps']:,} backward steps")
+        for f in self.files:
+            back = (f", first backward step at line {f['first_backward_line']}"
+                    if f["first_backward_line"] is not None else "")
+            out.append(f"  file {f['file']} (run {f['run']}): {f['lines']:,} lines, "
+                       f"{f['rejects']:,} rejects{back}")
         return "\n".join(out)
 
 
@@ -69,5 +75,7 @@ def dataset_info(path: str | Path) -> DatasetInfo:
     for text in manifest["buses"].to_list():  # one per file: few
         for bus in json.loads(text):
             buses.setdefault(tuple(sorted(bus.items(), key=lambda kv: kv[0])), bus)
+    files = manifest.select("file", "run", "sha256", "bytes", "lines", "rejects",
+                            "backward_steps", "first_backward_line", "ingested_at").to_dicts()
     return DatasetInfo(path=Path(path), runs=per_run.to_dicts(), totals=totals,
-                       buses=sorted(buses.values(), key=lambda b: b["alias"]))
+                       buses=sorted(buses.values(), key=lambda b: b["alias"]), files=files)
