@@ -203,3 +203,19 @@ def test_status_records_agree_with_the_replay(tmp: Path) -> None:
     assert agreement["state_equal"] == agreement["records"]
     assert agreement["tec_equal"] == agreement["records"]
     assert agreement["rec_equal"] == agreement["records"]
+
+
+def test_sampled_bus_time_path_gives_the_same_verdict(tmp: Path,
+                                                      monkeypatch: pytest.MonkeyPatch) -> None:
+    from tracelab.forensics import replay
+
+    _run(tmp, "rx-noise", 1, False)
+    ds = tmp / "ds-rx-noise-1-0-0"
+    cat = load_catalog(tmp / "rx-noise-1-0-0.toml")
+    exact = replay_faults(open_dataset(ds).connect(), cat).as_json()["results"][0]
+    monkeypatch.setattr(replay, "SAMPLED_BY_ID_FRAMES", 0)
+    sampled = replay_faults(open_dataset(ds).connect(), cat).as_json()["results"][0]
+    assert sampled["cause"] == exact["cause"]
+    assert sampled["first_degraded"]["t_ns"] == exact["first_degraded"]["t_ns"]
+    assert sampled["nodes"] == exact["nodes"]
+    assert sampled["evidence"]["frames"] == exact["evidence"]["frames"]

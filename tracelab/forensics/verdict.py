@@ -89,10 +89,10 @@ class FaultsResult:
 def _origin(con: duckdb.DuckDBPyConnection, run: str) -> str | None:
     try:
         row = con.execute("SELECT origin FROM manifest WHERE run = ? AND origin IS NOT NULL "
-                          "ORDER BY first_t_ns LIMIT 1", [run]).fetchone()
+                          "ORDER BY first_t_ns LIMIT 1", [run]).fetchall()
     except duckdb.Error:
         return None
-    return str(row[0]) if row and row[0] is not None else None
+    return str(row[0][0]) if row and row[0][0] is not None else None
 
 
 def _catalog_keys(catalog: CatalogLike, bus: str, nodes: list[str]
