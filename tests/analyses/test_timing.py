@@ -182,3 +182,12 @@ def test_cycle_index_blocks_do_not_change_results(monkeypatch: pytest.MonkeyPatc
     for block in (1, 2, 7, 64, 4096):
         monkeypatch.setattr(module, "CYCLE_BLOCK", block)
         _check(timing(con).timing.row(0, named=True), reference(t, None))
+
+
+def test_duplicate_timestamps_are_not_a_period() -> None:
+    t = np.repeat(np.arange(10) * 1_000_000, 3)  # every frame logged three times
+    con = connect_tables(frames_table(np.full(20, 5_000), 0x9))  # all at the same time
+    row = timing(con).timing.row(0, named=True)
+    assert row["count"] == 20 and row["period_ns"] is None
+    row = timing(connect_tables(frames_table(t, 0xA))).timing.row(0, named=True)
+    assert row["period_ns"] is None  # two thirds of the inter-arrivals are 0: not stable

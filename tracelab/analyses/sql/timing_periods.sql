@@ -4,7 +4,8 @@
 --   identifier not in the catalog  -> inferred: m0 = median of all inter-arrivals; the period
 --     is the median of the inter-arrivals within [0.5, gap_factor] x m0 (gaps and bursts
 --     ignored), rounded to the nanosecond. Stable (periodic) when the stream has at least
---     4 inter-arrivals and at least 80 % of them lie in that band; else event-driven.
+--     4 inter-arrivals, at least 80 % of them lie in that band and the period is at least
+--     1 ns (not a stream of duplicates); else event-driven.
 -- Needs tl_arrivals, tl_streams and tl_catalog(bus, id, ext, name, sender, period_ns).
 CREATE OR REPLACE TEMP TABLE tl_periods AS
 WITH raw AS (
@@ -28,7 +29,7 @@ band AS (
 SELECT n.g, n.run, n.bus, n.id, n.ext, n.frames, n.t0_ns, n.name, n.sender,
        n.m0_ns AS median_ns, n.mean_ns, n.min_ns, n.max_ns,
        CASE WHEN n.in_catalog THEN n.catalog_period_ns
-            WHEN n.n_dt >= 4 AND coalesce(b.n_band, 0) >= 0.8 * n.n_dt
+            WHEN n.n_dt >= 4 AND coalesce(b.n_band, 0) >= 0.8 * n.n_dt AND b.m1_ns >= 1
                 THEN round(b.m1_ns)::BIGINT
        END AS period_ns,
        CASE WHEN n.in_catalog THEN 'catalog' ELSE 'inferred' END AS period_source
