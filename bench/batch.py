@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import argparse
 import os
+import resource
 import shutil
 import tempfile
 import time
@@ -86,10 +87,14 @@ def timed(root: Path, work: Path, name: str, **options: object) -> float:
 
     fleet = work / name
     shutil.rmtree(fleet, ignore_errors=True)
+    before = resource.getrusage(resource.RUSAGE_CHILDREN)
     start = time.perf_counter()
     summary = workflow.batch(root, fleet, quiet=True, **options)  # type: ignore[arg-type]
     seconds = time.perf_counter() - start
-    print(f"{name:>8}: {seconds:6.1f} s  ({summary.describe().splitlines()[0]})", flush=True)
+    after = resource.getrusage(resource.RUSAGE_CHILDREN)
+    cpu_s = (after.ru_utime + after.ru_stime) - (before.ru_utime + before.ru_stime)
+    print(f"{name:>8}: {seconds:6.1f} s wall, {cpu_s:6.1f} s worker CPU "
+          f"({summary.describe().splitlines()[0]})", flush=True)
     if summary.failed:
         print(summary.describe())
     return seconds
