@@ -12,7 +12,6 @@ import sys
 from pathlib import Path
 from typing import Any
 
-import click
 import typer
 
 from tracelab.errors import EXIT_INTERNAL, EXIT_USAGE, TracelabError
@@ -178,18 +177,19 @@ def batch(
 
 
 def main(argv: list[str] | None = None) -> int:
-    """Entry point: one line and a documented exit code for every user error."""
+    """Entry point: one line and a documented exit code for every user error.
+
+    typer (in standalone mode) reports usage errors itself and exits 2; our own errors and
+    bugs propagate out of it and are turned into one line here.
+    """
     try:
-        result = app(args=argv, standalone_mode=False)
+        app(args=argv, prog_name="tracelab")
+    except SystemExit as stop:
+        code = stop.code
+        return code if isinstance(code, int) else (0 if code is None else EXIT_USAGE)
     except TracelabError as error:
         typer.echo(f"tracelab: {error}", err=True)
         return error.exit_code
-    except click.exceptions.UsageError as error:
-        error.show()
-        return EXIT_USAGE
-    except click.exceptions.Abort:
-        typer.echo("tracelab: interrupted", err=True)
-        return 130
     except KeyboardInterrupt:
         typer.echo("tracelab: interrupted", err=True)
         return 130
@@ -199,7 +199,7 @@ def main(argv: list[str] | None = None) -> int:
         typer.echo(f"tracelab: internal error: {type(error).__name__}: {error} "
                    "(set TRACELAB_DEBUG=1 for a traceback)", err=True)
         return EXIT_INTERNAL
-    return result if isinstance(result, int) else 0
+    return 0
 
 
 if __name__ == "__main__":
