@@ -761,7 +761,6 @@ class LogTables:
     header_lines: int = 0
     other_lines: int = 0
     backward_steps: int = 0
-    extra: dict[str, object] = field(default_factory=dict)
 
 
 def read_log(path: str | Path, strict: bool = False, fast: bool = True) -> LogTables:
