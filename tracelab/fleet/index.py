@@ -21,7 +21,9 @@ h2 { font-size: 16px; margin: 28px 0 8px; font-weight: 600; }
 main { padding: 4px 28px 40px; }
 .muted { color: #6b6e70; }
 table { border-collapse: collapse; background: #fff; border: 1px solid #dedcd5; }
-th, td { padding: 5px 10px; border-bottom: 1px solid #ebe9e3; text-align: left; }
+th, td { padding: 5px 10px; border-bottom: 1px solid #ebe9e3; text-align: left;
+         white-space: nowrap; }
+td.reason { white-space: normal; max-width: 36em; overflow-wrap: anywhere; color: #6e3b2a; }
 th { background: #f1f0ec; font-weight: 600; }
 td.num { text-align: right; font-variant-numeric: tabular-nums; }
 tr.failed td { background: #fbf1ee; }
@@ -35,12 +37,24 @@ _COLUMNS = ("vehicle", "date", "run", "status", "frames", "missing", "errors", "
             "confidence", "regressions")
 
 
-def _cell(name: str, value: Any) -> str:
+def _number(name: str, value: float, metric: str | None = None) -> str:
+    """Numbers in the unit a reader expects: percent load, microseconds of jitter."""
+    if name.endswith("_ratio"):
+        return f"{value:.1%}"
+    if metric == "jitter_p99_ns":
+        return f"{value / 1000:,.1f} us"
+    if metric == "abs_drift_ppm":
+        return f"{value:,.0f} ppm"
+    if name == "confidence":
+        return f"{value:.2f}"
+    return f"{value:,.0f}" if float(value).is_integer() else f"{value:,.3g}"
+
+
+def _cell(name: str, value: Any, metric: str | None = None) -> str:
     if value is None:
         return '<td class="muted">-</td>'
     if isinstance(value, float):
-        text = f"{value:.1%}" if name.endswith("_ratio") else f"{value:.3g}"
-        return f'<td class="num">{html.escape(text)}</td>'
+        return f'<td class="num">{html.escape(_number(name, value, metric))}</td>'
     if isinstance(value, int) and not isinstance(value, bool):
         css = ' class="num flag"' if name == "regressions" and value else ' class="num"'
         return f"<td{css}>{value}</td>"
@@ -48,16 +62,18 @@ def _cell(name: str, value: Any) -> str:
 
 
 def _runs_table(runs: pl.DataFrame) -> str:
-    head = "".join(f"<th>{html.escape(c)}</th>" for c in (*_COLUMNS, "report / reason"))
+    lead, rest = _COLUMNS[:4], _COLUMNS[4:]
+    head = "".join(f"<th>{html.escape(c)}</th>" for c in (*lead, "report / reason", *rest))
     rows = []
     for row in runs.iter_rows(named=True):  # one row per run, not per frame
-        cells = "".join(_cell(c, row.get(c)) for c in _COLUMNS)
         if row["status"] == "ok" and row.get("report"):
             link = f'<td><a href="{html.escape(row["report"], quote=True)}">report</a></td>'
         else:
-            link = f'<td>{html.escape(row.get("reason") or "")}</td>'
+            link = f'<td class="reason">{html.escape(row.get("reason") or "")}</td>'
+        cells = ("".join(_cell(c, row.get(c)) for c in lead) + link
+                 + "".join(_cell(c, row.get(c)) for c in rest))
         css = ' class="failed"' if row["status"] != "ok" else ""
-        rows.append(f"<tr{css}>{cells}{link}</tr>")
+        rows.append(f"<tr{css}>{cells}</tr>")
     return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(rows)}</tbody></table>"
 
 
@@ -67,7 +83,7 @@ def _flags_table(flags: pl.DataFrame) -> str:
     cols = ("vehicle", "date", "run", "bus", "name", "metric", "value", "baseline", "history")
     head = "".join(f"<th>{c}</th>" for c in cols)
     body = "".join(
-        "<tr>" + "".join(_cell(c, r.get(c)) for c in cols) + "</tr>"
+        "<tr>" + "".join(_cell(c, r.get(c), r["metric"]) for c in cols) + "</tr>"
         for r in flags.iter_rows(named=True))  # flags are rare
     return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
 
@@ -94,7 +110,7 @@ def _trend_chart(vehicle: str, runs: pl.DataFrame, flags: pl.DataFrame) -> str:
                              name="errors", line={"color": "#8c7b5b"}), row=2, col=1)
     fig.add_trace(go.Scatter(x=labels, y=ok["max_load_ratio"].to_list(), mode="lines+markers",
                              name="max load", line={"color": "#6b8c5b"}), row=3, col=1)
-    fig.update_yaxes(tickformat=".0%", row=3, col=1)
+    fig.update_yaxes(tickformat=".1%", row=3, col=1)
     fig.update_layout(height=520, margin={"l": 50, "r": 20, "t": 40, "b": 40},
                       paper_bgcolor="#ffffff", plot_bgcolor="#fafaf8", showlegend=False,
                       font={"family": "system-ui, sans-serif", "size": 12, "color": "#26292c"})
