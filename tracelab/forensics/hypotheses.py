@@ -47,6 +47,9 @@ STATUS_CAP = 10.0
 #: Prior weight of the whole-bus explanation (the rest is split over node hypotheses).
 PRIOR_BUS = 0.5
 MIN_ERRORS = 3
+#: A node hypothesis must change an error rate by at least this factor against the rest of
+#: the bus; smaller differences come from frame lengths, arbitration and the noise model.
+RATE_MARGIN = 2.0
 #: ACK errors a lone transmitter needs to go from TEC 0 to error-passive (16 x 8 = 128).
 PASSIVE_ATTEMPTS = 16
 
@@ -304,8 +307,8 @@ def score(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Silence]) -> N
             own_exp = node_busy[n] + k_own * node_mean[n]
             rate = (_poisson(k_own, own_exp) + _poisson(n_err - k_own, exposure - own_exp)
                     - 2 * penalty)
-            if k_own * (exposure - own_exp) <= (n_err - k_own) * own_exp:
-                rate = -math.inf  # its frames fail no more often than the others': not it
+            if k_own * (exposure - own_exp) <= RATE_MARGIN * (n_err - k_own) * own_exp:
+                rate = -math.inf  # its frames fail not clearly more often than the others'
             if h.kind == "isolation":
                 lp = np.where(mine, np.where(ack, math.log(1 - EPS), math.log(EPS)),
                               lp_type_other) + lp_by_uniform
@@ -327,8 +330,8 @@ def score(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Silence]) -> N
             act_exp = max(exposure - pown_exp - poth_exp, 1.0)
             rate = (_poisson(k_act, act_exp) + _poisson(k_pown, pown_exp)
                     + _poisson(k_poth, poth_exp) - 3 * penalty)
-            if k_poth * act_exp >= k_act * poth_exp and poth_exp > 0:
-                rate = -math.inf  # errors on others' frames did not drop: not a receive fault
+            if RATE_MARGIN * k_poth * act_exp >= k_act * poth_exp and poth_exp > 0:
+                rate = -math.inf  # errors on others' frames did not clearly drop
             lp_by = np.where(attributed & ~passive & (tx != n),
                              np.where(by == n, math.log(0.9), math.log(0.1 / n_nodes)),
                              lp_by_uniform)

@@ -13,6 +13,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import duckdb
+import numpy as np
 import polars as pl
 
 from tracelab.forensics.hypotheses import (
@@ -272,7 +273,8 @@ def _why(ev: BusEvidence, h: Hypothesis, best: Hypothesis) -> str:
     n_err = facts.get("errors", 0)
     name = ev.nodes[h.node] if h.node is not None else None
     if h.kind == "bus-disturbance":
-        text = f"errors spread over senders by bus time; {n_err} errored frames with a known sender"
+        text = (f"errors spread over senders by bus time; {n_err} errored frames with a known "
+                "sender" + _spread(ev))
     elif h.kind == "transmit-fault":
         text = (f"errors on {name}'s frames only: {facts['own_errors']} of {n_err} were "
                 f"({facts['own_frames']} good frames of its own)")
@@ -289,19 +291,35 @@ def _why(ev: BusEvidence, h: Hypothesis, best: Hypothesis) -> str:
         rep = h.replays[h.node] if h.node is not None else None
         tr = rep.first_degradation() if rep else None
         reach = f"reaches {tr['to']} at {tr['t_ns'] / 1e9:.6f} s" if tr else "never degrades"
-        text = (f"{name} as first detector {reach}; while it was error-passive "
-                f"{facts.get('after_passive_own', 0)} of {facts.get('after_passive', 0)} "
-                f"errors fell on its own frames (predicted: all) over "
-                f"{facts.get('passive_frames', 0)} frames")
+        text = f"{name} as first detector {reach}"
+        if facts.get("passive_frames", 0) or facts.get("after_passive", 0):
+            text += (f"; while it was error-passive {facts.get('after_passive_own', 0)} of "
+                     f"{facts.get('after_passive', 0)} errors fell on its own frames "
+                     f"(predicted: all) over {facts.get('passive_frames', 0)} frames")
+        else:
+            text += ", so it predicts nothing the whole-bus explanation does not"
     else:
         text = f"{name} fell silent with no errors explaining it"
     parts = ", ".join(f"{k} {v:.1f}" for k, v in h.parts.items() if v)
     if not math.isfinite(h.loglik):
-        return text + "; ruled out: its error pattern is the opposite of what it predicts"
+        return text + "; ruled out: the error rates do not differ by the factor it predicts"
     text += f"; log-likelihood {h.loglik:.1f}" + (f" ({parts})" if parts else "")
     if h is not best:
         text += f", {best.loglik + _log(best.prior) - h.loglik - _log(h.prior):.1f} below the best"
     return text
+
+
+def _spread(ev: BusEvidence) -> str:
+    """'; most on X: k of n errors for p % of the bus time' (the sender furthest above its
+    share)."""
+    tx = ev.events.filter(pl.col("kind") == KIND_ERROR)["tx"].to_numpy()
+    tx = tx[tx >= 0]
+    if tx.size == 0 or not ev.nodes:
+        return ""
+    counts = np.bincount(tx, minlength=len(ev.nodes))
+    n = int(np.argmax(counts / tx.size - ev.share))
+    return (f"; most above its share: {ev.nodes[n]} with {int(counts[n])} of {tx.size} errors "
+            f"for {ev.share[n]:.0%} of the bus time")
 
 
 def _log(x: float) -> float:
