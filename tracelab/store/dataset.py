@@ -69,10 +69,10 @@ class Dataset:
         """The runs in the dataset, sorted."""
         return sorted(self.manifest()["run"].unique().drop_nulls().to_list())
 
-    def part_files(self, table: str) -> list[Path]:
+    def part_files(self, table: str, shas: list[str] | None = None) -> list[Path]:
         """The Parquet files of ``table`` in the part folders the manifest lists."""
         files: list[Path] = []
-        for sha in self.manifest()["sha256"].to_list():
+        for sha in self.manifest()["sha256"].to_list() if shas is None else shas:
             folder = self.path / PARTS_DIR / sha16(sha) / table
             files.extend(sorted(folder.glob("*.parquet"), key=lambda p: int(p.stem)))
         return files
@@ -93,8 +93,9 @@ class Dataset:
             con = duckdb.connect(":memory:")
             if threads := os.environ.get("TRACELAB_THREADS"):  # a batch worker's share of cores
                 con.execute(f"SET threads = {int(threads)}")
+            shas = self.manifest()["sha256"].to_list()
             for table in schema.TABLES:
-                files = self.part_files(table)
+                files = self.part_files(table, shas)
                 if files:
                     listing = ", ".join(_sql_str(str(f)) for f in files)
                     con.execute(f"CREATE VIEW {table} AS SELECT * FROM read_parquet([{listing}])")
