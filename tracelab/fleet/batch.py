@@ -26,6 +26,7 @@ from tracelab.errors import UsageError, did_you_mean
 from tracelab.fleet import layout
 from tracelab.fleet.discover import LogFile, RunSpec, describe_log, find_logs, group_runs
 from tracelab.fleet.executors import EXECUTORS, DaskExecutor, LocalExecutor, make_executor
+from tracelab.fleet.index import ensure_plotly
 from tracelab.fleet.job import PipelineSteps, RunResult, failed_result, process_run
 from tracelab.fleet.summary import runs_frame
 
@@ -146,6 +147,7 @@ def run_batch(root: Path, fleet: Path, steps: PipelineSteps, catalog: Path | Non
         todo = [s for s in specs if s.key not in done]
         results: dict[str, RunResult] = {}
         if todo:
+            ensure_plotly(fleet)
             pool = executor if not isinstance(executor, str) else make_executor(
                 executor, scheduler, workers)
             try:

@@ -10,8 +10,7 @@ from typing import Any
 import polars as pl
 
 from tracelab.fleet import layout
-
-PLOTLY_FILE = "plotly.min.js"
+from tracelab.report.page import PLOTLY_FILE  # the same shared file name as run reports
 
 _STYLE = """
 body { font: 14px/1.45 system-ui, sans-serif; margin: 0; color: #26292c; background: #f6f6f4; }
@@ -118,14 +117,20 @@ def _trend_chart(vehicle: str, runs: pl.DataFrame, flags: pl.DataFrame) -> str:
     return fig.to_html(full_html=False, include_plotlyjs=False, div_id=div_id)
 
 
-def write_index(fleet: Path, runs: pl.DataFrame, flags: pl.DataFrame) -> Path:
-    """Write FLEET/index.html (and plotly.js once beside it)."""
-    import plotly.offline
-
+def ensure_plotly(fleet: Path) -> Path:
+    """plotly.js once per fleet (the index uses it; run reports hard-link it)."""
     script = fleet / PLOTLY_FILE
     if not script.exists():
+        import plotly.offline
+
         js = plotly.offline.get_plotlyjs()
         layout.replace_atomically(script, lambda tmp: tmp.write_text(js, encoding="utf-8"))
+    return script
+
+
+def write_index(fleet: Path, runs: pl.DataFrame, flags: pl.DataFrame) -> Path:
+    """Write FLEET/index.html (and plotly.js once beside it)."""
+    ensure_plotly(fleet)
     ordered = runs.sort("vehicle", "date", "origin", "run", nulls_last=False)
     failed = ordered.filter(pl.col("status") != "ok").height
     charts = []

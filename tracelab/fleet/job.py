@@ -9,6 +9,8 @@ returns the finished record, so it neither loses nor duplicates data.
 
 from __future__ import annotations
 
+import contextlib
+import os
 import shutil
 import time
 import uuid
@@ -99,6 +101,7 @@ def _run_pipeline(spec: RunSpec, fleet: Path, staging: Path, steps: PipelineStep
         faults_json = steps.faults(dataset, catalog=catalog).as_json()
     report_dir = staging / "report"
     report_dir.mkdir()
+    _link_plotly(fleet, report_dir)
     reports = steps.report(dataset, report_dir / f"{spec.part}.html", catalog=catalog,
                            shared_plotly=True)
     con = open_dataset(dataset).connect()
@@ -118,6 +121,15 @@ def _run_pipeline(spec: RunSpec, fleet: Path, staging: Path, steps: PipelineStep
     if faults_json is not None:
         layout.write_json(report_target.with_name(f"{spec.part}.faults.json"), faults_json)
     return row
+
+
+def _link_plotly(fleet: Path, folder: Path) -> None:
+    """Hard-link the fleet's plotly.js beside the staged report, so the report step finds it
+    there and does not write its 3.5 MB again for every run."""
+    from tracelab.fleet.index import PLOTLY_FILE
+
+    with contextlib.suppress(OSError):  # no shared copy yet, or links unsupported: harmless
+        os.link(fleet / PLOTLY_FILE, folder / PLOTLY_FILE)
 
 
 def _publish_report(reports: Any, target: Path) -> str | None:
