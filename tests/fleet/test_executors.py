@@ -83,3 +83,26 @@ def test_executor_choices() -> None:
     with pytest.raises(UsageError, match="unknown executor"):
         make_executor("spark")
     assert threads_per_worker(1) >= threads_per_worker(64) == 1
+
+
+def test_existing_scheduler(small_fleet: Fleet, tmp_path: Path) -> None:
+    from distributed import LocalCluster
+
+    root = tmp_path / "logs"
+    shutil.copytree(small_fleet.root / "birch" / "2026-11-03", root / "birch" / "2026-11-03")
+    shutil.copy(small_fleet.root / "birch" / "catalog.toml", root / "birch")
+    with LocalCluster(n_workers=1, threads_per_worker=1, processes=True, host="127.0.0.1",
+                      dashboard_address=None) as cluster:
+        result = run_batch(root, tmp_path / "fleet", STEPS, executor="dask",
+                           scheduler=cluster.scheduler_address, quiet=True)
+    assert (result.processed, result.failed) == (1, 0), result.describe()
+    got = pl.read_parquet(tmp_path / "fleet" / "runs.parquet")
+    want = connect_fleet(small_fleet.fleet).sql(
+        "SELECT * FROM runs WHERE run = 'birch-03'").pl()
+    for column in ("key", "frames", "missing", "errors", "first_degraded_node", "cause_kind"):
+        assert got[column].to_list() == want[column].to_list(), column
+
+
+def test_unreachable_scheduler_is_a_usage_error(tmp_path: Path) -> None:
+    with pytest.raises(UsageError, match="cannot reach the Dask scheduler"):
+        DaskExecutor("tcp://127.0.0.1:9", workers=None, timeout_s=1)

@@ -80,14 +80,15 @@ class DaskExecutor:
 
     name = "dask"
 
-    def __init__(self, scheduler: str | None = None, workers: int | None = None) -> None:
+    def __init__(self, scheduler: str | None = None, workers: int | None = None,
+                 timeout_s: float = 20.0) -> None:
         from distributed import Client, LocalCluster
 
         self.cluster: Any = None
         self.scheduler = scheduler
         try:
             if scheduler:
-                self.client = Client(scheduler, timeout="20s")
+                self.client = Client(scheduler, timeout=f"{timeout_s}s")
             else:
                 n = workers or DASK_LOCAL_WORKERS
                 threads = threads_per_worker(n)
