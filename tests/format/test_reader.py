@@ -200,11 +200,13 @@ def test_fast_and_exact_paths_give_the_same_tables(tmp_path: Path, bad: str | No
 
 
 def test_valid_chunks_take_the_fast_path(tmp_path: Path) -> None:
-    path = _write(tmp_path, HEADER + "\n".join(VARIETY) + "\n")
-    body = "\n".join(VARIETY).encode() + b"\n"
+    plain = [line for line in VARIETY if line != "\t"]  # a TAB-only line goes the exact way
+    path = _write(tmp_path, HEADER + "\n".join(plain) + "\n")
+    body = "\n".join(plain).encode() + b"\n"
     with LogReader(path) as reader:
         chunk = reader._chunk_fast(body, 4)
-    assert chunk is not None and chunk.frames.height == 4 and chunk.other_lines == 3
+        assert reader._chunk_fast(body + b"\t\n", 4) is None
+    assert chunk is not None and chunk.frames.height == 4 and chunk.other_lines == 2
     with LogReader(path) as reader:  # one bad line sends the chunk to the exact path
         assert reader._chunk_fast(body + b"5\tQ\tmark\tx\n", 4) is None
 
