@@ -222,7 +222,8 @@ def export_tables(con: duckdb.DuckDBPyConnection, out: Path,
         select = ", ".join(f'"{c}"' for c in keep)
         table = _RENAMED.get(view, view)
         target = out / f"{table}.parquet"
-        con.execute(f'COPY (SELECT {select} FROM "{view}" ORDER BY {order}) TO '
-                    f"'{target}' (FORMAT parquet, COMPRESSION zstd)")
+        quoted = "'" + str(target).replace("'", "''") + "'"
+        con.execute(f'COPY (SELECT {select} FROM "{view}" ORDER BY {order}) TO {quoted} '
+                    "(FORMAT parquet, COMPRESSION zstd)")
         tables[table] = target
     return tables
