@@ -7,7 +7,7 @@ from pathlib import Path
 import polars as pl
 import pytest
 
-from tracelab.errors import StoreError, UsageError
+from tracelab.errors import UsageError
 from tracelab.store import schema
 from tracelab.store.dataset import create_or_open, open_dataset
 
@@ -31,7 +31,7 @@ def _stage(ds, run: str, t_ns: int) -> Path:
 
 
 def test_open_dataset_refuses_a_plain_directory(tmp_path: Path) -> None:
-    with pytest.raises(StoreError, match="not a tracelab dataset"):
+    with pytest.raises(UsageError, match="not a tracelab dataset"):
         open_dataset(tmp_path)
 
 

@@ -207,10 +207,10 @@ def is_dataset(path: str | Path) -> bool:
 
 
 def open_dataset(path: str | Path) -> Dataset:
-    """Open an existing dataset; StoreError when ``path`` is not one."""
+    """Open an existing dataset; a path that is not one is the user's mistake (UsageError, exit 2)."""
     path = Path(path)
     if not is_dataset(path):
-        raise StoreError(f"{path}: not a tracelab dataset (no {MANIFEST_FILE}; "
+        raise UsageError(f"{path}: not a tracelab dataset (no {MANIFEST_FILE}; "
                          "create one with 'tracelab ingest LOG -o DATASET')")
     return Dataset(path)
 
