@@ -19,6 +19,13 @@ EXECUTORS = ("local", "dask")
 #: Worker processes of the LocalCluster started when --executor dask has no --scheduler.
 DASK_LOCAL_WORKERS = 2
 
+#: Dask settings of the LocalCluster: no profiler, no GIL monitor, slower system monitor.
+LOCAL_CLUSTER_CONFIG = {
+    "distributed.worker.profile.enabled": False,
+    "distributed.admin.system-monitor.gil.enabled": False,
+    "distributed.admin.system-monitor.interval": "2s",
+}
+
 Outcome = tuple[Any, Any, BaseException | None]
 
 
@@ -90,12 +97,18 @@ class DaskExecutor:
             if scheduler:
                 self.client = Client(scheduler, timeout=f"{timeout_s}s")
             else:
+                import dask
+
                 n = workers or DASK_LOCAL_WORKERS
                 threads = threads_per_worker(n)
-                self.cluster = LocalCluster(
-                    n_workers=n, threads_per_worker=1, processes=True, host="127.0.0.1",
-                    dashboard_address=None, silence_logs=50,
-                    env={"TRACELAB_THREADS": str(threads), "POLARS_MAX_THREADS": str(threads)})
+                # the workers' statistical profiler samples every 10 ms and takes the GIL from
+                # the run it profiles; nobody reads those profiles without a dashboard
+                with dask.config.set(LOCAL_CLUSTER_CONFIG):
+                    self.cluster = LocalCluster(
+                        n_workers=n, threads_per_worker=1, processes=True, host="127.0.0.1",
+                        dashboard_address=None, silence_logs=50,
+                        env={"TRACELAB_THREADS": str(threads),
+                             "POLARS_MAX_THREADS": str(threads)})
                 self.client = Client(self.cluster)
         except OSError as error:  # unreachable scheduler, port trouble
             self.close()
