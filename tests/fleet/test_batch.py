@@ -84,3 +84,15 @@ def test_usage_errors_are_one_line(tmp_path: Path, capsys: object) -> None:
     (tmp_path / "logs").mkdir()
     assert main(["batch", str(tmp_path / "logs"), "-o", str(tmp_path / "f"),
                  "--executor", "spark"]) == 2
+
+
+def test_empty_root_gives_an_empty_fleet(tmp_path: Path) -> None:
+    from tracelab.fleet.views import connect_fleet
+
+    (tmp_path / "logs").mkdir()
+    summary = run_batch(tmp_path / "logs", tmp_path / "fleet", STEPS, quiet=True)
+    assert (summary.runs, summary.processed, summary.failed) == (0, 0, 0)
+    con = connect_fleet(tmp_path / "fleet")
+    assert con.execute("SELECT count(*) FROM frames").fetchall() == [(0,)]
+    assert "vehicle" in con.sql("SELECT * FROM frames").columns
+    assert con.execute("SELECT count(*) FROM runs").fetchall() == [(0,)]
