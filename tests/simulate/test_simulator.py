@@ -5,6 +5,9 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
+import pytest
+
+from tracelab.errors import CatalogError
 from tracelab.simulate import load_scenario, simulate, truth_path
 
 SCENARIO = """
@@ -131,3 +134,17 @@ def test_cli_simulate_and_bad_input(tmp_path: Path, capsys) -> None:  # type: ig
     assert main(["simulate", str(bad), "-o", str(out)]) == 3
     err = capsys.readouterr().err.strip()
     assert err.count("\n") == 0 and "[fault 1] unknown fault kind 'rx-nose'" in err
+
+
+def test_run_meta_reaches_the_log_header(tmp_path: Path) -> None:
+    text = SCENARIO.replace("[run]\n", '[run]\nmeta = { vehicle = "utv-03", site = "north-loop" }\n', 1)
+    out = tmp_path / "run.frames"
+    simulate(load_scenario(scenario_file(tmp_path, text)), out, quiet=True)
+    meta = next(line for line in out.read_text().splitlines() if line.startswith("%meta"))
+    assert meta.startswith("%meta run=smoke vehicle=utv-03 site=north-loop seed=5")
+
+
+def test_run_meta_must_be_words(tmp_path: Path) -> None:
+    text = SCENARIO.replace("[run]\n", '[run]\nmeta = { vehicle = "utv 03" }\n', 1)
+    with pytest.raises(CatalogError, match=r"\[run\] meta vehicle must be one word"):
+        load_scenario(scenario_file(tmp_path, text))

@@ -17,6 +17,7 @@ from tracelab.format.grammar import (
     HEX_ID_RE,
     MAX_BASE_ID,
     MAX_EXTENDED_ID,
+    META_KEY_RE,
     ORIGIN_RE,
     parse_form,
 )
@@ -31,7 +32,7 @@ from tracelab.network.catalog import (
 
 FAULT_KINDS = ("rx-noise", "tx-noise", "isolated", "bus-noise", "silent", "babble", "drift",
                "logger-loss")
-RUN_KEYS = ("name", "duration", "seed", "origin", "status_every", "attribute_errors")
+RUN_KEYS = ("name", "duration", "seed", "origin", "status_every", "attribute_errors", "meta")
 LOGGER_KEYS = ("ack",)
 MARK_KEYS = ("at", "text", "bus")
 #: Keys each fault kind accepts besides kind, start, end.
@@ -48,6 +49,8 @@ FAULT_KEYS: dict[str, tuple[str, ...]] = {
 PAYLOAD_KINDS = ("counter", "random", "constant")
 DEFAULT_DURATION_NS = 60_000_000_000
 MAX_DRIFT_PPM = 10_000.0
+#: %meta keys the simulator writes itself.
+RESERVED_META = ("run", "seed", "source", "version")
 
 
 @dataclass(frozen=True)
@@ -59,6 +62,8 @@ class RunSpec:
     status_every_ns: int | None
     attribute_errors: bool
     logger_ack: bool
+    #: Extra ``%meta`` of the log (vehicle, site, ...), in written order.
+    meta: tuple[tuple[str, str], ...] = ()
 
 
 @dataclass(frozen=True)
@@ -180,7 +185,23 @@ def _load_run(path: str, raw: Any, file: Path, logger: Any) -> RunSpec:
     if not isinstance(attribute, bool):
         raise CatalogError(path, "run", "attribute_errors must be true or false")
     return RunSpec(name, duration or DEFAULT_DURATION_NS, seed, origin, status_every, attribute,
-                   _load_logger(path, logger))
+                   _load_logger(path, logger), _load_meta(path, table.get("meta", {})))
+
+
+def _load_meta(path: str, raw: Any) -> tuple[tuple[str, str], ...]:
+    """``[run] meta = { vehicle = "utv-03" }``: words for the log's ``%meta`` line."""
+    if not isinstance(raw, dict):
+        raise CatalogError(path, "run", "meta must be a table such as { vehicle = \"utv-03\" }")
+    out = []
+    for key, value in raw.items():
+        if not META_KEY_RE.match(key) or key in RESERVED_META:
+            raise CatalogError(path, "run", f"meta key {key!r} must match [a-z0-9_]+ and not be "
+                               f"one of {', '.join(RESERVED_META)}")
+        if not isinstance(value, str | int | float) or isinstance(value, bool) or not str(value) \
+                or any(c.isspace() for c in str(value)):
+            raise CatalogError(path, "run", f"meta {key} must be one word without spaces")
+        out.append((key, str(value)))
+    return tuple(out)
 
 
 def _load_logger(path: str, raw: Any) -> bool:

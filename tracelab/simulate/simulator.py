@@ -251,8 +251,8 @@ def simulate(scenario: Scenario, out_path: str | Path, duration_ns: int | None =
         buses=[BusDecl(b.alias, b.nominal_bps, b.data_bps, b.stamp, b.name)
                for b in scenario.catalog.buses.values()],
         origin=scenario.run.origin,
-        meta={"run": scenario.run.name, "seed": str(seed), "source": "tracelab-simulate",
-              "version": tracelab_version},
+        meta={"run": scenario.run.name, **dict(scenario.run.meta), "seed": str(seed),
+              "source": "tracelab-simulate", "version": tracelab_version},
     )
     with LogWriter(out_path, header) as writer:
         for offset in range(0, len(order), WRITE_CHUNK):
