@@ -226,7 +226,7 @@ class BusEngine:
                 ev.append((end, 0, "noise-off", noise))
             elif f.kind == "isolated":
                 assert f.node is not None
-                ev.append((f.start_ns, 1, "isolate", self.index[f.node]))
+                ev.append((f.start_ns, 1, "isolate", (self.index[f.node], end)))
                 ev.append((end, 0, "rejoin", self.index[f.node]))
         every = self.sc.run.status_every_ns
         if every:
@@ -269,7 +269,7 @@ class BusEngine:
             elif kind == "noise-off":
                 self.active.remove(arg)
             elif kind == "isolate":
-                self._isolate(arg, t_ev, pending)
+                self._isolate(arg[0], t_ev, pending, until_ns=arg[1])
             elif kind == "rejoin":
                 self.isolated[arg] = False
         self._recompute()
@@ -313,8 +313,9 @@ class BusEngine:
             self.rec_run_start[n] = start
             self.rec_time[n] = self._recovery_due(n)
 
-    def _isolate(self, n: int, t_ns: int, pending: int) -> None:
-        """The node is alone on its own piece of wire: ACK errors until it is error-passive.
+    def _isolate(self, n: int, t_ns: int, pending: int, until_ns: int) -> None:
+        """The node is alone on its own piece of wire: ACK errors until it is error-passive
+        or it rejoins the bus at ``until_ns``, whichever comes first.
 
         A loop over at most 16 attempts (rare event); after that nothing changes, because an
         error-passive transmitter's ACK errors do not count (rule c, exception 1).
@@ -335,9 +336,11 @@ class BusEngine:
         bits = int(np.median(s.bits[s.rank == rank])) if np.any(s.rank == rank) else 64
         attempt_ns = self._time_to_bit(bits - ACK_DELIMITER_FROM_END, bits, 0) + int(
             (ACTIVE_FLAG_BITS + ERROR_DELIMITER_BITS + INTERMISSION_BITS) * self.bit_ns)
-        while not c.error_passive and not c.bus_off and t < self.duration_ns:
+        ack_after_ns = self._time_to_bit(bits - ACK_DELIMITER_FROM_END, bits, 0)
+        stop_ns = min(until_ns, self.duration_ns)
+        while not c.error_passive and not c.bus_off and t + ack_after_ns < stop_ns:
             c.transmit_error(ack_error=True)
-            self._note(n, t + self._time_to_bit(bits - ACK_DELIMITER_FROM_END, bits, 0))
+            self._note(n, t + ack_after_ns)
             t += attempt_ns
 
     # --- the loop ------------------------------------------------------------------------
