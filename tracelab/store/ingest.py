@@ -161,33 +161,32 @@ def run_name(path: Path, header: LogHeader) -> str:
 
 
 def _with_physics(frames: pl.DataFrame, header: LogHeader) -> pl.DataFrame:
-    """Add bits, duration_ns, start_ns, end_ns (vectorised; a loop over the few buses)."""
+    """Add bits, duration_ns, start_ns, end_ns (vectorised: each frame's bus settings are
+    gathered by bus index, one pass whatever the number of buses)."""
     lengths = frame_bits(frames)
     bits = lengths["bits"].to_numpy()
     data_phase = lengths["data_phase_bits"].to_numpy()
     t_ns = frames["t_ns"].to_numpy()
-    bus = frames["bus"]
-    duration = np.zeros(frames.height, dtype=np.int64)
-    start = np.zeros(frames.height, dtype=np.int64)
-    for decl in header.buses:  # loop over buses, not frames
-        mask = (bus == decl.alias).to_numpy()
-        if not mask.any():
-            continue
-        # whole arrays and a select: cheaper than gathering and scattering the bus's frames
-        # (a bus without data= has no BRS frames, so its own data-phase bits are 0 and the
-        # data rate it is given here only touches other buses' frames, which are discarded)
-        dur = frame_durations_ns(bits, data_phase, decl.nominal_bps,
-                                 decl.data_bps or decl.nominal_bps)
-        begin = t_ns
-        if decl.stamp == "end":  # t_ns is the end of EOF: the 3-bit intermission follows
-            ifs_ns = frame_durations_ns(np.array([3]), np.array([0]), decl.nominal_bps,
-                                        decl.data_bps)[0]
-            begin = t_ns - (dur - ifs_ns)
-        if mask.all():
-            duration, start = dur, begin
-        else:
-            np.copyto(duration, dur, where=mask)
-            np.copyto(start, begin, where=mask)
+    buses = header.buses
+    # per bus: nominal and data rates (a bus without data= has no BRS frames, so its
+    # data-phase bits are 0 and its nominal rate stands in), the 3-bit intermission for
+    # stamp=end (t_ns is the end of EOF) and 0 for stamp=start
+    nominal_bps = np.array([b.nominal_bps for b in buses], dtype=np.int64)
+    data_bps = np.array([b.data_bps or b.nominal_bps for b in buses], dtype=np.int64)
+    stamp_end = np.array([b.stamp == "end" for b in buses])
+    ifs_ns = np.array([frame_durations_ns(np.array([3]), np.array([0]), b.nominal_bps,
+                                          b.data_bps)[0] for b in buses], dtype=np.int64)
+    if len(buses) == 1:
+        duration = frame_durations_ns(bits, data_phase, int(nominal_bps[0]), int(data_bps[0]))
+        start = t_ns - (duration - ifs_ns[0]) if stamp_end[0] else t_ns
+    else:
+        code = frames["bus"].cast(pl.Enum([b.alias for b in buses])).to_physical().to_numpy()
+        fast = data_phase.astype(np.int64)
+        slow = bits.astype(np.int64) - fast
+        # the arithmetic of frame_durations_ns, with per-frame rates: the same float64 steps
+        duration = np.floor((slow * 1e9) / nominal_bps[code] + (fast * 1e9) / data_bps[code]
+                            + 0.5).astype(np.int64)
+        start = t_ns - np.where(stamp_end[code], duration - ifs_ns[code], 0)
     return frames.with_columns(
         bits=lengths["bits"].cast(pl.UInt16), duration_ns=pl.Series(duration),
         start_ns=pl.Series(start), end_ns=pl.Series(start + duration))
