@@ -130,6 +130,7 @@ class Block:
     first_line: int
     terminated: bool
     bytes_read: int
+    newlines: int | None = None  # LF count of body when the splitter counted it already
 
 
 # --- opening and the header ---------------------------------------------------------------
@@ -513,8 +514,9 @@ class LogReader:
                                          f"{MAX_LINE_BYTES >> 20} MiB: not a frame log?")
             else:
                 body, carry = data[: cut + 1], data[cut + 1:]
-                yield Block(body, line_no + 1, True, self._raw.tell())
-                line_no += body.count(b"\n")
+                newlines = body.count(b"\n")
+                yield Block(body, line_no + 1, True, self._raw.tell(), newlines)
+                line_no += newlines
             if not block:
                 break
         if carry:
@@ -525,7 +527,7 @@ class LogReader:
         passed to link() in order. LogFormatError on a fatal fault (a directive after a
         record) or, with ``strict``, on the block's first bad line."""
         if block.terminated and self.fast:
-            chunk = self._chunk_fast(block.body, block.first_line)
+            chunk = self._chunk_fast(block.body, block.first_line, block.newlines)
             if chunk is not None:
                 chunk.bytes_read = block.bytes_read
                 return chunk
@@ -582,7 +584,8 @@ class LogReader:
         return pl.DataFrame({"text": texts, "bad": bad}, schema={"text": pl.String,
                                                                  "bad": pl.String})
 
-    def _chunk_fast(self, body: bytes, first_line: int) -> Chunk | None:
+    def _chunk_fast(self, body: bytes, first_line: int,
+                    newlines: int | None = None) -> Chunk | None:
         """Parse with polars' CSV reader and accept the chunk only when every line is valid;
         None sends it to the exact path (which gives the same tables, and the rejects), as
         does any empty field (an empty mark text, a stray TAB); tests check that both paths
@@ -595,7 +598,7 @@ class LogReader:
                                missing_columns="insert")
         except (pl.exceptions.PolarsError, UnicodeDecodeError):
             return None
-        n = body.count(b"\n")
+        n = body.count(b"\n") if newlines is None else newlines
         if rows.height != n:
             return None
         # The CSV reader reads an empty field as null, the same as a missing one (and drops
