@@ -140,8 +140,9 @@ class _ZstdStream(io.RawIOBase):
     """Decompress zstd frames one after another; a stream cut inside a frame is an error
     (the library's stream reader reports a cut stream as a quiet end of file)."""
 
-    def __init__(self, raw: BinaryIO) -> None:
+    def __init__(self, raw: BinaryIO, block_bytes: int = 1 << 20) -> None:
         self._raw = raw
+        self._block_bytes = block_bytes
         self._obj = zstandard.ZstdDecompressor().decompressobj()
         self._pending = b""
         self._in_frame = False
@@ -151,7 +152,7 @@ class _ZstdStream(io.RawIOBase):
 
     def readinto(self, buffer: Any) -> int:
         while not self._pending:
-            block = self._raw.read(1 << 20)
+            block = self._raw.read(self._block_bytes)
             if not block:
                 if self._in_frame:
                     raise zstandard.ZstdError("stream ends inside a zstd frame")
@@ -170,15 +171,16 @@ class _ZstdStream(io.RawIOBase):
         return size
 
 
-def _open(path: Path) -> tuple[BinaryIO, BinaryIO]:
-    """(decompressed stream, raw file); compression is recognised by the first bytes."""
+def _open(path: Path, block_bytes: int = 1 << 20) -> tuple[BinaryIO, BinaryIO]:
+    """(decompressed stream, raw file); compression is recognised by the first bytes.
+    ``block_bytes``: compressed bytes a zstd read takes at a time."""
     raw = open(path, "rb")  # noqa: SIM115 - closed by the caller
     head = raw.read(4)
     raw.seek(0)
     if head.startswith(GZIP_MAGIC):
         return gzip.GzipFile(fileobj=raw, mode="rb"), raw  # type: ignore[return-value]
     if head.startswith(ZSTD_MAGIC):
-        return io.BufferedReader(_ZstdStream(raw), 1 << 20), raw  # type: ignore[return-value]
+        return io.BufferedReader(_ZstdStream(raw, block_bytes), 1 << 20), raw  # type: ignore[return-value]
     return raw, raw
 
 
@@ -310,7 +312,9 @@ def _read_header(path: Path, stream: BinaryIO) -> tuple[LogHeader, int, bytes]:
 def read_header(path: str | Path) -> LogHeader:
     """The header of a log (origin, buses, meta); LogFormatError when it is broken."""
     path = Path(path)
-    stream, raw = _open(path)
+    # small zstd reads: the header is the first lines, a 1 MiB block would decompress ~10 MB
+    # (29 ms a log where 0.6 ms do; the fleet batch reads every new log's header)
+    stream, raw = _open(path, 1 << 16)
     try:
         return _read_header(path, stream)[0]
     except _CORRUPT as error:
