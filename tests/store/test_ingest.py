@@ -9,9 +9,10 @@ import polars as pl
 import pytest
 
 from tracelab.errors import StoreError
+from tracelab.store import dataset as dataset_module
 from tracelab.store import ingest as ingest_module
 from tracelab.store import schema
-from tracelab.store.dataset import Dataset, open_dataset
+from tracelab.store.dataset import open_dataset
 from tracelab.store.ingest import ingest_logs
 
 HEADER = ("%tracelab-frames 1\n%origin 2026-11-30T21:04:05Z\n"
@@ -146,10 +147,10 @@ def test_crash_before_the_manifest_keeps_new_parts_invisible(
     ingest_logs([a], tmp_path / "ds", quiet=True)
     b = _log(tmp_path / "b.frames", ["2\tP\tmark\ty"], header=HEADER.replace("r1", "r2"))
 
-    def fail(self: Dataset, target: Path, write: object) -> Path:
+    def fail(target: Path, write: object) -> Path:
         raise OSError("disk full")
 
-    monkeypatch.setattr(Dataset, "_replace_atomically", fail)
+    monkeypatch.setattr(dataset_module, "replace_atomically", fail)
     with pytest.raises(StoreError, match=r"cannot commit the ingest \(disk full\)"):
         ingest_logs([b], tmp_path / "ds", quiet=True)
     monkeypatch.undo()

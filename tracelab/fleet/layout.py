@@ -17,12 +17,10 @@ from __future__ import annotations
 import json
 import os
 import re
-import uuid
-from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
-from tracelab.errors import StoreError
+from tracelab.store.dataset import replace_atomically
 
 MANIFEST_FILE = "fleet-manifest.parquet"
 RUNS_FILE = "runs.parquet"
@@ -34,20 +32,6 @@ RECORDS_DIR = "records"
 STAGING_DIR = ".staging"
 LOCK_FILE = ".batch.lock"
 _KEY16 = re.compile(r"^[0-9a-f]{16}$")
-
-
-def replace_atomically(target: Path, write: Callable[[Path], Any]) -> Path:
-    """Write through a temporary sibling and ``os.replace`` it: readers see old or new, never half."""
-    target.parent.mkdir(parents=True, exist_ok=True)
-    tmp = target.with_name(f".{target.name}.{uuid.uuid4().hex}.tmp")
-    try:
-        write(tmp)
-        os.replace(tmp, target)
-    except OSError as error:
-        raise StoreError(f"{target}: cannot write ({error.strerror or error})") from error
-    finally:
-        tmp.unlink(missing_ok=True)
-    return target
 
 
 def write_json(target: Path, obj: Any) -> Path:

@@ -16,6 +16,7 @@ import os
 import re
 import shutil
 import uuid
+from collections.abc import Callable
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -42,6 +43,20 @@ def sha16(sha256: str) -> str:
 
 def _sql_str(text: str) -> str:
     return "'" + text.replace("'", "''") + "'"
+
+
+def replace_atomically(target: Path, write: Callable[[Path], Any]) -> Path:
+    """Write through a temporary sibling and ``os.replace`` it: readers see old or new, never half."""
+    target.parent.mkdir(parents=True, exist_ok=True)
+    tmp = target.with_name(f".{target.name}.{uuid.uuid4().hex}.tmp")
+    try:
+        write(tmp)
+        os.replace(tmp, target)
+    except OSError as error:
+        raise StoreError(f"{target}: cannot write ({error.strerror or error})") from error
+    finally:
+        tmp.unlink(missing_ok=True)
+    return target
 
 
 class Dataset:
@@ -125,29 +140,17 @@ class Dataset:
             raise UsageError(f"analysis name {name!r} must be letters, digits and _")
         return self.path / ANALYSES_DIR / f"{name}{suffix}"
 
-    def _replace_atomically(self, target: Path, write: Any) -> Path:
-        target.parent.mkdir(parents=True, exist_ok=True)
-        tmp = target.with_name(f".{target.name}.{uuid.uuid4().hex}.tmp")
-        try:
-            write(tmp)
-            os.replace(tmp, target)
-        except OSError as error:
-            raise StoreError(f"{target}: cannot write ({error})") from error
-        finally:
-            tmp.unlink(missing_ok=True)
-        return target
-
     def write_analysis(self, name: str, frame: pl.DataFrame) -> Path:
         """Atomically write analyses/<name>.parquet (a view of that name in connect())."""
         path = self._analysis_path(name, ".parquet")
-        return self._replace_atomically(
+        return replace_atomically(
             path, lambda tmp: frame.write_parquet(tmp, compression="zstd"))
 
     def write_analysis_json(self, name: str, obj: Any) -> Path:
         """Atomically write analyses/<name>.json."""
         path = self._analysis_path(name, ".json")
         text = json.dumps(obj, indent=2, default=str)
-        return self._replace_atomically(path, lambda tmp: tmp.write_text(text, encoding="utf-8"))
+        return replace_atomically(path, lambda tmp: tmp.write_text(text, encoding="utf-8"))
 
     def read_analysis(self, name: str) -> pl.DataFrame | None:
         path = self._analysis_path(name, ".parquet")
@@ -194,7 +197,7 @@ class Dataset:
                 old.filter(~pl.col("sha256").is_in(rows["sha256"].implode())),
                 schema.conform(rows, "manifest"),
             ])
-            self._replace_atomically(
+            replace_atomically(
                 self.manifest_path, lambda tmp: merged.write_parquet(tmp, compression="zstd"))
         except OSError as error:
             raise StoreError(f"{self.path}: cannot commit the ingest ({error})") from error
