@@ -86,11 +86,8 @@ def timing(dataset: Path, catalog: Path | None = None, run: str | None = None,
     ds = open_dataset(dataset)
     cat = load_catalog(catalog) if catalog is not None else None
     _check_run(ds, run)
-    con = ds.connect()
-    try:
+    with ds.connect() as con:
         result = compute_timing(con, cat, run=run, gap_factor=gap_factor)
-    finally:
-        con.close()
     _store(ds, "timing", result.timing, run)
     _store(ds, "gaps", result.gaps, run)
     _store(ds, "node_drift", result.node_drift, run)
@@ -109,11 +106,8 @@ def load(dataset: Path, window: str = "100ms", run: str | None = None) -> Any:
         raise UsageError(f"--window: {error}") from None
     ds = open_dataset(dataset)
     _check_run(ds, run)
-    con = ds.connect()
-    try:
+    with ds.connect() as con:
         result = bus_load(con, window_ns=window_ns, run=run)
-    finally:
-        con.close()
     _store(ds, "load", result.windows, run)
     _store(ds, "load_summary", result.summary, run)
     _store(ds, "load_top_ids", result.top_ids, run)
@@ -143,11 +137,8 @@ def faults(dataset: Path, catalog: Path, run: str | None = None) -> Any:
     cat = load_catalog(catalog)
     _check_run(ds, run)
     gaps = ds.read_analysis("gaps") if ds.has_analysis("gaps") else None
-    con = ds.connect()
-    try:
+    with ds.connect() as con:
         result = replay_faults(con, cat, run=run, gaps=gaps)
-    finally:
-        con.close()
     _store(ds, "counters", result.counters, run)
     _store(ds, "node_states", result.node_states, run)
     _store(ds, "verdicts", result.verdicts, run)
@@ -198,7 +189,7 @@ def _covers(ds: Any, name: str, runs: list[str]) -> bool:
 def report(dataset: Path, output: Path, catalog: Path | None = None, run: str | None = None,
            shared_plotly: bool = False, load_limit: float = 0.5) -> list[Path]:
     from tracelab.analyses.envelopes import report_data
-    from tracelab.errors import UsageError, did_you_mean
+    from tracelab.errors import UsageError
     from tracelab.report.page import write_report
     from tracelab.store.dataset import open_dataset
 
@@ -209,8 +200,7 @@ def report(dataset: Path, output: Path, catalog: Path | None = None, run: str | 
     if not runs:
         raise UsageError(f"{dataset}: the dataset holds no runs yet; ingest a log first")
     if run is not None:
-        if run not in runs:
-            raise UsageError(f"{dataset}: no run '{run}'{did_you_mean(run, runs)}")
+        _check_run(ds, run)
         runs = [run]
     # Compute what the dataset lacks (absent, or older than a run ingested since), for every
     # run at once, so a later --run finds it too.
@@ -221,13 +211,13 @@ def report(dataset: Path, output: Path, catalog: Path | None = None, run: str | 
     if catalog is not None and not _covers(ds, "faults", runs):
         faults(dataset, catalog=catalog)
     faults_json = ds.read_analysis_json("faults")
-    con = ds.connect()
     written = []
-    for name in runs:  # one page per run: few
-        data = report_data(con, name, faults_json)
-        path = _report_path(output, name, several=len(runs) > 1)
-        written.append(write_report(data, path, load_limit=load_limit,
-                                    shared_plotly=shared_plotly))
+    with ds.connect() as con:
+        for name in runs:  # one page per run: few
+            data = report_data(con, name, faults_json)
+            path = _report_path(output, name, several=len(runs) > 1)
+            written.append(write_report(data, path, load_limit=load_limit,
+                                        shared_plotly=shared_plotly))
     return written
 
 
