@@ -14,11 +14,19 @@ from __future__ import annotations
 import duckdb
 import polars as pl
 
+from tracelab.format.grammar import id_text
+
 MIN_HISTORY = 2
 FACTOR = 2.0
 MISSING_MIN_INCREASE = 3
 JITTER_MIN_INCREASE_NS = 50_000
 DRIFT_MIN_INCREASE_PPM = 100.0
+#: Flagged metrics: (name in the flags, column of ``stats`` below, absolute floor).
+METRICS = (
+    ("missing", "missing", MISSING_MIN_INCREASE),
+    ("jitter_p99_ns", "jitter", JITTER_MIN_INCREASE_NS),
+    ("abs_drift_ppm", "drift", DRIFT_MIN_INCREASE_PPM),
+)
 
 REGRESSIONS = pl.Schema({
     "vehicle": pl.String, "date": pl.Date, "run": pl.String, "key": pl.String,
@@ -35,6 +43,13 @@ def regression_flags(con: duckdb.DuckDBPyConnection, previous: int = 5) -> pl.Da
         "SELECT view_name FROM duckdb_views() WHERE NOT internal").fetchall()}
     if "message_stats" not in views:
         return pl.DataFrame(schema=REGRESSIONS)
+    baselines = ", ".join(f"median({col}) OVER w AS base_{col}" for _, col, _ in METRICS)
+    flags = "\n        UNION ALL\n".join(
+        f"""SELECT vehicle, date, run, key, bus, id, ext, name, '{metric}' AS metric,
+               {col} AS value, base_{col} AS baseline, history
+        FROM windowed
+        WHERE history >= {MIN_HISTORY} AND {col} >= {FACTOR} * base_{col}
+          AND {col} - base_{col} >= {floor}""" for metric, col, floor in METRICS)
     sql = f"""
         WITH ordered AS (
             SELECT key, vehicle, date,
@@ -48,30 +63,12 @@ def regression_flags(con: duckdb.DuckDBPyConnection, previous: int = 5) -> pl.Da
             FROM message_stats m JOIN ordered o ON m.key = o.key
         ), windowed AS (
             SELECT *, count(*) OVER w AS history,
-                   median(missing) OVER w AS base_missing,
-                   median(jitter) OVER w AS base_jitter,
-                   median(drift) OVER w AS base_drift
+                   {baselines}
             FROM stats
             WINDOW w AS (PARTITION BY vehicle, bus, id, ext ORDER BY seq
                          ROWS BETWEEN {int(previous)} PRECEDING AND 1 PRECEDING)
         )
-        SELECT vehicle, date, run, key, bus, id, ext, name, 'missing' AS metric,
-               missing AS value, base_missing AS baseline, history
-        FROM windowed
-        WHERE history >= {MIN_HISTORY} AND missing >= {FACTOR} * base_missing
-          AND missing - base_missing >= {MISSING_MIN_INCREASE}
-        UNION ALL
-        SELECT vehicle, date, run, key, bus, id, ext, name, 'jitter_p99_ns' AS metric,
-               jitter AS value, base_jitter AS baseline, history
-        FROM windowed
-        WHERE history >= {MIN_HISTORY} AND jitter >= {FACTOR} * base_jitter
-          AND jitter - base_jitter >= {JITTER_MIN_INCREASE_NS}
-        UNION ALL
-        SELECT vehicle, date, run, key, bus, id, ext, name, 'abs_drift_ppm' AS metric,
-               drift AS value, base_drift AS baseline, history
-        FROM windowed
-        WHERE history >= {MIN_HISTORY} AND drift >= {FACTOR} * base_drift
-          AND drift - base_drift >= {DRIFT_MIN_INCREASE_PPM}
+        {flags}
         ORDER BY vehicle, date, run, bus, id, metric
     """
     frame = con.sql(sql).pl()
@@ -79,8 +76,7 @@ def regression_flags(con: duckdb.DuckDBPyConnection, previous: int = 5) -> pl.Da
 
 
 def flag_label(name: str | None, bus: str, frame_id: int, ext: bool, metric: str) -> str:
-    ident = f"{frame_id:08X}" if ext else f"{frame_id:03X}"
-    return f"{bus}:{name or ident} {metric}"
+    return f"{bus}:{name or id_text(frame_id, ext)} {metric}"
 
 
 def with_flags(runs: pl.DataFrame, flags: pl.DataFrame) -> pl.DataFrame:
