@@ -15,6 +15,7 @@ import duckdb
 import polars as pl
 
 from tracelab.errors import QueryError
+from tracelab.format.grammar import id_text
 
 _PARAM_RE = re.compile(r"\$([A-Za-z_][A-Za-z0-9_]*)")
 
@@ -93,8 +94,8 @@ def text_table(frame: pl.DataFrame, max_rows: int = 200) -> str:
 def hex_id_expr() -> pl.Expr:
     """The identifier as the frame log writes it (3 or 8 hex digits); for describe() tables
     (one row per message, so the per-row formatting is cheap)."""
-    return (pl.when(pl.col("ext"))
-            .then(pl.col("id").cast(pl.Int64).map_elements(lambda v: f"{v:08X}",
-                                                            return_dtype=pl.String))
-            .otherwise(pl.col("id").cast(pl.Int64).map_elements(lambda v: f"{v:03X}",
-                                                                 return_dtype=pl.String)))
+    def digits(ext: bool) -> pl.Expr:
+        return pl.col("id").cast(pl.Int64).map_elements(lambda v: id_text(v, ext),
+                                                         return_dtype=pl.String)
+
+    return pl.when(pl.col("ext")).then(digits(True)).otherwise(digits(False))

@@ -56,6 +56,11 @@ def payload_bytes(dlc: int, fd: bool, rtr: bool = False) -> int:
     return FD_PAYLOAD_BYTES[dlc] if fd else CLASSIC_PAYLOAD_BYTES[dlc]
 
 
+def id_text(frame_id: int, ext: bool) -> str:
+    """An identifier as the format writes it: 3 hex digits (11-bit) or 8 (29-bit), upper case."""
+    return f"{frame_id:08X}" if ext else f"{frame_id:03X}"
+
+
 def form_letters(ext: bool, rtr: bool = False, fd: bool = False, brs: bool = False,
                  esi: bool = False) -> str:
     """The ``form`` field for these flags, e.g. ``sfb``."""

@@ -8,7 +8,7 @@ from types import TracebackType
 from typing import BinaryIO
 
 from tracelab.format.compression import open_log_for_writing
-from tracelab.format.grammar import HEADER_LINE, NONE, form_letters
+from tracelab.format.grammar import HEADER_LINE, NONE, form_letters, id_text
 
 
 @dataclass(frozen=True)
@@ -51,7 +51,7 @@ class LogHeader:
 
 def frame_line(t_ns: int, bus: str, frame_id: int, ext: bool, rtr: bool, fd: bool, brs: bool,
                esi: bool, dlc: int, data: bytes) -> str:
-    ident = f"{frame_id:08X}" if ext else f"{frame_id:03X}"
+    ident = id_text(frame_id, ext)
     payload = data.hex().upper() if data else NONE
     return f"{t_ns}\t{bus}\tframe\t{ident}\t{form_letters(ext, rtr, fd, brs, esi)}\t{dlc}\t{payload}"
 
@@ -61,7 +61,7 @@ def error_line(t_ns: int, bus: str, error_type: str, error_field: str, frame_id:
     if frame_id is None:
         ident = NONE
     else:
-        ident = f"{frame_id:08X}" if ext else f"{frame_id:03X}"
+        ident = id_text(frame_id, bool(ext))
     return f"{t_ns}\t{bus}\terror\t{error_type}\t{error_field}\t{ident}\t{form or NONE}\t{by or NONE}"
 
 

@@ -27,6 +27,7 @@ from tracelab.format.grammar import (
     MAX_BASE_ID,
     MAX_EXTENDED_ID,
     STAMPS,
+    id_text,
     parse_form,
     payload_bytes,
 )
@@ -123,7 +124,7 @@ class MessageSpec:
 
     @property
     def id_hex(self) -> str:
-        return f"{self.id:08X}" if self.ext else f"{self.id:03X}"
+        return id_text(self.id, self.ext)
 
     @property
     def label(self) -> str:

@@ -16,6 +16,7 @@ import plotly.graph_objects as go
 import polars as pl
 from plotly.subplots import make_subplots
 
+from tracelab.format.grammar import id_text
 from tracelab.report import style
 
 NS_PER_S = 1e9
@@ -41,7 +42,7 @@ def seconds(t_ns: Any) -> np.ndarray:
 
 
 def message_label(bus: Any, frame_id: Any, ext: Any, name: Any = None) -> str:
-    ident = "-" if frame_id is None else (f"{int(frame_id):08X}" if ext else f"{int(frame_id):03X}")
+    ident = "-" if frame_id is None else id_text(int(frame_id), bool(ext))
     label = f"{ident} {name}" if name else ident
     return f"{bus} {label}" if bus is not None else label
 

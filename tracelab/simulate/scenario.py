@@ -19,6 +19,7 @@ from tracelab.format.grammar import (
     MAX_EXTENDED_ID,
     META_KEY_RE,
     ORIGIN_RE,
+    id_text,
     parse_form,
 )
 from tracelab.format.grammar import payload_bytes as grammar_payload_bytes
@@ -117,7 +118,7 @@ class FaultSpec:
         if self.kind == "babble":
             assert self.babble_id is not None
             ext = self.babble_form.startswith("x")
-            out["id"] = f"{self.babble_id:08X}" if ext else f"{self.babble_id:03X}"
+            out["id"] = id_text(self.babble_id, ext)
             out["form"] = self.babble_form
             out["dlc"] = self.babble_dlc
         return out

@@ -12,7 +12,7 @@ import numpy as np
 import polars as pl
 import pyarrow as pa
 
-from tracelab.format.grammar import form_letters, parse_form, payload_bytes
+from tracelab.format.grammar import form_letters, id_text, parse_form, payload_bytes
 from tracelab.network.catalog import BusSpec, MessageSpec
 from tracelab.physics.bitlength import frame_bits, frame_durations_ns
 from tracelab.simulate.scenario import FaultSpec, Scenario, ScheduleSpec
@@ -60,7 +60,7 @@ class SimMessage:
 
     @property
     def id_hex(self) -> str:
-        return f"{self.id:08X}" if self.ext else f"{self.id:03X}"
+        return id_text(self.id, self.ext)
 
     @property
     def nbytes(self) -> int:
