@@ -1,9 +1,10 @@
 """A large synthetic dataset written directly as Parquet (numpy/polars, no simulator, no
-ingest), shared by bench/timing.py and bench/load.py."""
+ingest), shared by bench/timing.py and bench/load.py, with their CPU-time probe."""
 
 from __future__ import annotations
 
 import hashlib
+import resource
 import time
 from pathlib import Path
 
@@ -15,6 +16,13 @@ from tracelab.store.dataset import sha16
 
 PERIODS_NS = np.array([5, 10, 20, 50, 100, 1000]) * 1_000_000
 BIT_NS = 2_000  # 500 kbit/s
+
+
+def cpu_s() -> float:
+    """CPU seconds of this process (all DuckDB threads): steadier than wall time when
+    other work shares the machine."""
+    usage = resource.getrusage(resource.RUSAGE_SELF)
+    return usage.ru_utime + usage.ru_stime
 
 
 def write_dataset(path: Path, frames: int, ids: int = 200, buses: int = 2,

@@ -7,7 +7,6 @@ the same dataset. Target: ratio <= 2.
 from __future__ import annotations
 
 import argparse
-import resource
 import sys
 import tempfile
 import time
@@ -15,7 +14,7 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from bench._dataset import write_dataset  # noqa: E402
+from bench._dataset import cpu_s, write_dataset  # noqa: E402
 from tracelab import workflow  # noqa: E402
 from tracelab.store.dataset import open_dataset  # noqa: E402
 
@@ -23,13 +22,6 @@ BARE = """
 SELECT run, bus, start_ns // 100000000 AS k, sum(duration_ns) AS busy_ns, count(*) AS frames
 FROM frames GROUP BY run, bus, k
 """
-
-
-def _cpu_s() -> float:
-    """CPU seconds of this process (all DuckDB threads): steadier than wall time when
-    other work shares the machine."""
-    usage = resource.getrusage(resource.RUSAGE_SELF)
-    return usage.ru_utime + usage.ru_stime
 
 
 def main() -> None:
@@ -43,12 +35,12 @@ def main() -> None:
         rows = con.sql(BARE).fetchall()  # warm the file cache for both contenders
         bare_s = job_s = bare_cpu = job_cpu = float("inf")
         for _ in range(args.repeat):  # alternate, best of N: the machine is shared
-            t0, c0 = time.perf_counter(), _cpu_s()
+            t0, c0 = time.perf_counter(), cpu_s()
             rows = con.sql(BARE).fetchall()
-            bare_s, bare_cpu = min(bare_s, time.perf_counter() - t0), min(bare_cpu, _cpu_s() - c0)
-            t0, c0 = time.perf_counter(), _cpu_s()
+            bare_s, bare_cpu = min(bare_s, time.perf_counter() - t0), min(bare_cpu, cpu_s() - c0)
+            t0, c0 = time.perf_counter(), cpu_s()
             result = workflow.load(ds, "100ms")
-            job_s, job_cpu = min(job_s, time.perf_counter() - t0), min(job_cpu, _cpu_s() - c0)
+            job_s, job_cpu = min(job_s, time.perf_counter() - t0), min(job_cpu, cpu_s() - c0)
         con.close()
         load_s = job_s
         assert abs(result.windows.height - len(rows)) <= 2 * result.summary.height

@@ -7,7 +7,6 @@ inter-arrival per (bus, id)) on the same dataset. Target: ratio <= 2.
 from __future__ import annotations
 
 import argparse
-import resource
 import sys
 import tempfile
 import time
@@ -15,7 +14,7 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from bench._dataset import write_dataset  # noqa: E402
+from bench._dataset import cpu_s, write_dataset  # noqa: E402
 from tracelab import workflow  # noqa: E402
 from tracelab.store.dataset import open_dataset  # noqa: E402
 
@@ -25,13 +24,6 @@ FROM (SELECT bus, id, t_ns - lag(t_ns) OVER (PARTITION BY bus, id ORDER BY t_ns)
       FROM frames)
 GROUP BY bus, id
 """
-
-
-def _cpu_s() -> float:
-    """CPU seconds of this process (all DuckDB threads): steadier than wall time when
-    other work shares the machine."""
-    usage = resource.getrusage(resource.RUSAGE_SELF)
-    return usage.ru_utime + usage.ru_stime
 
 
 def main() -> None:
@@ -47,12 +39,12 @@ def main() -> None:
         rows = con.sql(BARE).fetchall()  # warm the file cache for both contenders
         bare_s = job_s = bare_cpu = job_cpu = float("inf")
         for _ in range(args.repeat):  # alternate, best of N: the machine is shared
-            t0, c0 = time.perf_counter(), _cpu_s()
+            t0, c0 = time.perf_counter(), cpu_s()
             rows = con.sql(BARE).fetchall()
-            bare_s, bare_cpu = min(bare_s, time.perf_counter() - t0), min(bare_cpu, _cpu_s() - c0)
-            t0, c0 = time.perf_counter(), _cpu_s()
+            bare_s, bare_cpu = min(bare_s, time.perf_counter() - t0), min(bare_cpu, cpu_s() - c0)
+            t0, c0 = time.perf_counter(), cpu_s()
             result = workflow.timing(ds)
-            job_s, job_cpu = min(job_s, time.perf_counter() - t0), min(job_cpu, _cpu_s() - c0)
+            job_s, job_cpu = min(job_s, time.perf_counter() - t0), min(job_cpu, cpu_s() - c0)
         con.close()
         timing_s = job_s
         assert result.timing.height == len(rows)
