@@ -1,7 +1,7 @@
 """A simulated fleet: vehicles x nights from one scenario template, with known faults.
 
-The simulator writes ``%meta run``; the vehicle (``%meta vehicle``) is added to the header
-here, as a fleet's loggers would write it.
+Each night's scenario names its vehicle in ``[run] meta``, so the log's ``%meta`` carries
+``vehicle`` as a fleet's loggers would write it.
 """
 
 from __future__ import annotations
@@ -9,7 +9,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 from pathlib import Path
 
-from tracelab.format.compression import open_log_for_writing
 from tracelab.simulate import load_scenario, simulate
 
 CATALOG = """
@@ -110,17 +109,11 @@ def write_night(root: Path, night: Night) -> Path:
     scenario = folder / f"{night.run}.toml"
     scenario.write_text(f'[run]\nname = "{night.run}"\nduration = "{night.seconds}s"\n'
                         f'seed = {night.night}\norigin = "{night.origin}"\n'
-                        f'status_every = "100ms"\n' + CATALOG + night.faults)
-    plain = folder / f"{night.run}.tmp.frames"
-    simulate(load_scenario(scenario), plain, quiet=True)
-    scenario.unlink()
+                        f'status_every = "100ms"\nmeta = {{ vehicle = "{night.vehicle}" }}\n'
+                        + CATALOG + night.faults)
     log = folder / f"{night.run}{night.suffix}"
-    text = plain.read_bytes().replace(b"%meta run=", f"%meta vehicle={night.vehicle} run=".encode(),
-                                      1)
-    with open_log_for_writing(log) as out:
-        out.write(text)
-    Path(f"{plain}.truth.json").rename(f"{log}.truth.json")
-    plain.unlink()
+    simulate(load_scenario(scenario), log, quiet=True)  # compression by the extension
+    scenario.unlink()
     return log
 
 
