@@ -11,7 +11,6 @@ from __future__ import annotations
 import json
 import math
 from dataclasses import dataclass, field
-from datetime import UTC, datetime, timedelta
 from functools import cache
 from importlib import resources
 from typing import Any
@@ -20,6 +19,7 @@ import duckdb
 import polars as pl
 
 from tracelab.analyses import run_sql_frame
+from tracelab.format.grammar import wall_time
 
 #: Bus-load windows a reader can pick in the report (each a multiple of the stored window).
 LOAD_WINDOWS_NS = (10_000_000, 100_000_000, 1_000_000_000, 10_000_000_000, 60_000_000_000)
@@ -124,15 +124,9 @@ def _buses(raw: Any) -> list[dict[str, Any]]:
 
 
 def _wall(origin: str | None, t_ns: int | None) -> str | None:
-    if not origin or t_ns is None:
-        return None
-    try:
-        base = datetime.fromisoformat(origin.replace("Z", "+00:00"))
-    except ValueError:
-        return None
-    moment = base + timedelta(microseconds=t_ns / 1000)
-    return moment.astimezone(UTC).isoformat(timespec="milliseconds").replace(
-        "+00:00", "Z")
+    """Wall-clock time to the millisecond, for the page header."""
+    exact = wall_time(origin, t_ns)
+    return None if exact is None else exact[:23] + "Z"
 
 
 def header(con: duckdb.DuckDBPyConnection, run: str) -> dict[str, Any]:

@@ -6,9 +6,7 @@ object ``tracelab faults --json`` prints (the shape is spec: issue 5, section 2)
 
 from __future__ import annotations
 
-import datetime as dt
 import math
-import re
 from dataclasses import dataclass
 from typing import Any
 
@@ -35,6 +33,7 @@ from tracelab.forensics.replay import (
     run_buses,
     single_pair,
 )
+from tracelab.format.grammar import wall_time
 from tracelab.physics.confinement import DEFAULT_CONFIG, ConfinementConfig
 
 #: Below this posterior the verdict says the evidence does not decide.
@@ -50,24 +49,6 @@ VERDICTS_SCHEMA = {"run": pl.String, "bus": pl.String, "cause_kind": pl.String,
                    "cause_node": pl.String, "first_node": pl.String, "first_state": pl.String,
                    "first_t_ns": pl.Int64, "wall_time": pl.String, "confidence": pl.Float64,
                    "winner": pl.String, "runner_up": pl.String, "errors": pl.Int64}
-
-_ORIGIN_RE = re.compile(r"^(\d{4}-\d{2}-\d{2}T\d{2}:\d{2}:\d{2})(?:\.(\d{1,9}))?Z$")
-
-
-def wall_time(origin: str | None, t_ns: int | None) -> str | None:
-    """ISO 8601 UTC with nanoseconds: ``%origin`` (the wall time of t_ns = 0) plus t_ns."""
-    if origin is None or t_ns is None:
-        return None
-    match = _ORIGIN_RE.match(origin)
-    if not match:
-        return None
-    base = dt.datetime.strptime(match.group(1), "%Y-%m-%dT%H:%M:%S").replace(tzinfo=dt.UTC)
-    frac_ns = int((match.group(2) or "0").ljust(9, "0"))
-    epoch_ns = int(base.timestamp()) * 1_000_000_000 + frac_ns + int(t_ns)
-    seconds, ns = divmod(epoch_ns, 1_000_000_000)
-    stamp = dt.datetime.fromtimestamp(seconds, tz=dt.UTC).strftime("%Y-%m-%dT%H:%M:%S")
-    return f"{stamp}.{ns:09d}Z"
-
 
 @dataclass
 class FaultsResult:

@@ -5,6 +5,7 @@ docs/frame-log-format.md is the normative text; this module is its machine-reada
 
 from __future__ import annotations
 
+import datetime as dt
 import re
 
 MAGIC = "%tracelab-frames"
@@ -35,7 +36,7 @@ NONE = "-"  # an absent optional field
 
 BUS_ALIAS_RE = re.compile(r"^[A-Za-z0-9_-]{1,16}$")
 META_KEY_RE = re.compile(r"^[a-z0-9_]+$")
-ORIGIN_RE = re.compile(r"^\d{4}-\d{2}-\d{2}T\d{2}:\d{2}:\d{2}(\.\d{1,9})?Z$")
+ORIGIN_RE = re.compile(r"^(\d{4}-\d{2}-\d{2}T\d{2}:\d{2}:\d{2})(?:\.(\d{1,9}))?Z$")
 #: ``s``/``x`` then, in this order: ``r`` (classic only) or ``f`` [``b``] [``e``] (FD only).
 FORM_RE = re.compile(r"^[sx](r|f?|fb|fe|fbe)$")
 HEX_ID_RE = re.compile(r"^[0-9A-Fa-f]{1,8}$")
@@ -73,3 +74,18 @@ def parse_form(form: str) -> tuple[bool, bool, bool, bool, bool] | None:
     if not FORM_RE.match(form):
         return None
     return form[0] == "x", "r" in form, "f" in form, "b" in form, "e" in form
+
+
+def wall_time(origin: str | None, t_ns: int | None) -> str | None:
+    """ISO 8601 UTC with nanoseconds: ``%origin`` (the wall time of t_ns = 0) plus t_ns."""
+    if origin is None or t_ns is None:
+        return None
+    match = ORIGIN_RE.match(origin)
+    if not match:
+        return None
+    base = dt.datetime.strptime(match.group(1), "%Y-%m-%dT%H:%M:%S").replace(tzinfo=dt.UTC)
+    frac_ns = int((match.group(2) or "0").ljust(9, "0"))
+    epoch_ns = int(base.timestamp()) * 1_000_000_000 + frac_ns + int(t_ns)
+    seconds, ns = divmod(epoch_ns, 1_000_000_000)
+    stamp = dt.datetime.fromtimestamp(seconds, tz=dt.UTC).strftime("%Y-%m-%dT%H:%M:%S")
+    return f"{stamp}.{ns:09d}Z"
