@@ -18,6 +18,7 @@ from pathlib import Path
 
 from tracelab import __version__
 from tracelab.errors import TracelabError
+from tracelab.store.ingest import file_sha256
 
 LOG_SUFFIXES = (".frames", ".frames.gz", ".frames.zst")
 CATALOG_NAME = "catalog.toml"
@@ -25,7 +26,6 @@ CATALOG_NAME = "catalog.toml"
 PIPELINE_VERSION = f"{__version__}/fleet-1"
 UNKNOWN_VEHICLE = "unknown"
 _UNSAFE = re.compile(r"[^A-Za-z0-9_.-]")
-_HASH_BLOCK_BYTES = 1 << 20
 
 
 @dataclass(frozen=True)
@@ -98,14 +98,6 @@ def find_logs(root: Path, exclude: Path | None = None) -> list[Path]:
                          and (skip is None or (here / d).resolve() != skip))
         found.extend(here / name for name in sorted(files) if is_log(name))
     return found
-
-
-def file_sha256(path: Path) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as handle:
-        while block := handle.read(_HASH_BLOCK_BYTES):
-            digest.update(block)
-    return digest.hexdigest()
 
 
 def _date_of(origin: str | None, mtime_ns: int) -> str:

@@ -154,7 +154,8 @@ class IngestSummary:
         return "\n".join(out)
 
 
-def _sha256(path: Path) -> str:
+def file_sha256(path: Path) -> str:
+    """The sha256 of a file's bytes (hex): the identity of an ingested file."""
     with open(path, "rb") as handle:
         return hashlib.file_digest(handle, "sha256").hexdigest()
 
@@ -350,7 +351,7 @@ def ingest_logs(logs: list[Path] | list[str], dataset: Path | str, strict: bool 
                     return sha not in staged and (force or sha not in known)
 
                 try:
-                    summary, folder = _ingest_file(path, hasher.submit(_sha256, path), is_new,
+                    summary, folder = _ingest_file(path, hasher.submit(file_sha256, path), is_new,
                                                    ds, strict, advance)
                 except _AlreadyIngested as skip:
                     result.skipped.append(str(path))
