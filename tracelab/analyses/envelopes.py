@@ -20,6 +20,7 @@ import polars as pl
 
 from tracelab.analyses import run_sql_frame
 from tracelab.format.grammar import wall_time
+from tracelab.store.schema import manifest_buses
 
 #: Bus-load windows a reader can pick in the report (each a multiple of the stored window).
 LOAD_WINDOWS_NS = (10_000_000, 100_000_000, 1_000_000_000, 10_000_000_000, 60_000_000_000)
@@ -106,21 +107,15 @@ def _json_obj(text: Any) -> Any:
         return None
 
 
-def _buses(raw: Any) -> list[dict[str, Any]]:
-    """Normalise the manifest's buses JSON (a list or an alias-keyed object) to a list."""
-    if isinstance(raw, dict):
-        raw = [{"alias": k, **(v if isinstance(v, dict) else {})} for k, v in raw.items()]
-    out = []
-    for bus in raw or []:
-        if not isinstance(bus, dict):
-            continue
-        out.append({
-            "alias": bus.get("alias"),
-            "name": bus.get("name"),
-            "nominal_bps": bus.get("nominal_bps", bus.get("nominal")),
-            "data_bps": bus.get("data_bps", bus.get("data")),
-        })
-    return out
+def _buses(text: str | None) -> list[dict[str, Any]]:
+    """The manifest's buses of one file, with the fields the page shows (none when the
+    manifest's JSON cannot be read: the page still renders)."""
+    try:
+        decls = manifest_buses(text)
+    except (TypeError, ValueError):
+        return []
+    return [{k: bus.get(k) for k in ("alias", "name", "nominal_bps", "data_bps")}
+            for bus in decls]
 
 
 def _wall(origin: str | None, t_ns: int | None) -> str | None:
@@ -138,7 +133,7 @@ def header(con: duckdb.DuckDBPyConnection, run: str) -> dict[str, Any]:
     buses: dict[str, dict[str, Any]] = {}
     meta: dict[str, Any] = {}
     for row in rows.iter_rows(named=True):  # one row per ingested file: few
-        for bus in _buses(_json_obj(row["buses"])):
+        for bus in _buses(row["buses"]):
             buses.setdefault(str(bus["alias"]), bus)
         found = _json_obj(row["meta"])
         if isinstance(found, dict):

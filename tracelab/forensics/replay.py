@@ -37,6 +37,7 @@ from tracelab.physics.confinement import (
     State,
     state_of,
 )
+from tracelab.store.schema import manifest_buses
 
 KIND_ERROR = 0
 KIND_STATUS = 1
@@ -128,12 +129,10 @@ def _nominal_bps(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run: str,
     spec = catalog.buses.get(bus) if hasattr(catalog.buses, "get") else None
     if spec is not None:
         return int(spec.nominal_bps)
-    import json
-
     for (buses,) in con.execute(
             f"SELECT buses FROM manifest WHERE run = {_sql(run)}").fetchall():
         try:
-            for decl in json.loads(buses or "[]"):
+            for decl in manifest_buses(buses):
                 if decl.get("alias") == bus:
                     return int(decl["nominal_bps"])
         except (ValueError, TypeError, KeyError):
@@ -144,8 +143,6 @@ def _nominal_bps(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run: str,
 def single_pair(con: duckdb.DuckDBPyConnection, run: str | None = None
                 ) -> tuple[str, str] | None:
     """(run, bus) when the manifest holds one run with one declared bus, else None."""
-    import json
-
     try:
         rows = con.execute("SELECT DISTINCT run, buses FROM manifest").fetchall()
     except duckdb.Error:
@@ -153,7 +150,7 @@ def single_pair(con: duckdb.DuckDBPyConnection, run: str | None = None
     pairs = set()
     for r, buses in rows:
         try:
-            aliases = [b["alias"] for b in json.loads(buses or "[]")]
+            aliases = [b["alias"] for b in manifest_buses(buses)]
         except (ValueError, TypeError, KeyError):
             return None
         if len(aliases) != 1:

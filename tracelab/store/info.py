@@ -2,13 +2,13 @@
 
 from __future__ import annotations
 
-import json
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 import polars as pl
 
+from tracelab.store import schema
 from tracelab.store.dataset import open_dataset
 
 KINDS = ("frames", "errors", "status", "marks", "losses")
@@ -73,7 +73,7 @@ def dataset_info(path: str | Path) -> DatasetInfo:
     totals = {"files": manifest.height, **{c: int(manifest[c].sum()) for c in counts}}
     buses: dict[tuple[Any, ...], dict[str, Any]] = {}
     for text in manifest["buses"].to_list():  # one per file: few
-        for bus in json.loads(text):
+        for bus in schema.manifest_buses(text):
             buses.setdefault(tuple(sorted(bus.items(), key=lambda kv: kv[0])), bus)
     files = manifest.select("file", "run", "sha256", "bytes", "lines", "rejects",
                             "backward_steps", "first_backward_line", "ingested_at").to_dicts()

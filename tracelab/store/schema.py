@@ -6,6 +6,9 @@ the DuckDB views always have the same columns whatever was ingested.
 
 from __future__ import annotations
 
+import json
+from typing import Any
+
 import polars as pl
 
 FRAMES = pl.Schema({
@@ -44,6 +47,14 @@ MANIFEST = pl.Schema({
     "origin": pl.String, "buses": pl.String, "meta": pl.String, "run": pl.String,
     "vehicle": pl.String, "tracelab_version": pl.String, "ingested_at": pl.String,
 })
+
+
+
+def manifest_buses(text: str | None) -> list[dict[str, Any]]:
+    """The manifest's ``buses`` JSON, as ingest writes it: one object per ``%bus`` with
+    ``alias``, ``nominal_bps``, ``data_bps``, ``stamp``, ``name``."""
+    return json.loads(text) if text else []
+
 
 #: The record tables of a part folder, in the order they are written.
 TABLES: dict[str, pl.Schema] = {
