@@ -94,20 +94,24 @@ class BusResult:
     first_warning: dict[str, Any] | None
     error_frames: int
     busy_error_ns: int
+    trace: list[tuple[int, str, str, int]] | None = None
 
 
 class BusEngine:
     """One bus: nodes, their counters and the event loop."""
 
     def __init__(self, scenario: Scenario, schedule: BusSchedule, duration_ns: int,
-                 rng: np.random.Generator, progress: Callable[[float], None] | None = None
-                 ) -> None:
+                 rng: np.random.Generator, progress: Callable[[float], None] | None = None,
+                 trace: bool = False) -> None:
         self.sc = scenario
         self.s = schedule
         self.bus = schedule.bus.alias
         self.duration_ns = duration_ns
         self.rng = rng
         self.progress = progress
+        #: (t_ns, node, event kind, count) per counter event, for the independent reference
+        #: in tests/oracles (kinds as there: tx_error, rx_error_first, ...); None when off.
+        self.trace: list[tuple[int, str, str, int]] | None = [] if trace else None
         self.nominal_bps = schedule.bus.nominal_bps
         self.data_bps = schedule.bus.data_bps
         self.bit_ns = 1e9 / self.nominal_bps
@@ -189,6 +193,11 @@ class BusEngine:
             self._ui = 0
         self._ui += 1
         return float(self._u[self._ui - 1])
+
+    def _event(self, t_ns: int, n: int, kind: str, count: int = 1) -> None:
+        """Trace one counter event of node n (only when tracing; rare events)."""
+        if self.trace is not None:
+            self.trace.append((t_ns, self.names[n], kind, count))
 
     def _note(self, n: int, t_ns: int) -> None:
         """Record node n's counters at t_ns if they changed; track state transitions."""
@@ -287,6 +296,7 @@ class BusEngine:
     def _recover(self, n: int, t_ns: int) -> None:
         """Rule l: 128 x 11 recessive bits seen while bus-off: restart with zero counters."""
         self.counters[n].recover()
+        self._event(t_ns, n, "recessive_11", RECOVERY_SEQUENCES)
         del self.rec_time[n], self.rec_occ[n], self.rec_run_start[n]
         self.truth[n].bus_off[-1]["to_ns"] = t_ns
         self._note(n, t_ns)
@@ -340,6 +350,7 @@ class BusEngine:
         stop_ns = min(until_ns, self.duration_ns)
         while not c.error_passive and not c.bus_off and t + ack_after_ns < stop_ns:
             c.transmit_error(ack_error=True)
+            self._event(t + ack_after_ns, n, "tx_ack_error")
             self._note(n, t + ack_after_ns)
             t += attempt_ns
 
@@ -500,7 +511,9 @@ class BusEngine:
             # A passive receiver's flag is recessive: it alone loses the frame (REC + 1).
             rx_passive = decision[1]
             self.counters[rx_passive].receive_error(first_detector=False)
-            self._note(rx_passive, start + self._time_to_bit(bits - EOF_FROM_END, bits, dpb))
+            t_rx = start + self._time_to_bit(bits - EOF_FROM_END, bits, dpb)
+            self._event(t_rx, rx_passive, "rx_error")
+            self._note(rx_passive, t_rx)
             decision = None
         if decision is None:
             end = start + dur
@@ -513,10 +526,12 @@ class BusEngine:
             t_eof = end - int(round(INTERMISSION_BITS * self.bit_ns))
             if cx.tec:
                 cx.transmit_success()
+                self._event(t_eof, x, "tx_success")
                 self._note(x, t_eof)
             for n, c in enumerate(self.counters):
                 if n != x and n != rx_passive and c.rec and self._participating(n):
                     c.receive_success()
+                    self._event(t_eof, n, "rx_success")
                     self._note(n, t_eof)
         else:
             end = self._error(decision, r, msg, x, start, bits, dpb, esi)
@@ -574,13 +589,16 @@ class BusEngine:
         cx = self.counters[x]
         was_off = cx.bus_off
         cx.transmit_error(ack_error=kind == "ack")
+        self._event(t_flag, x, "tx_ack_error" if kind == "ack" else "tx_error")
         self._note(x, t_flag)
         if cx.bus_off and not was_off:
             self.truth[x].bus_off.append({"from_ns": t_flag, "to_ns": None})
             self.rec_occ[x] = 0
             self.rec_run_start[x] = end - TAIL_RECESSIVE_BITS * self.bit_ns
         for n in receivers:
-            self.counters[n].receive_error(first_detector=kind == "rx" and n == first)
+            first_n = kind == "rx" and n == first
+            self.counters[n].receive_error(first_detector=first_n)
+            self._event(t_flag, n, "rx_error_first" if first_n else "rx_error")
             self._note(n, t_flag)
         return end
 
@@ -596,7 +614,7 @@ class BusEngine:
         return BusResult(s, start, release, start + durations, esi, self.records,
                          np.asarray(dropped, dtype=np.int64), self.truth,
                          self.first_degraded, self.first_warning, self.error_frames,
-                         self.busy_error_ns)
+                         self.busy_error_ns, self.trace)
 
 
 __all__ = ["BusEngine", "BusResult", "NodeTruth"]

@@ -93,9 +93,12 @@ def truth_path(log: str | Path) -> Path:
     return Path(str(log) + ".truth.json")
 
 
-def run_buses(scenario: Scenario, duration_ns: int, seed: int, quiet: bool = True
-              ) -> list[BusResult]:
-    """Simulate every bus of the scenario (no file output); used by simulate() and tests."""
+def run_buses(scenario: Scenario, duration_ns: int, seed: int, quiet: bool = True,
+              trace: bool = False) -> list[BusResult]:
+    """Simulate every bus of the scenario (no file output); used by simulate() and tests.
+
+    ``trace=True`` keeps every counter event per node in ``BusResult.trace`` (tests feed it to
+    the independent reference in tests/oracles/counters_reference.py)."""
     seeds = np.random.SeedSequence(seed).spawn(2 * len(scenario.catalog.buses))
     results = []
     with progress("simulating", total=100 * len(scenario.catalog.buses), quiet=quiet) as advance:
@@ -109,7 +112,7 @@ def run_buses(scenario: Scenario, duration_ns: int, seed: int, quiet: bool = Tru
 
             engine = BusEngine(scenario, schedule, duration_ns,
                                np.random.default_rng(seeds[2 * i + 1]),
-                               progress=None if quiet else tick)
+                               progress=None if quiet else tick, trace=trace)
             results.append(engine.run())
     return results
 
