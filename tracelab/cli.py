@@ -23,6 +23,16 @@ app = typer.Typer(
 )
 
 
+#: The memory options every dataset-reading command takes (store/limits.py); reuse them in
+#: new commands and wrap the call in ``with workflow.limits(memory, temp_dir):``.
+MEMORY_OPTION: Any = typer.Option(
+    None, "--memory", metavar="SIZE",
+    help="Peak memory budget, e.g. 2GiB or 512MiB (default $TRACELAB_MEMORY, else 2GiB); "
+         "DuckDB spills to the temp dir beyond its share.")
+TEMP_DIR_OPTION: Any = typer.Option(
+    None, "--temp-dir", help="Folder to spill to (default $TRACELAB_TEMP_DIR, else DATASET/.tmp).")
+
+
 def _print_json(payload: Any) -> None:
     typer.echo(json.dumps(payload, indent=2, default=str))
 
@@ -76,11 +86,14 @@ def timing(
     run: str | None = typer.Option(None, "--run", help="Only this run."),
     gap_factor: float = typer.Option(1.5, "--gap-factor", help="Gap when inter-arrival > factor x period."),
     as_json: bool = typer.Option(False, "--json", help="Print JSON."),
+    memory: str | None = MEMORY_OPTION,
+    temp_dir: Path | None = TEMP_DIR_OPTION,
 ) -> None:
     """Period, jitter, drift and gaps per message."""
     from tracelab import workflow
 
-    result = workflow.timing(dataset, catalog=catalog, run=run, gap_factor=gap_factor)
+    with workflow.limits(memory, temp_dir):
+        result = workflow.timing(dataset, catalog=catalog, run=run, gap_factor=gap_factor)
     _print_json(result.as_json()) if as_json else typer.echo(result.describe())
 
 
@@ -90,11 +103,14 @@ def load(
     window: str = typer.Option("100ms", "--window", help="Window length, 1ms .. 1h."),
     run: str | None = typer.Option(None, "--run", help="Only this run."),
     as_json: bool = typer.Option(False, "--json", help="Print JSON."),
+    memory: str | None = MEMORY_OPTION,
+    temp_dir: Path | None = TEMP_DIR_OPTION,
 ) -> None:
     """Bus load over time per bus, from exact frame durations."""
     from tracelab import workflow
 
-    result = workflow.load(dataset, window=window, run=run)
+    with workflow.limits(memory, temp_dir):
+        result = workflow.load(dataset, window=window, run=run)
     _print_json(result.as_json()) if as_json else typer.echo(result.describe())
 
 
@@ -104,11 +120,14 @@ def sql(
     query: str | None = typer.Argument(None, help="SQL; omit for an interactive prompt."),
     fmt: str = typer.Option("table", "--format", help="table | csv | json | parquet"),
     out: Path | None = typer.Option(None, "--out", help="Write the result to this file."),
+    memory: str | None = MEMORY_OPTION,
+    temp_dir: Path | None = TEMP_DIR_OPTION,
 ) -> None:
     """Read-only DuckDB SQL over a dataset (or a fleet) with ready-made views and macros."""
     from tracelab import workflow
 
-    workflow.sql(dataset, query, fmt=fmt, out=out)
+    with workflow.limits(memory, temp_dir):
+        workflow.sql(dataset, query, fmt=fmt, out=out)
 
 
 @app.command()
@@ -117,11 +136,14 @@ def faults(
     catalog: Path = typer.Option(..., "--catalog", help="Network catalog TOML (who sends what)."),
     run: str | None = typer.Option(None, "--run", help="Only this run."),
     as_json: bool = typer.Option(False, "--json", help="Print JSON."),
+    memory: str | None = MEMORY_OPTION,
+    temp_dir: Path | None = TEMP_DIR_OPTION,
 ) -> None:
     """Replay error counters and name the node that degraded first, with the evidence."""
     from tracelab import workflow
 
-    result = workflow.faults(dataset, catalog=catalog, run=run)
+    with workflow.limits(memory, temp_dir):
+        result = workflow.faults(dataset, catalog=catalog, run=run)
     _print_json(result.as_json()) if as_json else typer.echo(result.describe())
 
 
@@ -134,12 +156,15 @@ def report(
     shared_plotly: bool = typer.Option(False, "--shared-plotly",
                                        help="Write plotly.js once beside the reports instead of embedding it."),
     load_limit: float = typer.Option(0.5, "--load-limit", help="Recommended maximum bus load (reference line)."),
+    memory: str | None = MEMORY_OPTION,
+    temp_dir: Path | None = TEMP_DIR_OPTION,
 ) -> None:
     """Write an interactive, self-contained HTML dashboard per run."""
     from tracelab import workflow
 
-    paths = workflow.report(dataset, output, catalog=catalog, run=run,
-                            shared_plotly=shared_plotly, load_limit=load_limit)
+    with workflow.limits(memory, temp_dir):
+        paths = workflow.report(dataset, output, catalog=catalog, run=run,
+                                shared_plotly=shared_plotly, load_limit=load_limit)
     for path in paths:
         typer.echo(f"report: {path}")
 
@@ -148,11 +173,14 @@ def report(
 def demo(
     output: Path = typer.Option(Path("demo_out"), "-o", "--output", help="Working directory."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bars."),
+    memory: str | None = MEMORY_OPTION,
+    temp_dir: Path | None = TEMP_DIR_OPTION,
 ) -> None:
     """Run the whole job on the bundled demo scenario and print the verdict and report path."""
     from tracelab import workflow
 
-    typer.echo(workflow.demo(output, quiet=quiet))
+    with workflow.limits(memory, temp_dir):
+        typer.echo(workflow.demo(output, quiet=quiet))
 
 
 @app.command()

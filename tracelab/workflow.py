@@ -9,6 +9,19 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Any
 
+# --- memory limits (every dataset-reading command) ----------------------------------------
+
+
+def limits(memory: str | None = None, temp_dir: Path | None = None) -> Any:
+    """Context manager: every dataset or fleet connection opened inside gets this memory
+    budget (``--memory``, else $TRACELAB_MEMORY, else 2 GiB) and spills to ``temp_dir``
+    (else $TRACELAB_TEMP_DIR, else DATASET/.tmp). Nested jobs (report computing timing)
+    inherit it."""
+    from tracelab.store.limits import use_limits
+
+    return use_limits(memory, temp_dir)
+
+
 # --- foundation: ingest / info ------------------------------------------------------------
 
 

@@ -17,6 +17,7 @@ from tracelab.errors import StoreError
 from tracelab.fleet import layout
 from tracelab.fleet.regressions import REGRESSIONS
 from tracelab.store import schema
+from tracelab.store.limits import configure
 
 _HIVE = "hive_partitioning = true, union_by_name = true, " \
         "hive_types = {'vehicle': VARCHAR, 'date': DATE}"
@@ -68,6 +69,7 @@ def connect_runs(fleet: Path, runs: pl.DataFrame,
     """Views over the given runs table (the batch uses this before it commits)."""
     con = duckdb.connect(":memory:")
     try:
+        configure(con, fleet)  # the command's memory budget, spilling to FLEET/.tmp
         con.register("_runs", runs.to_arrow())
         con.execute("CREATE VIEW runs AS SELECT * FROM _runs")
         flags = regressions if regressions is not None else pl.DataFrame(schema=REGRESSIONS)

@@ -24,6 +24,7 @@ import polars as pl
 
 from tracelab.errors import StoreError, UsageError
 from tracelab.store import schema
+from tracelab.store.limits import configure
 
 if TYPE_CHECKING:
     import duckdb
@@ -101,13 +102,13 @@ class Dataset:
 
     def connect(self) -> duckdb.DuckDBPyConnection:
         """In-memory DuckDB with views frames, errors, status, marks, losses, rejects,
-        manifest, and one view per ``analyses/*.parquet`` named after the file stem."""
+        manifest, and one view per ``analyses/*.parquet`` named after the file stem; under
+        the current memory limits (``store.limits``), spilling to ``DATASET/.tmp``."""
         import duckdb  # here, not at import time: ingest never needs it (0.2 s of start-up)
 
         try:
             con = duckdb.connect(":memory:")
-            if threads := os.environ.get("TRACELAB_THREADS"):  # a batch worker's share of cores
-                con.execute(f"SET threads = {int(threads)}")
+            configure(con, self.path)  # memory budget, spill folder, threads (store/limits.py)
             shas = self.manifest()["sha256"].to_list()
             for table in schema.TABLES:
                 files = self.part_files(table, shas)
