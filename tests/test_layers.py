@@ -114,3 +114,25 @@ def test_imports_point_down(path: Path) -> None:
 ])
 def test_checker(source: str, name: str, expected: int) -> None:
     assert len(violations(source, name)) == expected
+
+
+#: Within format/: the reader's parts, lower numbers lower; the fast and exact paths stay
+#: apart (neither may lean on the other), and only reader.py puts them together.
+FORMAT_LAYERS: dict[str, int] = {
+    "grammar": 0, "compression": 0, "writer": 1,
+    "chunk": 2, "header": 2, "blocks": 2,
+    "exact": 3, "fast": 3,
+    "reader": 4, "__init__": 5,
+}
+
+
+@pytest.mark.parametrize("path", sorted((PACKAGE / "format").glob("*.py")), ids=lambda p: p.stem)
+def test_reader_parts_point_down(path: Path) -> None:
+    assert path.stem in FORMAT_LAYERS, f"add format/{path.name} to FORMAT_LAYERS"
+    me = FORMAT_LAYERS[path.stem]
+    for line, target in _imports(path.read_text(encoding="utf-8"), _module_name(path),
+                                 path.name == "__init__.py"):
+        if not target.startswith("tracelab.format."):
+            continue
+        other = FORMAT_LAYERS[target.split(".")[2]]
+        assert other < me, f"format/{path.name}:{line} imports {target}"

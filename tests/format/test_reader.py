@@ -213,7 +213,7 @@ def test_valid_chunks_take_the_fast_path(tmp_path: Path) -> None:
 
 def test_a_line_without_end_cannot_exhaust_memory(tmp_path: Path,
                                                   monkeypatch: pytest.MonkeyPatch) -> None:
-    monkeypatch.setattr("tracelab.format.reader.MAX_LINE_BYTES", 1000)
+    monkeypatch.setattr("tracelab.format.blocks.MAX_LINE_BYTES", 1000)
     path = _write(tmp_path, HEADER + GOOD + "x" * 5000)
     with LogReader(path, chunk_bytes=256) as reader, pytest.raises(
             LogFormatError, match="line is longer than") as caught:

@@ -6,7 +6,7 @@ import polars as pl
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from tracelab.format.reader import _decode_hex
+from tracelab.format.fast import decode_hex
 
 payloads = st.lists(st.one_of(st.none(), st.binary(max_size=64)), max_size=40)
 
@@ -18,7 +18,7 @@ def test_decode_hex_matches_bytes_fromhex(values: list[bytes | None], upper: boo
     texts = [None if v is None else (v.hex().upper() if upper else v.hex()) for v in values]
     # a sliced column: its character buffer starts past other rows' text
     column = pl.Series("data", ["ab"] * skip + texts, dtype=pl.String).slice(skip)
-    decoded = _decode_hex(column)
+    decoded = decode_hex(column)
     assert decoded is not None
     # source: the Python standard library, bytes.fromhex
     expected = [None if t is None else bytes.fromhex(t) for t in texts]
@@ -29,5 +29,5 @@ def test_decode_hex_matches_bytes_fromhex(values: list[bytes | None], upper: boo
 def test_decode_hex_declines_what_is_not_an_even_run_of_hex_digits() -> None:
     # the caller then decodes with polars, which nulls these values
     for bad in (["0A", "0"], ["0A", "zz"], ["-"], ["0A0g"]):
-        assert _decode_hex(pl.Series(bad)) is None
-    assert _decode_hex(pl.Series(["", "00"])).to_list() == [b"", b"\x00"]  # type: ignore[union-attr]
+        assert decode_hex(pl.Series(bad)) is None
+    assert decode_hex(pl.Series(["", "00"])).to_list() == [b"", b"\x00"]  # type: ignore[union-attr]
