@@ -27,7 +27,7 @@ def _vectorised(frames: list[Frame]) -> list[tuple[int, int]]:
 
 
 def _n_bytes(dlc: int, fd: bool, rtr: bool) -> int:
-    # source: ISO 11898-1:2015 Table 5 (DLC -> data bytes), written out here
+    # from memory: ISO 11898-1:2015 DLC -> data bytes table, written out here
     fd_table = [0, 1, 2, 3, 4, 5, 6, 7, 8, 12, 16, 20, 24, 32, 48, 64]
     if fd:
         return fd_table[dlc]
@@ -91,10 +91,10 @@ def test_identifier_space() -> None:
 
 
 def test_fd_dlc_table() -> None:
-    # source: ISO 11898-1:2015 Table 5
+    # from memory: ISO 11898-1:2015 DLC table (also a trade fact: 12..64 bytes for DLC 9..15)
     assert [bl.payload_bytes(d, True, False) for d in range(16)] == [
         0, 1, 2, 3, 4, 5, 6, 7, 8, 12, 16, 20, 24, 32, 48, 64]
-    # classic DLC 9..15 carries 8 bytes (ISO 11898-1:2015 Table 5)
+    # classic DLC 9..15 carries 8 bytes (from memory, same table)
     assert [bl.payload_bytes(d, False, False) for d in range(9, 16)] == [8] * 7
 
 
@@ -151,7 +151,7 @@ def test_fd_64_byte_bound_value() -> None:
 
 
 def test_fd_fixed_stuff_bits_and_crc_choice() -> None:
-    # ISO 11898-1:2015 clause 10.5: 6 fixed stuff bits with CRC-17 (<= 16 bytes), 7 with CRC-21
+    # from memory (ISO 11898-1:2015 CAN FD CRC field): 6 fixed stuff bits with CRC-17 (<= 16 bytes), 7 with CRC-21
     for dlc, crc_bits, fixed in ((0, 17, 6), (10, 17, 6), (11, 21, 7), (15, 21, 7)):
         w = bl.frame_wire_reference(0x100, False, False, True, False, False, dlc,
                                     bytes(_n_bytes(dlc, True, False)))
@@ -241,7 +241,8 @@ def test_null_and_short_data_padded() -> None:
 def test_fd_crc_over_stuffed_bits_against_crccheck() -> None:
     # The ISO CAN FD CRC covers SOF..data with the dynamic stuff bits, then the stuff count,
     # not the fixed stuff bits; register initialised with its top bit set. Recompute it with
-    # the crccheck library (generic Crc) on frames whose CRC input is whole bytes.
+    # crccheck's generic Crc engine on frames whose CRC input is whole bytes (crccheck
+    # supplies the engine and the polynomials, not the ISO init value).
     from crccheck.crc import Crc
 
     rng = np.random.default_rng(5)
@@ -259,10 +260,14 @@ def test_fd_crc_over_stuffed_bits_against_crccheck() -> None:
             continue
         packed = np.packbits(np.array(crc_input, dtype=np.uint8)).tobytes()
         width, poly, init = (17, 0x1685B, 1 << 16) if n <= 16 else (21, 0x102899, 1 << 20)
-        # source: crccheck library (generic Crc with ISO 11898-1:2015 FD parameters)
+        # crccheck's generic Crc engine recomputes the register; the polynomials are its
+        # catalogue ones (Crc17CanFd / Crc21CanFd), the top-bit init is from memory, and
+        # pierremolinaro/codes-can CANFDFrameGenerator.h (an independent public generator)
+        # starts its ISO accumulators at 1 << 16 / 1 << 20 too
         assert w.crc == Crc(width, poly, initvalue=init).process(packed).final()
         # the stuff count: Gray code of (dynamic stuff bits mod 8) + even parity
-        # (source: ISO 11898-1:2015 clause 10.4.2.6, table written out here)
+        # (source: pierremolinaro/codes-can CANFDFrameGenerator.h, GRAY_CODE_PARITY
+        # {0, 3, 6, 5, 12, 15, 10, 9}; the clause itself from memory)
         gray_parity = ["0000", "0011", "0110", "0101", "1100", "1111", "1010", "1001"]
         assert "".join(map(str, w.bits[k + 1:k + 5])) == gray_parity[w.dynamic_stuff_bits % 8]
         checked += 1

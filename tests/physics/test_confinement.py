@@ -1,7 +1,10 @@
 """Rule facts of ISO 11898-1 fault confinement, checked on NodeCounters.
 
-source: ISO 11898-1:2015 clause 12.1.4 fault-confinement rules (Bosch CAN 2.0 Part B section 8);
-the ISO 16845-1 conformance tests check the same counter changes.
+The rules are quoted from memory of ISO 11898-1:2015's fault-confinement clause and of the
+Bosch CAN Specification 2.0 (1991), Part B, section 8 (rules 1-12, lettered a-l in
+tracelab.physics.confinement); clause and rule numbers are not verified against the texts.
+The per-event reference in tests/oracles/ checks the package against an independent
+implementation of the same rules.
 """
 
 from __future__ import annotations
@@ -18,7 +21,7 @@ from tracelab.physics.confinement import (
 
 
 def test_lone_node_without_ack_reaches_128_at_16th_attempt_and_stays() -> None:
-    # source: ISO 11898-1 rule c exception 1 (error-passive transmitter, ACK error, no dominant
+    # from memory: ISO 11898-1 fault-confinement rule c exception 1 (error-passive transmitter, ACK error, no dominant
     # bit during its passive flag): a lone node stops at TEC 128, never bus-off.
     node = NodeCounters()
     tecs = []
@@ -32,7 +35,7 @@ def test_lone_node_without_ack_reaches_128_at_16th_attempt_and_stays() -> None:
 
 
 def test_persistent_transmit_error_passive_after_16_bus_off_after_32() -> None:
-    # source: ISO 11898-1 rules c and j: +8 per transmit error, bus-off when TEC > 255
+    # from memory: ISO 11898-1 fault-confinement rules c and j: +8 per transmit error, bus-off when TEC > 255
     node = NodeCounters()
     states = []
     for _ in range(32):
@@ -44,7 +47,7 @@ def test_persistent_transmit_error_passive_after_16_bus_off_after_32() -> None:
 
 
 def test_alternating_error_success_tec_7k_plus_1() -> None:
-    # source: ISO 11898-1 rules c and g (+8 / -1); the counter sequence ISO 16845-1 checks.
+    # from memory: ISO 11898-1 fault-confinement rules c and g (+8 / -1); the sequence is derived.
     node = NodeCounters()
     passive_at = bus_off_at = None
     for k in range(1, 40):
@@ -61,7 +64,7 @@ def test_alternating_error_success_tec_7k_plus_1() -> None:
 
 
 def test_tec_after_kth_error_in_alternation() -> None:
-    # source: ISO 11898-1 rules c and g; TEC = 7k + 1 right after the k-th error
+    # from memory: ISO 11898-1 fault-confinement rules c and g; TEC = 7k + 1 right after the k-th error (derived)
     node = NodeCounters()
     for k in range(1, 30):
         node.transmit_error()
@@ -70,7 +73,7 @@ def test_tec_after_kth_error_in_alternation() -> None:
 
 
 def test_first_detector_gains_9_others_1() -> None:
-    # source: ISO 11898-1 rules a and b (first detector sees a dominant bit after its flag)
+    # from memory: ISO 11898-1 fault-confinement rules a and b (first detector sees a dominant bit after its flag)
     first, other = NodeCounters(), NodeCounters()
     first.receive_error(first_detector=True)
     other.receive_error()
@@ -79,7 +82,7 @@ def test_first_detector_gains_9_others_1() -> None:
 
 @pytest.mark.parametrize("after", [119, 123, 127])
 def test_rec_above_127_returns_into_119_127_after_one_good_reception(after: int) -> None:
-    # source: ISO 11898-1 rule h: REC > 127 is set to a value between 119 and 127
+    # from memory: ISO 11898-1 fault-confinement rule h: REC > 127 is set to a value between 119 and 127
     config = ConfinementConfig(rec_after_passive_reception=after)
     node = NodeCounters(rec=140, config=config)
     assert node.state == "error-passive"
@@ -95,7 +98,7 @@ def test_rec_out_of_range_is_refused() -> None:
 
 
 def test_bus_off_recovery_128_x_11_bits_is_2816_us_at_500k() -> None:
-    # source: ISO 11898-1 rule l (128 occurrences of 11 consecutive recessive bits)
+    # from memory: ISO 11898-1 fault-confinement rule l (128 occurrences of 11 consecutive recessive bits)
     assert recovery_bits() == 1408
     bit_ns = 1e9 / 500_000
     assert recovery_bits() * bit_ns == pytest.approx(2_816_000)  # 2.816 ms
@@ -105,7 +108,7 @@ def test_bus_off_recovery_128_x_11_bits_is_2816_us_at_500k() -> None:
 
 
 def test_state_thresholds() -> None:
-    # source: ISO 11898-1 rules i, j, k: passive above 127, bus-off above 255
+    # from memory: ISO 11898-1 fault-confinement rules i, j, k: passive above 127, bus-off above 255
     assert state_of(127, 127) == "warning"
     assert state_of(128, 0) == "error-passive" and state_of(0, 128) == "error-passive"
     assert state_of(255, 0) == "error-passive" and state_of(256, 0) == "bus-off"

@@ -47,7 +47,9 @@ def test_against_crccheck(data: bytes) -> None:
 @settings(max_examples=100, deadline=None)
 @given(st.binary(min_size=1, max_size=40))
 def test_frame_init_against_crccheck(data: bytes) -> None:
-    # source: crccheck generic Crc with the ISO 11898-1:2015 FD initial values (top bit set)
+    # crccheck's generic Crc engine with the top-bit init (the init value is from memory of
+    # ISO 11898-1:2015; crccheck's own CAN-FD entries use init 0, so this checks only our
+    # register arithmetic with a preloaded register, not the parameter)
     crc17_iso = Crc(17, crc.CRC17_POLY, initvalue=crc.CRC17_FRAME_INIT)
     crc21_iso = Crc(21, crc.CRC21_POLY, initvalue=crc.CRC21_FRAME_INIT)
     assert crc.crc17_bits(_bits(data), crc.CRC17_FRAME_INIT) == crc17_iso.process(data).final()

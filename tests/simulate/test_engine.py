@@ -108,7 +108,7 @@ def test_error_free_utilisation_matches_analytic(tmp_path: Path) -> None:
     assert measured == pytest.approx(analytic, rel=0.01)
 
 
-# --- fault confinement (ISO 11898-1 clause 12.1.4 rules; ISO 16845-1 checks the same) ----
+# --- fault confinement (ISO 11898-1 rules, clause numbers from memory) ---------------------
 
 
 def test_isolated_node_ack_errors_stop_at_128(tmp_path: Path) -> None:

@@ -2,7 +2,8 @@
 
 Why exact: bus load, frame start times (logs stamp the end of EOF) and gap analyses all
 depend on it, and bit stuffing makes the length depend on the identifier and payload bits.
-docs/frame-physics.md explains the layouts and rules; ISO 11898-1:2015 clause 10 is the source.
+docs/frame-physics.md explains the layouts and rules; ISO 11898-1:2015 clause 10 is the source
+(clause numbers here are from memory).
 
 Three implementations, one answer (the tests hold them equal):
 - :func:`frame_wire_reference`: builds the actual bit sequence on the wire, pure Python.

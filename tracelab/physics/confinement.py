@@ -6,7 +6,7 @@ cannot disagree about the rules.
 
 Source of the rules: ISO 11898-1:2015, clause 12.1.4 "Fault confinement" (numbering from
 memory); the same twelve rules appear in the Bosch CAN Specification 2.0 (1991), Part B,
-section 8. ISO 16845-1 conformance tests check the counter changes they imply.
+section 8 (also quoted from memory here; tests/oracles/ holds an independent reference).
 """
 
 from __future__ import annotations

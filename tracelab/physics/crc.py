@@ -1,12 +1,12 @@
 """The three CRCs of ISO 11898-1:2015: CRC-15 (classic), CRC-17 and CRC-21 (CAN FD).
 
 All three are MSB-first, unreflected, with no final XOR. The ``*_bits`` functions run the
-shift register of ISO 11898-1:2015 clause 10.4.2.6 bit by bit (the reference); the byte-wise
+shift register of ISO 11898-1:2015 (CRC field clause; number from memory) bit by bit (the reference); the byte-wise
 functions and :func:`crc_rows` use a 256-entry table, the same register eight bits at a time.
 
 Initial values: the byte-wise functions default to 0, the parameters of the public CRC
 catalogue (CRC-15/CAN, CRC-17/CAN-FD, CRC-21/CAN-FD), so they can be checked against its
-check values. Inside an ISO CAN FD frame the register starts with its top bit set
+check values (crccheck records them). Inside an ISO CAN FD frame the register starts with its top bit set
 (``CRC17_FRAME_INIT`` / ``CRC21_FRAME_INIT``); a classic frame starts from 0.
 """
 
