@@ -2,6 +2,9 @@
 PYTHON ?= python3
 VENV := .venv
 BIN := $(VENV)/bin
+# Two stamps: `make demo` needs only the runtime dependencies; `make test` adds the test extras
+# (pytest, hypothesis, ruff, mypy, scipy, playwright ...), which are most of the install time.
+RUNTIME := $(VENV)/.installed-runtime
 STAMP := $(VENV)/.installed
 
 .PHONY: demo test lint typecheck unit browser-deps bench clean
@@ -10,12 +13,15 @@ $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
 
 # Reinstall whenever pyproject.toml changes.
-$(STAMP): pyproject.toml | $(BIN)/python
-	$(BIN)/pip install --quiet --upgrade pip
-	$(BIN)/pip install --quiet -e '.[test]'
+$(RUNTIME): pyproject.toml | $(BIN)/python
+	$(BIN)/pip install --quiet --disable-pip-version-check -e .
+	touch $(RUNTIME)
+
+$(STAMP): pyproject.toml $(RUNTIME)
+	$(BIN)/pip install --quiet --disable-pip-version-check -e '.[test]'
 	touch $(STAMP)
 
-demo: $(STAMP)
+demo: $(RUNTIME)
 	$(BIN)/tracelab demo -o demo_out
 
 # Headless Chromium for the report's browser tests (Debian package; no browser download).

@@ -15,7 +15,7 @@ PACKAGE = Path(__file__).resolve().parents[1] / "tracelab"
 
 #: Layer of each top-level part of the package; higher numbers sit higher in the stack.
 LAYERS: dict[str, int] = {
-    "tracelab": 0, "errors": 0, "progress": 0,
+    "tracelab": 0, "errors": 0, "progress": 0, "wording": 0,
     "format": 1,
     "physics": 2,
     "network": 3,

@@ -277,7 +277,21 @@ def demo(output: Path, quiet: bool = False) -> str:
     sentence, _ = verdict_sentence(faults_json, errors)
     lines = [f"verdict: {sentence}", *_demo_truth(log, faults_json)]
     lines += [f"report: {p}" for p in paths]
+    lines += _demo_next_steps(dataset, paths, scenario)
     return "\n".join(lines)
+
+
+def _demo_next_steps(dataset: Path, reports: list[Path], scenario: Path) -> list[str]:
+    """What a new user would run next on the demo dataset (quoted for a POSIX shell)."""
+    import shlex
+
+    query = ("SELECT bus, hex_id(id, ext) AS id, name, missing FROM timing "
+             "WHERE missing > 0 ORDER BY missing DESC")
+    steps = [f"tracelab sql {shlex.quote(str(dataset))} {shlex.quote(query)}"]
+    steps += [f"open {shlex.quote(str(p))} in a browser" for p in reports[:1]]
+    steps.append(f"tracelab faults {shlex.quote(str(dataset))} --catalog "
+                 f"{shlex.quote(str(scenario))} --json")
+    return ["next:", *(f"  {s}" for s in steps)]
 
 
 def _demo_truth(log: Path, faults_json: Any) -> list[str]:

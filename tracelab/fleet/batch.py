@@ -29,6 +29,7 @@ from tracelab.fleet.executors import EXECUTORS, DaskExecutor, LocalExecutor, mak
 from tracelab.fleet.index import ensure_plotly
 from tracelab.fleet.job import PipelineSteps, RunResult, failed_result, process_run
 from tracelab.fleet.summary import runs_frame
+from tracelab.wording import counted
 
 MANIFEST = pl.Schema({
     "file": pl.String, "sha256": pl.String, "bytes": pl.Int64, "mtime_ns": pl.Int64,
@@ -56,10 +57,11 @@ class BatchSummary:
         return len(self.failures)
 
     def describe(self) -> str:
-        lines = [f"batch: {self.processed} runs processed, {self.skipped} skipped, "
+        lines = [f"batch: {counted(self.processed, 'run')} processed, {self.skipped} skipped, "
                  f"{self.failed} failed in {self.seconds:.1f} s"]
         lines += [f"  failed {run}: {reason}" for run, reason in self.failures]
-        lines.append(f"fleet: {self.fleet} ({self.runs} runs, {self.flags} regression flags; "
+        lines.append(f"fleet: {self.fleet} ({counted(self.runs, 'run')}, "
+                     f"{counted(self.flags, 'regression flag')}; "
                      f"{self.fleet / layout.INDEX_FILE})")
         return "\n".join(lines)
 

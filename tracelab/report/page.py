@@ -17,6 +17,7 @@ from tracelab import __version__
 from tracelab.analyses.envelopes import ReportData
 from tracelab.report import figures, style
 from tracelab.report.figures import NS_PER_S, esc, message_label
+from tracelab.wording import counted
 
 PLOTLY_FILE = "plotly.min.js"
 LOSS_ROWS = 10
@@ -334,7 +335,7 @@ def quality_section(data: ReportData) -> str:
                           for f, ln in h.get("backward_at") or [])
         parts.append(f"<p>first at {where}</p>")
     if data.marks_total > len(data.marks):
-        parts.append(f'<p class="note">{data.marks_total:,} marks; the first '
+        parts.append(f'<p class="note">{counted(data.marks_total, "mark")}; the first '
                      f"{len(data.marks)} are drawn.</p>")
     for note in data.notes:
         parts.append(f'<p class="note">{esc(note)}</p>')

@@ -72,10 +72,11 @@ class SimulationSummary:
             lines.append(f"  bus {b.bus}: {b.frames} frames, {b.error_frames} error frames, "
                          f"load {100 * b.load_ratio:.1f} %")
         for entry in self.first_degraded:
-            first = entry["first"]
-            if first:
-                lines.append(f"  bus {entry['bus']}: first degraded node {first['node']} "
-                             f"({first['state']} at {first['t_ns'] / 1e9:.3f} s)")
+            first, worst = entry.get("first_transition"), entry.get("worst")
+            if first:  # same definition as `tracelab faults`: first transition out of error-active
+                lines.append(f"  bus {entry['bus']}: {first['node']} degraded first: "
+                             f"{first['state']} at {first['t_ns'] / 1e9:.3f} s; worst state "
+                             f"{worst['state']} at {worst['t_ns'] / 1e9:.3f} s")
         lines.append(f"log: {self.log}")
         lines.append(f"truth: {self.truth}")
         return "\n".join(lines)
@@ -86,6 +87,25 @@ class SimulationSummary:
                 "records": self.records, "frames": self.frames, "elapsed_s": self.elapsed_s,
                 "buses": [{"bus": b.bus, "frames": b.frames, "error_frames": b.error_frames,
                            "load_ratio": b.load_ratio} for b in self.buses]}
+
+
+#: Severity of the fault-confinement states, for "worst state reached".
+_SEVERITY = {"error-active": 0, "warning": 1, "error-passive": 2, "bus-off": 3}
+
+
+def _worst_state(nodes: list[Any], first: dict[str, Any] | None) -> dict[str, Any] | None:
+    """The most severe state the first-degraded node reached, and when it first reached it."""
+    if first is None:
+        return None
+    worst = dict(first)
+    for nt in nodes:
+        if nt.node != first["node"]:
+            continue
+        for tr in nt.transitions:
+            if _SEVERITY.get(tr["to"], 0) > _SEVERITY.get(worst["state"], 0):
+                worst = {"bus": first["bus"], "node": nt.node, "state": tr["to"],
+                         "t_ns": tr["t_ns"]}
+    return worst
 
 
 def truth_path(log: str | Path) -> Path:
@@ -327,7 +347,9 @@ def build_truth(scenario: Scenario, results: list[BusResult], duration_ns: int, 
                 "babble": m.babble,
             })
         first.append({"bus": bus, "first": res.first_degraded,
-                      "first_warning": res.first_warning})
+                      "first_warning": res.first_warning,
+                      "first_transition": res.first_warning,
+                      "worst": _worst_state(res.nodes, res.first_warning)})
     return {
         "run": scenario.run.name, "seed": seed, "duration_ns": duration_ns,
         "origin": scenario.run.origin, "scenario": str(scenario.path),

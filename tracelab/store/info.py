@@ -10,6 +10,7 @@ import polars as pl
 
 from tracelab.store import schema
 from tracelab.store.dataset import open_dataset
+from tracelab.wording import counted
 
 KINDS = ("frames", "errors", "status", "marks", "losses")
 
@@ -45,14 +46,15 @@ class DatasetInfo:
                     if run["span_s"] is not None else "no records")
             origin = f", origin {run['origin']}" if run["origin"] else ""
             vehicle = f", vehicle {run['vehicle']}" if run["vehicle"] else ""
-            out.append(f"run {run['run']}: {run['files']} file(s), {span}{origin}{vehicle}; "
-                       f"{run['frames']:,} frames, {run['rejects']:,} rejects, "
-                       f"{run['backward_steps']:,} backward steps")
+            out.append(f"run {run['run']}: {counted(run['files'], 'file')}, {span}{origin}"
+                       f"{vehicle}; {counted(run['frames'], 'frame')}, "
+                       f"{counted(run['rejects'], 'reject')}, "
+                       f"{counted(run['backward_steps'], 'backward step')}")
         for f in self.files:
             back = (f", first backward step at line {f['first_backward_line']}"
                     if f["first_backward_line"] is not None else "")
-            out.append(f"  file {f['file']} (run {f['run']}): {f['lines']:,} lines, "
-                       f"{f['rejects']:,} rejects{back}")
+            out.append(f"  file {f['file']} (run {f['run']}): {counted(f['lines'], 'line')}, "
+                       f"{counted(f['rejects'], 'reject')}{back}")
         return "\n".join(out)
 
 

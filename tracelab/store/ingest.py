@@ -31,6 +31,7 @@ from tracelab.physics.bitlength import frame_bits, frame_durations_ns
 from tracelab.progress import progress
 from tracelab.store import schema
 from tracelab.store.dataset import Dataset, create_or_open
+from tracelab.wording import counted
 
 RECORD_TABLES = ("frames", "errors", "status", "marks", "losses")
 SHOWN_REJECTS = 3
@@ -87,10 +88,11 @@ class FileSummary:
 
     def reconciliation(self) -> str:
         c = self.counts
-        return (f"{self.file}: {self.lines:,} lines = {self.header_lines:,} header/comment/blank"
-                f" + {self.records:,} records ({c['frames']:,} frames, {c['errors']:,} errors, "
-                f"{c['status']:,} status, {c['marks']:,} marks, {c['losses']:,} losses)"
-                f" + {self.rejects:,} rejects")
+        return (f"{self.file}: {counted(self.lines, 'line')} = {self.header_lines:,} "
+                f"header/comment/blank + {counted(self.records, 'record')} "
+                f"({counted(c['frames'], 'frame')}, {counted(c['errors'], 'error')}, "
+                f"{counted(c['status'], 'status')}, {counted(c['marks'], 'mark')}, "
+                f"{counted(c['losses'], 'loss')}) + {counted(self.rejects, 'reject')}")
 
     def row(self) -> dict[str, object]:
         buses = [{"alias": b.alias, "nominal_bps": b.nominal_bps, "data_bps": b.data_bps,
