@@ -7,6 +7,8 @@
      |    +-- CatalogError        FILE: [where] reason (network catalog / scenario)
      |    +-- QueryError          a SQL statement DuckDB refused
      +-- StoreError               exit 4  the dataset on disk cannot be read or written
+          +-- StorageError        exit 5  the machine refused: no space left, read-only file
+                                          system, permission denied, a damaged file on disk
 
 The CLI catches TracelabError once, prints ``str(error)`` on one line and exits with
 ``error.exit_code``. Anything else is a bug (exit 4, traceback only with TRACELAB_DEBUG=1).
@@ -21,6 +23,7 @@ EXIT_OK = 0
 EXIT_USAGE = 2
 EXIT_INPUT = 3
 EXIT_INTERNAL = 4
+EXIT_STORAGE = 5
 
 
 class TracelabError(Exception):
@@ -59,6 +62,12 @@ class QueryError(InputError):
 
 class StoreError(TracelabError):
     pass
+
+
+class StorageError(StoreError):
+    """The environment, not tracelab nor the input: ``PATH: cannot write (OS reason)``."""
+
+    exit_code = EXIT_STORAGE
 
 
 def did_you_mean(word: str, choices: Iterable[str]) -> str:

@@ -58,9 +58,9 @@ def simulate(scenario: Path, output: Path, duration: str | None = None, seed: in
             raise UsageError("--duration must be longer than 0")
     if seed is not None and seed < 0:
         raise UsageError("--seed must be a non-negative integer")
-    output = Path(output)
-    if not output.parent.is_dir():
-        raise UsageError(f"output directory {output.parent} does not exist")
+    from tracelab.store.dataset import make_output_parent
+
+    output = make_output_parent(Path(output), "log")  # missing folders are made, as everywhere
     return run_simulation(load_scenario(scenario), output, duration_ns=duration_ns, seed=seed,
                           quiet=quiet)
 
@@ -99,11 +99,11 @@ def timing(dataset: Path, catalog: Path | None = None, run: str | None = None,
     ds = open_dataset(dataset)
     cat = load_catalog(catalog) if catalog is not None else None
     _check_run(ds, run)
-    with ds.connect() as con:
+    with ds.writing("timing"), ds.connect() as con:  # one writer at a time
         result = compute_timing(con, cat, run=run, gap_factor=gap_factor)
-    _store(ds, "timing", result.timing, run)
-    _store(ds, "gaps", result.gaps, run)
-    _store(ds, "node_drift", result.node_drift, run)
+        _store(ds, "timing", result.timing, run)
+        _store(ds, "gaps", result.gaps, run)
+        _store(ds, "node_drift", result.node_drift, run)
     return result
 
 
@@ -119,11 +119,11 @@ def load(dataset: Path, window: str = "100ms", run: str | None = None) -> Any:
         raise UsageError(f"--window: {error}") from None
     ds = open_dataset(dataset)
     _check_run(ds, run)
-    with ds.connect() as con:
+    with ds.writing("load"), ds.connect() as con:  # one writer at a time
         result = bus_load(con, window_ns=window_ns, run=run)
-    _store(ds, "load", result.windows, run)
-    _store(ds, "load_summary", result.summary, run)
-    _store(ds, "load_top_ids", result.top_ids, run)
+        _store(ds, "load", result.windows, run)
+        _store(ds, "load_summary", result.summary, run)
+        _store(ds, "load_top_ids", result.top_ids, run)
     return result
 
 
@@ -149,19 +149,20 @@ def faults(dataset: Path, catalog: Path, run: str | None = None) -> Any:
     ds = open_dataset(dataset)
     cat = load_catalog(catalog)
     _check_run(ds, run)
-    gaps = ds.read_analysis("gaps") if ds.has_analysis("gaps") else None
-    with ds.connect() as con:
-        result = replay_faults(con, cat, run=run, gaps=gaps)
-    _store(ds, "counters", result.counters, run)
-    _store(ds, "node_states", result.node_states, run)
-    _store(ds, "verdicts", result.verdicts, run)
-    payload = result.as_json()
-    if run is not None and ds.has_analysis("faults"):
-        old = ds.read_analysis_json("faults") or {}
-        kept = [r for r in old.get("results", []) if r.get("run") != run]
-        payload = {"results": sorted(kept + payload["results"],
-                                     key=lambda r: (r["run"], r["bus"]))}
-    ds.write_analysis_json("faults", payload)
+    with ds.writing("faults"):  # one writer at a time
+        gaps = ds.read_analysis("gaps") if ds.has_analysis("gaps") else None
+        with ds.connect() as con:
+            result = replay_faults(con, cat, run=run, gaps=gaps)
+        _store(ds, "counters", result.counters, run)
+        _store(ds, "node_states", result.node_states, run)
+        _store(ds, "verdicts", result.verdicts, run)
+        payload = result.as_json()
+        if run is not None and ds.has_analysis("faults"):
+            old = ds.read_analysis_json("faults") or {}
+            kept = [r for r in old.get("results", []) if r.get("run") != run]
+            payload = {"results": sorted(kept + payload["results"],
+                                         key=lambda r: (r["run"], r["bus"]))}
+        ds.write_analysis_json("faults", payload)
     return result
 
 
@@ -190,10 +191,10 @@ def _covers(ds: Any, name: str, runs: list[str]) -> bool:
             return False
         return with_frames <= {r.get("run") for r in stored.get("results", [])}
     path = ds.path / "analyses" / f"{name}.parquet"
-    if not path.exists():
+    if not ds.has_analysis(name):  # absent or damaged: stale, computed again
         return False
     try:
-        seen = set(pl.scan_parquet(path).select("run").unique().collect()["run"].to_list())
+        seen = set(pl.scan_parquet(path, glob=False).select("run").unique().collect()["run"].to_list())
     except pl.exceptions.PolarsError:  # an output without a run column: take it as it is
         return True
     return with_frames <= seen
@@ -204,25 +205,36 @@ def report(dataset: Path, output: Path, catalog: Path | None = None, run: str | 
     from tracelab.analyses.envelopes import report_data
     from tracelab.errors import UsageError
     from tracelab.report.page import write_report
-    from tracelab.store.dataset import open_dataset
+    from tracelab.store.dataset import make_output_dir, open_dataset
 
     if not 0 < load_limit <= 1:
         raise UsageError(f"--load-limit {load_limit} must lie in (0, 1], e.g. 0.5 for 50 %")
     ds = open_dataset(dataset)
+    output = Path(output)
+    is_file = output.suffix.lower() in (".html", ".htm")
+    make_output_dir(output.parent if is_file else output, "report")
     runs = ds.runs()
     if not runs:
         raise UsageError(f"{dataset}: the dataset holds no runs yet; ingest a log first")
     if run is not None:
         _check_run(ds, run)
         runs = [run]
-    # Compute what the dataset lacks (absent, or older than a run ingested since), for every
-    # run at once, so a later --run finds it too.
-    if not _covers(ds, "timing", runs):
-        timing(dataset, catalog=catalog)
-    if not _covers(ds, "load", runs):
-        load(dataset)
-    if catalog is not None and not _covers(ds, "faults", runs):
-        faults(dataset, catalog=catalog)
+    # Compute what the dataset lacks (absent, damaged, or older than a run ingested since),
+    # for every run at once, so a later --run finds it too; under the write lock, and only
+    # when something is missing (a complete dataset may be read-only to this user).
+    def missing() -> list[str]:
+        names = ["timing", "load"] + (["faults"] if catalog is not None else [])
+        return [name for name in names if not _covers(ds, name, runs)]
+
+    if missing():
+        with ds.writing("report"):
+            todo = missing()  # again, under the lock: another writer may have done it
+            if "timing" in todo:
+                timing(dataset, catalog=catalog)
+            if "load" in todo:
+                load(dataset)
+            if "faults" in todo and catalog is not None:
+                faults(dataset, catalog=catalog)
     faults_json = ds.read_analysis_json("faults")
     written = []
     with ds.connect() as con:

@@ -11,6 +11,7 @@ import hashlib
 import json
 import os
 import shutil
+import threading
 from collections import deque
 from collections.abc import Callable
 from concurrent.futures import Future, ThreadPoolExecutor
@@ -25,12 +26,13 @@ import pyarrow.parquet as pq
 
 import tracelab
 from tracelab.errors import LogFormatError, UsageError
+from tracelab.format.compression import GZIP_MAGIC, ZSTD_MAGIC, open_log_bytes
 from tracelab.format.reader import Block, Chunk, LogReader
 from tracelab.format.writer import LogHeader
 from tracelab.physics.bitlength import frame_bits, frame_durations_ns
 from tracelab.progress import progress
 from tracelab.store import schema
-from tracelab.store.dataset import Dataset, create_or_open
+from tracelab.store.dataset import Dataset, create_or_open, storage_guard
 from tracelab.wording import counted
 
 RECORD_TABLES = ("frames", "errors", "status", "marks", "losses")
@@ -61,6 +63,8 @@ class FileSummary:
     backward_steps: int = 0
     first_backward_line: int | None = None
     first_rejects: list[tuple[int, str]] = field(default_factory=list)
+    content_sha256: str = ""
+    overlaps: list[str] = field(default_factory=list)
 
     @property
     def records(self) -> int:
@@ -107,6 +111,8 @@ class FileSummary:
             "vehicle": self.header.meta.get("vehicle"),
             "tracelab_version": tracelab.__version__,
             "ingested_at": datetime.now(UTC).isoformat(timespec="seconds"),
+            "content_sha256": self.content_sha256 or self.sha256,
+            "overlaps": ", ".join(self.overlaps) or None,
         }
 
 
@@ -117,6 +123,8 @@ class IngestSummary:
     dataset: Path
     files: list[FileSummary] = field(default_factory=list)
     skipped: list[str] = field(default_factory=list)
+    #: (file, the file already holding the same decompressed content)
+    same_content: list[tuple[str, str]] = field(default_factory=list)
 
     @property
     def lines(self) -> int:
@@ -143,8 +151,15 @@ class IngestSummary:
         if self.skipped:
             out[0] += (f"; skipped {len(self.skipped)} already ingested (use --force to "
                        f"replace): {', '.join(self.skipped)}")
+        for file, twin in self.same_content:
+            out.append(f"{file}: skipped, same content as {twin} (already ingested in "
+                       "another compression)")
         for f in self.files:
             out.append(f.reconciliation())
+            if f.overlaps:
+                out.append(f"warning: {f.file}: its time span overlaps {', '.join(f.overlaps)} "
+                           f"of the same run {f.run!r} on a common bus (recorded in the "
+                           "manifest's overlaps column; a log ingested twice?)")
             if f.backward_steps:
                 out.append(f"{f.file}: {f.backward_steps:,} backward time step(s), first at "
                            f"line {f.first_backward_line} (kept; analyses order by time)")
@@ -160,6 +175,22 @@ def file_sha256(path: Path) -> str:
     """The sha256 of a file's bytes (hex): the identity of an ingested file."""
     with open(path, "rb") as handle:
         return hashlib.file_digest(handle, "sha256").hexdigest()
+
+
+def content_sha256(path: Path, stop: threading.Event | None = None) -> str | None:
+    """The sha256 of a compressed log's decompressed bytes; None for a plain file (its
+    sha256 is its content's). Stops early (None) when ``stop`` is set."""
+    with open(path, "rb") as raw:
+        head = raw.read(4)
+    if not head.startswith((GZIP_MAGIC, ZSTD_MAGIC)):
+        return None
+    digest = hashlib.sha256()
+    with open_log_bytes(path) as stream:
+        while block := stream.read(1 << 20):  # 1 MiB at a time: memory stays flat
+            if stop is not None and stop.is_set():
+                return None
+            digest.update(block)
+    return digest.hexdigest()
 
 
 def run_name(path: Path, header: LogHeader) -> str:
@@ -204,17 +235,19 @@ class _PartWriter:
 
     def __init__(self, folder: Path, run: str, file: str) -> None:
         self.folder, self.run, self.file = folder, run, file
-        for table in schema.TABLES:
-            (folder / table).mkdir()
+        with storage_guard(folder):
+            for table in schema.TABLES:
+                (folder / table).mkdir()
 
     def write(self, table: str, frame: pl.DataFrame, index: int) -> None:
         path = self.folder / table / f"{index}.parquet"
-        if table == "frames":
-            self._write_frames(frame, path)
-            return
-        frame = frame.with_columns(run=pl.lit(self.run), file=pl.lit(self.file))
-        frame = schema.conform(frame, table)
-        frame.write_parquet(path, compression="zstd", compression_level=PARQUET_ZSTD_LEVEL)
+        with storage_guard(path):  # disk full, read-only: one line naming the path
+            if table == "frames":
+                self._write_frames(frame, path)
+                return
+            frame = frame.with_columns(run=pl.lit(self.run), file=pl.lit(self.file))
+            frame = schema.conform(frame, table)
+            frame.write_parquet(path, compression="zstd", compression_level=PARQUET_ZSTD_LEVEL)
 
     def _write_frames(self, frame: pl.DataFrame, path: Path) -> None:
         """The big table, with per-column Parquet settings: run and file (constant) and bus
@@ -333,38 +366,90 @@ def ingest_logs(logs: list[Path] | list[str], dataset: Path | str, strict: bool 
                 force: bool = False, quiet: bool = False) -> IngestSummary:
     """Ingest ``logs`` into ``dataset`` (created when missing) in one atomic commit.
 
-    Files whose sha256 is already in the manifest are skipped unless ``force``. Bad lines go
-    to ``rejects``; with ``strict`` the first one raises LogFormatError (exit 3) instead.
+    Files whose sha256 is already in the manifest are skipped unless ``force``, and so are
+    files whose decompressed content is (the same log plain and as .gz). Bad lines go to
+    ``rejects``; with ``strict`` the first one raises LogFormatError (exit 3) instead. The
+    dataset's write lock is held throughout (a second writer waits, then exits 2).
     """
     paths = [Path(p) for p in logs]
     _check_paths(paths)
     created = not Path(dataset).exists()
     ds = create_or_open(dataset)
+    with ds.writing("ingest"):
+        return _ingest_locked(paths, ds, created, strict, force, quiet)
+
+
+def _overlaps(summary: FileSummary, others: list[dict[str, object]]) -> list[str]:
+    """Files of the same run whose [first, last] time span meets this file's on a bus both
+    declare (loops over the files of one run)."""
+    if summary.first_t_ns is None or summary.last_t_ns is None:
+        return []
+    buses = {b.alias for b in summary.header.buses}
+    found = []
+    for other in others:
+        first, last = other.get("first_t_ns"), other.get("last_t_ns")
+        if other.get("run") != summary.run or first is None or last is None:
+            continue
+        other_buses = {b["alias"] for b in schema.manifest_buses(str(other.get("buses") or ""))}
+        if (buses & other_buses and int(str(first)) <= summary.last_t_ns
+                and summary.first_t_ns <= int(str(last))):
+            found.append(str(other["file"]))
+    return found
+
+
+def _ingest_locked(paths: list[Path], ds: Dataset, created: bool, strict: bool, force: bool,
+                   quiet: bool) -> IngestSummary:
     ds.remove_leftovers()
-    known = set(ds.manifest()["sha256"].to_list())
-    result = IngestSummary(dataset=Path(dataset))
+    old = ds.manifest()
+    known = set(old["sha256"].to_list())
+    # content sha256 -> (file, sha256) of what is in the dataset or staged now
+    contents = {c or s: (f, s) for s, c, f in zip(old["sha256"].to_list(),
+                                                  old["content_sha256"].to_list(),
+                                                  old["file"].to_list(), strict=True)}
+    old_rows = old.to_dicts()
+    result = IngestSummary(dataset=ds.path)
     staged: dict[str, Path] = {}
+    stops: list[threading.Event] = []
     try:
         total = sum(p.stat().st_size for p in paths)
         with progress("ingest", total=total, quiet=quiet) as advance, \
-                ThreadPoolExecutor(1, thread_name_prefix="tracelab-sha256") as hasher:
+                ThreadPoolExecutor(2, thread_name_prefix="tracelab-sha256") as hasher:
             for path in paths:
                 def is_new(sha: str) -> bool:
                     return sha not in staged and (force or sha not in known)
 
+                stops.append(stop := threading.Event())
+                content_future = hasher.submit(content_sha256, path, stop)
                 try:
                     summary, folder = _ingest_file(path, hasher.submit(file_sha256, path), is_new,
                                                    ds, strict, advance)
                 except _AlreadyIngested as skip:
+                    stop.set()
                     result.skipped.append(str(path))
                     advance(path.stat().st_size - skip.done_bytes)
                     continue
+                try:
+                    content = content_future.result() or summary.sha256
+                except Exception:  # noqa: BLE001 - the reader read it; its bytes identify it
+                    content = summary.sha256
+                summary.content_sha256 = content
+                twin = contents.get(content)
+                if twin is not None and twin[1] != summary.sha256:  # another compression
+                    shutil.rmtree(folder, ignore_errors=True)
+                    result.same_content.append((str(path), twin[0]))
+                    continue
+                contents[content] = (str(path), summary.sha256)
+                others = [r for r in old_rows if r["sha256"] != summary.sha256]
+                others += [f.row() for f in result.files]
+                summary.overlaps = _overlaps(summary, others)
                 staged[summary.sha256] = folder
                 result.files.append(summary)
         rows = pl.DataFrame([f.row() for f in result.files], schema=schema.MANIFEST)
         if staged or not ds.manifest_path.exists():  # all skipped: nothing to rewrite
             ds.commit(staged, rows)
     except BaseException:  # failed or interrupted: drop what was staged, then re-raise
+        for stop in stops:
+            stop.set()
         for folder in staged.values():
             shutil.rmtree(folder, ignore_errors=True)
         ds.remove_leftovers()

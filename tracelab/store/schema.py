@@ -46,6 +46,11 @@ MANIFEST = pl.Schema({
     "last_t_ns": pl.Int64, "backward_steps": pl.Int64, "first_backward_line": pl.Int64,
     "origin": pl.String, "buses": pl.String, "meta": pl.String, "run": pl.String,
     "vehicle": pl.String, "tracelab_version": pl.String, "ingested_at": pl.String,
+    # sha256 of the decompressed bytes (equal to sha256 for a plain file): one log ingested
+    # plain and again as .gz is recognised as the same content
+    "content_sha256": pl.String,
+    # files of the same run whose time span overlaps this one's on a common bus (", "-joined)
+    "overlaps": pl.String,
 })
 
 
