@@ -26,7 +26,7 @@ import pyarrow.parquet as pq
 
 import tracelab
 from tracelab.errors import LogFormatError, UsageError
-from tracelab.format.compression import GZIP_MAGIC, ZSTD_MAGIC, open_log_bytes
+from tracelab.format.compression import compression_name, open_log
 from tracelab.format.reader import Block, Chunk, LogReader
 from tracelab.format.writer import LogHeader
 from tracelab.physics.bitlength import frame_bits, frame_durations_ns
@@ -180,16 +180,18 @@ def file_sha256(path: Path) -> str:
 def content_sha256(path: Path, stop: threading.Event | None = None) -> str | None:
     """The sha256 of a compressed log's decompressed bytes; None for a plain file (its
     sha256 is its content's). Stops early (None) when ``stop`` is set."""
-    with open(path, "rb") as raw:
-        head = raw.read(4)
-    if not head.startswith((GZIP_MAGIC, ZSTD_MAGIC)):
+    if not compression_name(path):
         return None
     digest = hashlib.sha256()
-    with open_log_bytes(path) as stream:
+    stream, raw = open_log(path)
+    try:
         while block := stream.read(1 << 20):  # 1 MiB at a time: memory stays flat
             if stop is not None and stop.is_set():
                 return None
             digest.update(block)
+    finally:
+        stream.close()
+        raw.close()
     return digest.hexdigest()
 
 
