@@ -320,6 +320,7 @@ def _truth_expectation(s: Scenario, truth: dict[str, Any], bus: str) -> dict[str
     if s.expect_cause:
         exp["cause"] = s.expect_cause
         exp["cause_node"] = None
+    exp["first_warning"] = first
     return exp
 
 
@@ -331,7 +332,15 @@ def score_result(s: Scenario, truth: dict[str, Any], r: dict[str, Any]) -> dict[
     got_state = fd["state"] if fd else None
     problems: list[str] = []
     time_err: float | None = None
-    if exp["node"] is None:
+    vanish_reading = (exp["state"] == "silent" and fd is not None and fd["state"] != "silent"
+                      and exp.get("first_warning") is not None)
+    if vanish_reading:
+        # the cut-off reading decided (status records, ESI): its transitions must be right
+        fw = exp["first_warning"]
+        exp = dict(exp, node=fw["node"], state=fw["state"], t_ns=fw["t_ns"])
+    if s.expect_cause:
+        pass  # a verdict that must not name anything: only the cause is scored
+    elif exp["node"] is None:
         if fd is not None and cause["kind"] not in ("unknown",) and \
                 not (exp["cause"] == ("flood",) and fd.get("state") == "silent"):
             problems.append(f"first_degraded {got_node} {got_state}, truth: nobody")

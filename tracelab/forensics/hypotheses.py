@@ -17,13 +17,9 @@ from typing import Any
 import numpy as np
 import polars as pl
 
-from tracelab.forensics.replay import (
-    KIND_ERROR,
-    BusEvidence,
-    NodeReplay,
-    replay_node,
-    with_extra_errors,
-)
+from tracelab.forensics.evidence import KIND_ERROR, BusEvidence, with_extra_errors
+from tracelab.forensics.losses import trim_to_losses
+from tracelab.forensics.replay import NodeReplay, replay_node
 from tracelab.physics.confinement import (
     DEFAULT_CONFIG,
     RECOVERY_SEQUENCE_BITS,
@@ -50,6 +46,16 @@ MIN_ERRORS = 3
 #: A node hypothesis must change an error rate by at least this factor against the rest of
 #: the bus; smaller differences come from frame lengths, arbitration and the noise model.
 RATE_MARGIN = 2.0
+#: A node-specific cause must explain at least this share of the errors in its window.
+MIN_SHARE = 0.5
+#: Errors a receive-fault replay may leave on others' frames while it calls the node passive
+#: (replayed passive intervals can be off by a frame at each REC 119 <-> 128 toggle).
+PASSIVE_BOUNDARY_ERRORS = 2
+#: A flood: an identifier at least this many times its catalog rate, or absent from the
+#: catalog, with at least FLOOD_MIN_FRAMES frames at FLOOD_MIN_PER_S or more.
+FLOOD_FACTOR = 4.0
+FLOOD_MIN_FRAMES = 200
+FLOOD_MIN_PER_S = 200.0
 #: ACK errors a lone transmitter needs to go from TEC 0 to error-passive (16 x 8 = 128).
 PASSIVE_ATTEMPTS = 16
 
@@ -59,12 +65,25 @@ class Silence:
     node: int
     from_ns: int
     to_ns: int | None  # None: the node never came back before the end of the log
+    latest_from_ns: int | None = None  # a logger loss after its last frame: the latest it
+    #                                    can have vanished (None: exactly from_ns)
+
+
+@dataclass(frozen=True)
+class Flood:
+    id: int
+    ext: bool
+    sender: int            # node index, -1 when the catalog does not know the identifier
+    from_ns: int
+    to_ns: int
+    frames: int
+    catalog_frames: float | None  # what the catalog's period predicts over the same span
 
 
 @dataclass
 class Hypothesis:
     name: str
-    kind: str            # bus-disturbance | receive-fault | transmit-fault | isolation | silence
+    kind: str  # bus-disturbance | receive-fault | transmit-fault | isolation | silence | flood
     node: int | None
     replays: list[NodeReplay]
     loglik: float = 0.0
@@ -73,6 +92,7 @@ class Hypothesis:
     prior: float = 0.0
     score: float = 0.0
     why: str = ""
+    flood: Flood | None = None
 
 
 def node_silences(ev: BusEvidence, gaps: pl.DataFrame | None = None,
@@ -107,8 +127,20 @@ def node_silences(ev: BusEvidence, gaps: pl.DataFrame | None = None,
         if ev.last_t_ns - int(own[-1]) > limit:
             found.append((int(own[-1]), None))
         for a, b in found:  # loop over silences (rare)
-            if not _overlaps_loss(ev, a, b if b is not None else ev.last_t_ns):
-                out.append(Silence(n, a, b))
+            end = b if b is not None else ev.last_t_ns
+            pieces = trim_to_losses(ev, a, end)
+            outside = sum(y - x for x, y in pieces)
+            if not pieces or outside < limit:
+                continue  # the loss hides it: nothing outside the loss says it was silent
+            # it vanished between its last frame seen and, when a loss follows that frame
+            # before it was due again, the end of that loss
+            if pieces[0][0] > a:
+                latest = pieces[0][0]
+            elif pieces[0][1] - a < limit and len(pieces) > 1:
+                latest = pieces[1][0]
+            else:
+                latest = a
+            out.append(Silence(n, a, b, latest))
     return sorted(out, key=lambda s: s.from_ns)
 
 
@@ -117,8 +149,6 @@ def _intersect_gaps(gaps: pl.DataFrame, keys: set[tuple[int, bool]], own: np.nda
     """Where every one of ``keys`` is inside a gap at once, and no own frame falls inside."""
     mine = gaps.filter(pl.struct("id", "ext").map_elements(
         lambda s: (int(s["id"]), bool(s["ext"])) in keys, return_dtype=pl.Boolean))
-    if "in_loss" in mine.columns:
-        mine = mine.filter(~pl.col("in_loss").fill_null(False))
     if mine.height == 0:
         return []
     per_key = mine.group_by("id", "ext").agg("from_ns", "to_ns")
@@ -146,12 +176,6 @@ def _intersect_gaps(gaps: pl.DataFrame, keys: set[tuple[int, bool]], own: np.nda
     return out
 
 
-def _overlaps_loss(ev: BusEvidence, a: int, b: int) -> bool:
-    if not ev.losses.shape[0]:
-        return False
-    return bool(np.any((ev.losses[:, 0] < b) & (ev.losses[:, 1] > a)))
-
-
 def unexplained_silences(ev: BusEvidence, replays: list[NodeReplay],
                          silences: list[Silence]) -> list[Silence]:
     """Silences that no replayed bus-off episode of the same node falls into."""
@@ -163,8 +187,55 @@ def unexplained_silences(ev: BusEvidence, replays: list[NodeReplay],
     return out
 
 
+def find_floods(ev: BusEvidence, periods: dict[tuple[int, bool], int]) -> list[Flood]:
+    """Identifiers sent far above their catalog rate, or absent from the catalog, at a rate
+    no periodic message of a bus has (one query over the few suspects)."""
+    by_id = ev.frames_by_id
+    if by_id.height == 0 or ev.con is None:
+        return []
+    span_s = max(1e-9, (ev.last_t_ns - ev.first_t_ns) / 1e9)
+    rows = [(int(i), bool(x), int(f or 0), int(c), periods.get((int(i), bool(x))))
+            for i, x, f, c in by_id.select("id", "ext", "frames",
+                                           pl.col("code").fill_null(-1)).iter_rows()]
+    # how far the log's rates sit from the catalog's as a rule (a catalog whose periods are
+    # all off does not make every identifier a flood): the median ratio and rate
+    ratios = [f * p / (span_s * 1e9) for _i, _x, f, _c, p in rows if p is not None and f]
+    usual = float(np.median(ratios)) if ratios else 1.0
+    rates = [f / span_s for _i, _x, f, _c, p in rows if p is not None and f]
+    usual_rate = float(np.median(rates)) if rates else 0.0
+    suspects = []
+    for fid, ext, frames, code, period in rows:
+        if frames < FLOOD_MIN_FRAMES:
+            continue
+        if period is None and code >= 0:
+            continue  # an event-driven message of the catalog
+        if period is not None and frames < FLOOD_FACTOR * max(1.0, usual) * span_s * 1e9 / period:
+            continue
+        if period is None and frames / span_s < FLOOD_FACTOR * usual_rate:
+            continue
+        suspects.append((fid, ext, code, period))
+    out = []
+    for fid, ext, code, period in suspects:  # loop over suspect identifiers (rare)
+        # the flood window: where this identifier runs at more than FLOOD_FACTOR x its
+        # catalog rate (or FLOOD_MIN_PER_S), from its gaps
+        t = np.asarray(ev.con.execute(
+            f"SELECT t_ns FROM frames WHERE run = ? AND bus = ? AND id = {fid} AND ext = "
+            f"{str(ext).lower()} ORDER BY t_ns", [ev.run, ev.bus]).fetchnumpy()["t_ns"],
+            dtype=np.int64)
+        fast_gap = min(1e9 / FLOOD_MIN_PER_S,
+                       period / FLOOD_FACTOR if period is not None else math.inf)
+        dense = np.flatnonzero(np.diff(t) <= fast_gap)
+        if dense.size < FLOOD_MIN_FRAMES:
+            continue
+        a, b = int(t[dense[0]]), int(t[dense[-1] + 1])
+        n = int(dense.size) + 1
+        expect = (b - a) / period if period is not None else None
+        out.append(Flood(fid, ext, code, a, b, n, expect))
+    return out
+
+
 def candidates(ev: BusEvidence, base: list[NodeReplay], first: list[NodeReplay],
-               silences: list[Silence]) -> list[Hypothesis]:
+               silences: list[Silence], floods: list[Flood] | None = None) -> list[Hypothesis]:
     """The hypotheses worth scoring for this bus."""
     errors = ev.events.filter(pl.col("kind") == KIND_ERROR)
     tx = errors["tx"].to_numpy()
@@ -193,9 +264,16 @@ def candidates(ev: BusEvidence, base: list[NodeReplay], first: list[NodeReplay],
             h = Hypothesis(f"isolation:{ev.nodes[n]}", "isolation", n, reps)
             h.facts["far_side"] = True
             out.append(h)
+    for f in floods or []:
+        who = ev.nodes[f.sender] if f.sender >= 0 else None
+        h = Hypothesis(f"flood:{f.id:03X}" + (f":{who}" if who else ""), "flood",
+                       f.sender if f.sender >= 0 else None, list(base))
+        h.flood = f
+        out.append(h)
     others = len(out) - 1
     for h in out:
-        h.prior = PRIOR_BUS if h.node is None else (1 - PRIOR_BUS) / max(1, others)
+        h.prior = PRIOR_BUS if h.kind == "bus-disturbance" else \
+            (1 - PRIOR_BUS) / max(1, others)
     if others == 0:
         out[0].prior = 1.0
     return out
@@ -298,7 +376,8 @@ def score(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Silence]) -> N
     bus_rate = _poisson(n_err, exposure) - penalty
     for h in hyps:  # loop over hypotheses (a few per node)
         n = h.node
-        if h.kind in ("bus-disturbance", "silence") or n is None or h.facts.get("far_side"):
+        if h.kind in ("bus-disturbance", "silence", "flood") or n is None \
+                or h.facts.get("far_side"):
             rate = bus_rate
             lp = lp_type_other + lp_by_uniform
         elif h.kind in ("transmit-fault", "isolation"):
@@ -307,7 +386,14 @@ def score(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Silence]) -> N
             own_exp = node_busy[n] + k_own * node_mean[n]
             rate = (_poisson(k_own, own_exp) + _poisson(n_err - k_own, exposure - own_exp)
                     - 2 * penalty)
-            if k_own * (exposure - own_exp) <= RATE_MARGIN * (n_err - k_own) * own_exp:
+            # per bus time (noise per bit) and per attempt (noise per frame): its frames must
+            # fail clearly more often both ways, and it must explain most of the errors
+            own_att = int(ev.own_t[n].size) + k_own
+            oth_att = max(1, ev.frames + n_err - own_att)
+            h.facts["share"] = k_own / max(1, n_err)
+            if k_own * (exposure - own_exp) <= RATE_MARGIN * (n_err - k_own) * own_exp \
+                    or k_own * oth_att <= RATE_MARGIN * (n_err - k_own) * own_att \
+                    or k_own < MIN_SHARE * n_err:
                 rate = -math.inf  # its frames fail not clearly more often than the others'
             if h.kind == "isolation":
                 lp = np.where(mine, np.where(ack, math.log(1 - EPS), math.log(EPS)),
@@ -330,7 +416,11 @@ def score(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Silence]) -> N
             act_exp = max(exposure - pown_exp - poth_exp, 1.0)
             rate = (_poisson(k_act, act_exp) + _poisson(k_pown, pown_exp)
                     + _poisson(k_poth, poth_exp) - 3 * penalty)
-            if RATE_MARGIN * k_poth * act_exp >= k_act * poth_exp and poth_exp > 0:
+            leak = max(0, k_poth - PASSIVE_BOUNDARY_ERRORS)
+            by_says = int(np.sum(attributed & (by == n))) > 0.5 * int(attributed.sum()) > 0
+            h.facts["share"] = 1.0 - k_poth / max(1, n_err)
+            if not by_says and (RATE_MARGIN * leak * act_exp >= k_act * poth_exp > 0
+                                or h.facts["share"] < MIN_SHARE):
                 rate = -math.inf  # errors on others' frames did not clearly drop
             lp_by = np.where(attributed & ~passive & (tx != n),
                              np.where(by == n, math.log(0.9), math.log(0.1 / n_nodes)),
@@ -394,9 +484,12 @@ def _silence_loglik(ev: BusEvidence, h: Hypothesis, silences: list[Silence]) -> 
                 if s.node == n and s.from_ns <= off["from_ns"] <= end:
                     explained.add(j)
     own_claim = h.kind == "silence" or bool(h.facts.get("far_side"))
+    f = h.flood
     for j, s in enumerate(silences):
         if j in explained:
             continue
+        if f is not None and s.from_ns <= f.to_ns and (s.to_ns is None or s.to_ns >= f.from_ns):
+            continue  # starved by the flood
         if own_claim and s.node == h.node:
             own_claim = False  # the hypothesis explains its node's first unexplained silence
             continue

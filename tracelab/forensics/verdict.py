@@ -14,30 +14,43 @@ import duckdb
 import numpy as np
 import polars as pl
 
-from tracelab.forensics.hypotheses import (
-    MIN_ERRORS,
-    Hypothesis,
-    Silence,
-    candidates,
-    node_silences,
-    score,
-)
-from tracelab.forensics.replay import (
+from tracelab.forensics.evidence import (
     KIND_ERROR,
     BusEvidence,
     CatalogLike,
-    NodeReplay,
+    evidence_window,
     frames_by_id,
     load_bus_evidence,
-    replay_node,
     run_buses,
     single_pair,
 )
+from tracelab.forensics.hypotheses import (
+    MIN_ERRORS,
+    Flood,
+    Hypothesis,
+    Silence,
+    candidates,
+    find_floods,
+    node_silences,
+    score,
+)
+from tracelab.forensics.losses import loss_before, upper_evidence
+from tracelab.forensics.replay import NodeReplay, replay_node
 from tracelab.format.grammar import wall_time
 from tracelab.physics.confinement import DEFAULT_CONFIG, ConfinementConfig
 
 #: Below this posterior the verdict says the evidence does not decide.
 MIN_CONFIDENCE = 0.4
+#: The catalog must know at least this share of the logged identifiers, and this share of its
+#: identifiers must be in the log, before a node is named.
+CATALOG_MATCH_MIN = 0.5
+#: The confidence falls with the width of [earliest_ns, latest_ns]: halved at this width.
+HALF_CONFIDENCE_WIDTH_NS = 50_000_000
+#: A reading of the evidence within this factor of the best is stated as an alternative.
+ALTERNATIVE_RATIO = 0.2
+#: Errors before (after) a node-specific winner's onset that make the earlier (later) window
+#: worth a verdict of its own.
+WINDOW_MIN_ERRORS = 8
 
 COUNTERS_SCHEMA = {"run": pl.String, "bus": pl.String, "node": pl.String, "t_ns": pl.Int64,
                    "tec": pl.Int32, "rec": pl.Int32, "state": pl.String, "cause": pl.String,
@@ -77,16 +90,30 @@ def _origin(con: duckdb.DuckDBPyConnection, run: str) -> str | None:
     return str(row[0][0]) if row and row[0][0] is not None else None
 
 
-def _catalog_keys(catalog: CatalogLike, bus: str, nodes: list[str]
-                  ) -> dict[int, set[tuple[int, bool]]]:
-    """Per node index, the (id, ext) of its periodic messages on this bus."""
-    out: dict[int, set[tuple[int, bool]]] = {}
-    frame = catalog.messages_frame().filter((pl.col("bus") == bus)
-                                            & pl.col("period_ns").is_not_null())
-    for sender, fid, ext in frame.select("sender", "id", "ext").iter_rows():
+@dataclass(frozen=True)
+class CatalogView:
+    """What the verdict needs from the catalog for one bus."""
+
+    keys: dict[int, set[tuple[int, bool]]]   # per node index, its periodic (id, ext)
+    periods: dict[tuple[int, bool], int]     # period_ns per periodic (id, ext)
+    ids: set[tuple[int, bool]]               # every (id, ext) of the bus
+
+
+def _catalog_view(catalog: CatalogLike, bus: str, nodes: list[str]) -> CatalogView:
+    keys: dict[int, set[tuple[int, bool]]] = {}
+    periods: dict[tuple[int, bool], int] = {}
+    ids: set[tuple[int, bool]] = set()
+    frame = catalog.messages_frame().filter(pl.col("bus") == bus)
+    for sender, fid, ext, period in frame.select("sender", "id", "ext",
+                                                 "period_ns").iter_rows():
+        key = (int(fid), bool(ext))
+        ids.add(key)
+        if period is None:
+            continue
+        periods[key] = int(period)
         if sender in nodes:
-            out.setdefault(nodes.index(sender), set()).add((int(fid), bool(ext)))
-    return out
+            keys.setdefault(nodes.index(sender), set()).add(key)
+    return CatalogView(keys, periods, ids)
 
 
 def replay_faults(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run: str | None = None,
@@ -110,7 +137,7 @@ def replay_faults(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run: str
                                                  "to_ns"} <= set(gaps.columns):
             bus_gaps = gaps.filter((pl.col("run") == r) & (pl.col("bus") == bus))
         result, winner = bus_verdict(ev, _origin(con, r), bus_gaps,
-                                     _catalog_keys(catalog, bus, ev.nodes), config)
+                                     _catalog_view(catalog, bus, ev.nodes), config)
         results.append(result)
         counters.append(_counters_frame(ev, winner))
         states.append(_states_frame(ev, winner))
@@ -119,44 +146,206 @@ def replay_faults(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run: str
     return FaultsResult(results, counters_df, states_df, _verdicts_frame(results), frames, events)
 
 
-def bus_verdict(ev: BusEvidence, origin: str | None, gaps: pl.DataFrame | None,
-                catalog_keys: dict[int, set[tuple[int, bool]]],
-                config: ConfinementConfig = DEFAULT_CONFIG) -> tuple[dict[str, Any], Hypothesis]:
-    """Replay the candidates of one bus, score them and write the verdict object."""
+@dataclass
+class Analysis:
+    """The scored hypotheses of one window of one bus."""
+
+    hyps: list[Hypothesis]
+    base: list[NodeReplay]
+    first: list[NodeReplay]
+    silences: list[Silence]
+    floods: list[Flood]
+    attributed: bool
+
+
+def analyse(ev: BusEvidence, gaps: pl.DataFrame | None, cat: CatalogView,
+            config: ConfinementConfig = DEFAULT_CONFIG) -> Analysis:
+    """Replay the candidates of one bus (or one window of it) and score them, best first."""
     base = [replay_node(ev, n, False, config) for n in range(len(ev.nodes))]
-    attributed_everywhere = bool((ev.events.filter(pl.col("kind") == KIND_ERROR)["by_node"]
-                                  >= 0).all()) if ev.events.height else True
-    first = base if attributed_everywhere else [
+    attributed = bool((ev.events.filter(pl.col("kind") == KIND_ERROR)["by_node"]
+                       >= 0).all()) if ev.events.height else True
+    first = base if attributed else [
         replay_node(ev, n, True, config, keep_rows=False) for n in range(len(ev.nodes))]
-    silences = node_silences(ev, gaps, catalog_keys)
-    hyps = candidates(ev, base, first, silences)
+    silences = node_silences(ev, gaps, cat.keys)
+    floods = find_floods(ev, cat.periods)
+    hyps = candidates(ev, base, first, silences, floods)
     score(ev, hyps, silences)
     # ties (to rounding): a cut-off node before a plain silence, since only the former makes
     # rule-based predictions (docs/forensics.md); otherwise the order of candidates()
     hyps.sort(key=lambda h: (-round(h.score, 6), 0 if h.facts.get("far_side") else 1))
+    return Analysis(hyps, base, first, silences, floods, attributed)
+
+
+def _catalog_match(ev: BusEvidence, cat: CatalogView) -> dict[str, Any]:
+    """Share of logged identifiers the catalog knows, and of catalog identifiers logged."""
+    logged = {(int(i), bool(x)) for i, x in ev.frames_by_id.select("id", "ext").iter_rows()}
+    errs = ev.events.filter((pl.col("kind") == KIND_ERROR) & pl.col("id").is_not_null())
+    logged |= {(int(i), bool(x)) for i, x in errs.select("id", "ext").unique().iter_rows()}
+    known = len(logged & cat.ids) / len(logged) if logged else 1.0
+    seen = len(logged & cat.ids) / len(cat.ids) if cat.ids else (1.0 if not logged else 0.0)
+    ok = (known >= CATALOG_MATCH_MIN and seen >= CATALOG_MATCH_MIN) or not logged
+    return {"logged_known": round(known, 4), "catalog_seen": round(seen, 4),
+            "logged_ids": len(logged), "catalog_ids": len(cat.ids), "ok": ok}
+
+
+def _onset(ev: BusEvidence, n: int, run: int = 10, share: float = 0.6) -> int | None:
+    """t_ns of the first error on node n's frames from which at least ``share`` of the next
+    ``run`` errors fall on its frames (the start of a transmit-side run), or None."""
+    errors = ev.events.filter(pl.col("kind") == KIND_ERROR)
+    tx = errors["tx"].to_numpy()
+    if tx.size < run:
+        return None
+    mine = (tx == n).astype(np.int64)
+    window = np.convolve(mine, np.ones(run, dtype=np.int64), mode="valid")
+    hit = np.flatnonzero((window >= share * run) & (mine[:window.size] == 1))
+    return int(errors["t_ns"][int(hit[0])]) if hit.size else None
+
+
+def _finding(ev: BusEvidence, h: Hypothesis, win_from: int | None,
+             win_to: int | None) -> dict[str, Any]:
+    errors = ev.events.filter(pl.col("kind") == KIND_ERROR)
+    t = errors["t_ns"].to_numpy()
+    tx = errors["tx"].to_numpy()
+    lo = ev.first_t_ns if win_from is None else win_from
+    hi = ev.last_t_ns + 1 if win_to is None else win_to
+    inside = (t >= lo) & (t < hi)
+    n_in = int(inside.sum())
+    if h.kind in ("transmit-fault", "isolation") and h.node is not None:
+        mask = inside & (tx == h.node)
+    elif h.kind == "receive-fault" and h.node is not None:
+        mask = inside.copy()
+        share = float(h.facts.get("share", 1.0))
+        explained = int(round(share * n_in))
+    elif h.kind in ("silence", "flood"):
+        mask = np.zeros(t.size, dtype=bool)
+    else:
+        mask = inside
+    if h.kind != "receive-fault":
+        explained = int(mask.sum())
+    if h.kind == "flood" and h.flood is not None:
+        f_from, f_to = h.flood.from_ns, h.flood.to_ns
+    elif h.kind == "silence" and h.node is not None:
+        sil = next((s for s in h.facts.get("silences", []) if s.node == h.node), None)
+        f_from = sil.from_ns if sil else lo
+        f_to = sil.to_ns if sil and sil.to_ns is not None else hi
+    elif mask.any():
+        f_from, f_to = int(t[mask][0]), int(t[mask][-1])
+    else:
+        f_from, f_to = lo, hi
+    tr = None
+    if h.node is not None and h.kind != "flood":
+        tr = h.replays[h.node].first_degradation()
+    else:
+        found = [x for x in (r.first_degradation() for r in h.replays) if x is not None]
+        tr = min(found, key=lambda x: x["t_ns"]) if found else None
+    return {"kind": h.kind, "node": ev.nodes[h.node] if h.node is not None else None,
+            "from_ns": int(f_from), "to_ns": int(f_to), "errors_explained": explained,
+            "share": round(explained / n_in, 4) if n_in else None,
+            "first_transition": dict(tr) if tr else None,
+            "score": round(h.score, 4), "hypothesis": h.name}
+
+
+def bus_verdict(ev: BusEvidence, origin: str | None, gaps: pl.DataFrame | None,
+                cat: CatalogView | dict[int, set[tuple[int, bool]]],
+                config: ConfinementConfig = DEFAULT_CONFIG) -> tuple[dict[str, Any], Hypothesis]:
+    """Replay the candidates of one bus, score them and write the verdict object."""
+    if not isinstance(cat, CatalogView):  # older callers pass the keys only
+        cat = CatalogView(cat, {}, set())
+    an = analyse(ev, gaps, cat, config)
+    hyps, silences = an.hyps, an.silences
+    for h in hyps:
+        h.facts["silences"] = silences
+    attributed_everywhere = an.attributed
     errors = ev.events.filter(pl.col("kind") == KIND_ERROR)
     n_errors = errors.height
-    clean = n_errors == 0 and not silences
+    clean = n_errors == 0 and not silences and not an.floods
     winner = hyps[0]
     if winner.kind == "receive-fault" and winner.node is not None and not attributed_everywhere:
         winner.replays[winner.node] = replay_node(ev, winner.node, True, config)  # with rows
+    findings = [_finding(ev, winner, None, None)] if not clean else []
+    cause_h = winner
+    # An earlier fault under a stronger later one: the window before the winner's onset
+    # gets its own verdict, and a later fault never rewrites who degraded first.
+    if winner.kind in ("transmit-fault", "isolation") and winner.node is not None \
+            and not winner.facts.get("far_side"):
+        t_on = _onset(ev, winner.node)
+        if t_on is not None and int((errors["t_ns"] < t_on).sum()) >= WINDOW_MIN_ERRORS:
+            early = analyse(evidence_window(ev, None, t_on), None, cat, config)
+            w0 = early.hyps[0]
+            if w0.kind == "receive-fault" and w0.node == winner.node:
+                # one story: a receive fault whose node, once passive, fails on its own frames
+                full = next((h for h in hyps if h.name == w0.name), None)
+                if full is not None and full.node is not None:
+                    full.replays[full.node] = replay_node(ev, full.node, True, config)
+                    cause_h = winner = full
+                    findings = [_finding(ev, full, None, None)]
+            elif w0.kind != "bus-disturbance" or w0.replays and any(
+                    r.first_degradation() for r in w0.replays):
+                if w0.kind == "receive-fault" and w0.node is not None:
+                    w0.replays[w0.node] = replay_node(ev, w0.node, True, config)
+                f0 = _finding(ev, w0, None, t_on)
+                findings.insert(0, f0)
+                t0 = (f0["first_transition"] or {}).get("t_ns")
+                t1 = (findings[1]["first_transition"] or {}).get("t_ns")
+                if t0 is not None and (t1 is None or t0 <= t1):
+                    cause_h = w0
+    # a later transmit-side fault on another node
+    if not clean and cause_h.kind in ("receive-fault", "bus-disturbance", "transmit-fault"):
+        for n in range(len(ev.nodes)):  # loop over nodes
+            if n == cause_h.node or any(f["node"] == ev.nodes[n] for f in findings):
+                continue
+            t_on = _onset(ev, n, run=12, share=0.75)
+            if t_on is None or int((errors["t_ns"] >= t_on).sum()) < WINDOW_MIN_ERRORS:
+                continue
+            first_t = (findings[0]["first_transition"] or {}).get("t_ns")
+            if first_t is None or t_on <= first_t:
+                continue
+            late = analyse(evidence_window(ev, t_on, None), None, cat, config)
+            w1 = late.hyps[0]
+            if w1.kind == "transmit-fault" and w1.node == n:
+                fl = _finding(ev, w1, t_on, None)
+                tr = next((r.first_degradation() for r in w1.replays if r.node == ev.nodes[n]),
+                          None)
+                fl["first_transition"] = dict(tr) if tr else None
+                findings.append(fl)
+    findings.sort(key=lambda f: f["from_ns"])
+    catalog_match = _catalog_match(ev, cat)
     known_tx = int((errors["tx"] >= 0).sum()) if n_errors else 0
     blind = not ev.nodes or (n_errors > 0 and known_tx < n_errors / 2)
-    thin = ((n_errors < MIN_ERRORS and not silences) or winner.score < MIN_CONFIDENCE
-            or blind)
+    mismatch = not catalog_match["ok"]
+    thin = ((n_errors < MIN_ERRORS and not silences and not an.floods)
+            or cause_h.score < MIN_CONFIDENCE or blind or mismatch)
+    alternatives: list[dict[str, Any]] = []
     if clean:
         first_deg = None
-        cause = {"kind": "none", "node": None}
+        cause: dict[str, Any] = {"kind": "none", "node": None}
         thin = False
     else:
-        first_deg = _first_degraded(ev, winner if not thin else hyps[0], silences, origin)
+        first_deg = _first_degraded(ev, cause_h, silences, origin)
+        if cause_h.kind == "flood":
+            first_deg = None
+        silent_reading = _silent_reading(ev, hyps, silences, origin)
+        if silent_reading is not None:
+            first_deg, alternatives = silent_reading
         if thin:
             cause = {"kind": "unknown", "node": None}
         else:
-            node = ev.nodes[winner.node] if winner.node is not None else None
-            cause = {"kind": winner.kind, "node": node}
+            node = ev.nodes[cause_h.node] if cause_h.node is not None else None
+            cause = {"kind": cause_h.kind, "node": node}
+            if cause_h.flood is not None:
+                cause["id"] = f"{cause_h.flood.id:03X}"
+        if thin and mismatch:
+            cause["reason"] = (f"the catalog does not match the log: it knows "
+                               f"{catalog_match['logged_known']:.0%} of the logged identifiers "
+                               f"and {catalog_match['catalog_seen']:.0%} of its identifiers "
+                               "were logged")
+        elif thin:
+            cause["reason"] = "evidence too thin"
+    if first_deg is not None and first_deg.get("state") != "silent":
+        _bound_first(ev, cause_h, first_deg, config)
     for h in hyps:
         h.why = _why(ev, h, hyps[0])
+    conf = _calibrated(ev, cause_h, hyps, first_deg, thin, clean, alternatives, findings)
     result: dict[str, Any] = {
         "run": ev.run,
         "bus": ev.bus,
@@ -167,16 +356,112 @@ def bus_verdict(ev: BusEvidence, origin: str | None, gaps: pl.DataFrame | None,
         "nodes": [_node_json(rep) for rep in winner.replays],
         "status_agreement": _status_agreement(winner.replays),
         "assumptions": _assumptions(config, attributed_everywhere, winner),
-        "verdict": _sentence(ev, cause, first_deg, hyps, thin, clean)
+        "verdict": _sentence(ev, cause, first_deg, hyps, thin, clean, cause_h, alternatives,
+                             findings)
         + (f" The catalog names the sender of only {known_tx} of {n_errors} errored frames"
            f" ({len(ev.nodes)} nodes on bus {ev.bus}); check --catalog." if blind else ""),
         "runner_up": ({"name": hyps[1].name, "score": round(hyps[1].score, 4),
                        "why": hyps[1].why} if len(hyps) > 1 else None),
         "evidence": _evidence(ev, winner, silences, first_deg),
+        "findings": findings,
+        "alternatives": alternatives,
+        "catalog_match": catalog_match,
+        "score": conf,
     }
+    if cause_h.flood is not None:
+        result["flood"] = _flood_json(ev, cause_h.flood, silences, cat)
     if first_deg is not None:
-        first_deg["confidence"] = round(winner.score if not thin else min(winner.score, 0.5), 3)
+        first_deg["confidence"] = conf
     return result, winner
+
+
+def _flood_json(ev: BusEvidence, f: Flood, silences: list[Silence],
+                cat: CatalogView) -> dict[str, Any]:
+    starved = sorted({f"{i:03X}" for s in silences if s.from_ns <= f.to_ns
+                      and (s.to_ns is None or s.to_ns >= f.from_ns)
+                      for i, _x in cat.keys.get(s.node, set())})
+    return {"id": f"{f.id:03X}", "ext": f.ext,
+            "sender": ev.nodes[f.sender] if f.sender >= 0 else None,
+            "from_ns": f.from_ns, "to_ns": f.to_ns, "frames": f.frames,
+            "per_s": round(f.frames / max(1e-9, (f.to_ns - f.from_ns) / 1e9), 1),
+            "catalog_frames": round(f.catalog_frames, 1) if f.catalog_frames is not None
+            else None, "in_catalog": f.catalog_frames is not None,
+            "starved": starved,
+            "starved_nodes": sorted({ev.nodes[s.node] for s in silences
+                                     if s.from_ns <= f.to_ns
+                                     and (s.to_ns is None or s.to_ns >= f.from_ns)})}
+
+
+def _silent_reading(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Silence],
+                    origin: str | None) -> tuple[dict[str, Any], list[dict[str, Any]]] | None:
+    """When the leader is a vanished node (cut off or stopped) and the other reading is still
+    in the running, report what was observed (silent, from when) and both readings."""
+    lead = hyps[0]
+    if lead.node is None or not (lead.kind == "silence" or lead.facts.get("far_side")):
+        return None
+    n = lead.node
+    pair = [h for h in hyps if h.node == n and (h.kind == "silence" or h.facts.get("far_side"))]
+    if len(pair) < 2 or min(h.score for h in pair) < ALTERNATIVE_RATIO * lead.score:
+        return None
+    s = next(x for x in silences if x.node == n)
+    latest = s.latest_from_ns if s.latest_from_ns is not None else s.from_ns
+    first = {"node": ev.nodes[n], "state": "silent", "t_ns": s.from_ns,
+             "wall_time": wall_time(origin, s.from_ns), "confidence": 0.0,
+             "worst_state": "silent", "worst_t_ns": s.from_ns,
+             "earliest_ns": s.from_ns, "latest_ns": latest, "until_ns": s.to_ns}
+    alts = []
+    for h in pair:
+        rep = h.replays[n]
+        alts.append({"reading": "cut off" if h.kind == "isolation" else "stopped sending",
+                     "hypothesis": h.name, "kind": h.kind, "score": round(h.score, 4),
+                     "transitions": [dict(tr) for tr in rep.transitions]
+                     if h.kind == "isolation" else []})
+    return first, alts
+
+
+def _bound_first(ev: BusEvidence, h: Hypothesis, first: dict[str, Any],
+                 config: ConfinementConfig) -> None:
+    """earliest_ns / latest_ns of the first degradation through logger losses before it."""
+    t = int(first["t_ns"])
+    first["earliest_ns"] = first["latest_ns"] = t
+    loss = loss_before(ev, t + 1)
+    if loss is None:
+        return
+    n = ev.node_index(first["node"])
+    if n < 0:
+        return
+    tx = h.node if h.kind in ("transmit-fault", "isolation") and h.node is not None else \
+        (-1 if h.kind == "receive-fault" else n)
+    up = upper_evidence(ev, tx if tx is not None else -1, None, t)
+    if up is None:
+        return
+    rep = replay_node(up, n, h.kind == "receive-fault" and h.node == n, config,
+                      keep_rows=False)
+    tr = next((x for x in rep.transitions if x["from"] == "error-active"), None)
+    if tr is not None and tr["t_ns"] < t:
+        first["earliest_ns"] = max(int(tr["t_ns"]), loss[0])
+    first["uncertain"] = first["earliest_ns"] != first["latest_ns"]
+
+
+def _calibrated(ev: BusEvidence, h: Hypothesis, hyps: list[Hypothesis],
+                first: dict[str, Any] | None, thin: bool, clean: bool,
+                alternatives: list[dict[str, Any]], findings: list[dict[str, Any]]) -> float:
+    """The verdict's score: the posterior of what it states, lowered by what the sweep
+    (bench/forensics_sweep.py, docs/forensics.md) shows to be less reliable."""
+    if clean:
+        return 1.0
+    if alternatives:
+        p = sum(a["score"] for a in alternatives)
+    else:
+        p = h.score
+    if thin:
+        p = min(p, 0.5)
+    if first is not None:
+        width = int(first.get("latest_ns", first["t_ns"])) - int(first.get("earliest_ns",
+                                                                         first["t_ns"]))
+        if first.get("state") != "silent" and width > 0:
+            p *= HALF_CONFIDENCE_WIDTH_NS / (HALF_CONFIDENCE_WIDTH_NS + width)
+    return round(float(min(max(p, 0.0), 1.0)), 3)
 
 
 def _first_degraded(ev: BusEvidence, h: Hypothesis, silences: list[Silence],
@@ -308,24 +593,60 @@ def _log(x: float) -> float:
 
 
 def _sentence(ev: BusEvidence, cause: dict[str, Any], first: dict[str, Any] | None,
-              hyps: list[Hypothesis], thin: bool, clean: bool) -> str:
+              hyps: list[Hypothesis], thin: bool, clean: bool, h: Hypothesis | None = None,
+              alternatives: list[dict[str, Any]] | None = None,
+              findings: list[dict[str, Any]] | None = None) -> str:
     if clean:
         return f"{ev.run}/{ev.bus}: clean bus, no error frames and no unexplained silences."
-    lead = (f"{first['node']} degraded first: {first['state']} at {first['t_ns'] / 1e9:.6f} s"
-            + (f" ({first['wall_time']})" if first.get("wall_time") else "")) if first else \
-        "no node left error-active in the replay"
+    h = h or hyps[0]
+    when = ""
+    if first and first.get("earliest_ns", first["t_ns"]) != first.get("latest_ns",
+                                                                       first["t_ns"]):
+        when = (f" (between {first['earliest_ns'] / 1e9:.6f} s and "
+                f"{first['latest_ns'] / 1e9:.6f} s: logger loss)")
+    if first and first["state"] == "silent":
+        lead = (f"{first['node']} fell silent at {first['t_ns'] / 1e9:.6f} s"
+                + (f" ({first['wall_time']})" if first.get("wall_time") else "") + when)
+    elif first:
+        lead = (f"{first['node']} degraded first: {first['state']} at "
+                f"{first['t_ns'] / 1e9:.6f} s"
+                + (f" ({first['wall_time']})" if first.get("wall_time") else "") + when)
+    elif h.kind == "flood":
+        lead = "no node left error-active"
+    else:
+        lead = "no node left error-active in the replay"
     if thin:
-        return (f"{ev.run}/{ev.bus}: {lead}. Evidence too thin to name a cause "
+        reason = cause.get("reason", "evidence too thin")
+        return (f"{ev.run}/{ev.bus}: {lead}. Cause unknown: {reason} "
                 f"(best: {hyps[0].name}, score {hyps[0].score:.2f}).")
+    f = h.flood
     what = {"bus-disturbance": "a disturbance of the whole bus",
             "receive-fault": f"a receive-side fault in {cause['node']}",
             "transmit-fault": f"a transmit-side fault in {cause['node']}",
-            "isolation": f"{cause['node']} cut off from the bus (no ACK)"
-            + (" or, equally likely from this log, it stopped sending"
-               if hyps[0].facts.get("far_side") and len(hyps) > 1
-               and hyps[1].kind == "silence" and hyps[1].score >= 0.9 * hyps[0].score else ""),
-            "silence": f"{cause['node']} falling silent"}.get(cause["kind"], cause["kind"])
-    return f"{ev.run}/{ev.bus}: {lead}. Most likely cause: {what} (score {hyps[0].score:.2f})."
+            "isolation": f"{cause['node']} cut off from the bus (no ACK)",
+            "silence": f"{cause['node']} falling silent",
+            "flood": (f"a flood of identifier {f.id if f else 0:03X}"
+                      + (f" from {ev.nodes[f.sender]}" if f and f.sender >= 0
+                         else " (not in the catalog, sender unknown)")
+                      + (f", {f.frames} frames from {f.from_ns / 1e9:.3f} s to "
+                         f"{f.to_ns / 1e9:.3f} s, starving the lower-priority messages"
+                         if f else ""))}.get(cause["kind"], cause["kind"])
+    text = f"{ev.run}/{ev.bus}: {lead}. Most likely cause: {what} (score {h.score:.2f})."
+    if alternatives:
+        readings = []
+        for alt in alternatives:
+            steps = ", ".join(f"{tr['to']} at {tr['t_ns'] / 1e9:.6f} s"
+                              for tr in alt["transitions"][:3])
+            readings.append(f"if {alt['reading']} (score {alt['score']:.2f}): "
+                            + (steps if steps else "no counter change"))
+        text += (" Two readings fit equally well; " + "; ".join(readings)
+                 + ". ESI bits or status records after its return would tell them apart.")
+    later = [x for x in findings or [] if x["hypothesis"] != h.name]
+    if later:
+        text += " Also found: " + "; ".join(
+            f"{x['kind']}" + (f" in {x['node']}" if x["node"] else "")
+            + f" from {x['from_ns'] / 1e9:.3f} s" for x in later) + "."
+    return text
 
 
 def _evidence(ev: BusEvidence, h: Hypothesis, silences: list[Silence],

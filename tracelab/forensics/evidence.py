@@ -1,0 +1,389 @@
+"""Loading the evidence: one (run, bus) of the dataset views as arrays the replay walks.
+
+Frames become three arrays (time-sorted ``t_ns``, sender index, ESI flag) plus per-sender time
+arrays; error and status records become one event table in time order with the transmitter
+(the catalog sender of the identifier in progress) and the first detector (``by``) as node
+indices; logger losses an (k, 2) array. ``prepare_counts`` then counts, for every event, the
+frames before it (all and per sender), the one vectorised pass the counter walk needs.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from dataclasses import dataclass, field
+from typing import Any, Protocol
+
+import duckdb
+import numpy as np
+import polars as pl
+
+from tracelab.store.schema import manifest_buses
+
+KIND_ERROR = 0
+KIND_STATUS = 1
+#: From this many frames on, a one-bus dataset without extended or FD frames counts frames
+#: per identifier from the identifier array and samples durations, saving a grouping scan.
+SAMPLED_BY_ID_FRAMES = 1_000_000
+
+
+class CatalogLike(Protocol):
+    """What the replay needs from a network catalog (tracelab.network.catalog.Catalog)."""
+
+    @property
+    def buses(self) -> Any: ...
+
+    def messages_frame(self) -> pl.DataFrame: ...
+
+    def nodes_on(self, bus: str) -> list[str]: ...
+
+
+@dataclass
+class BusEvidence:
+    """Everything the replay reads for one (run, bus), as arrays. Built once, replayed often."""
+
+    run: str
+    bus: str
+    nodes: list[str]
+    bit_ns: float
+    frame_t: np.ndarray        # int64, time-sorted t_ns of every frame
+    frame_node: np.ndarray     # int16 node index of the sender, -1 when the catalog has none
+    frame_esi: np.ndarray      # int8: 0 classic, 1 FD with ESI clear, 2 FD with ESI set
+    own_t: list[np.ndarray]    # per node, the t_ns of its frames
+    share: np.ndarray          # per node, its share of bus time (duration_ns) over the run
+    events: pl.DataFrame       # error and status records in time order, see _events()
+    losses: np.ndarray         # (k, 2) int64 [t_ns, until_ns) logger-loss intervals
+    first_t_ns: int
+    last_t_ns: int
+    frames_by_id: pl.DataFrame  # id, ext, sender, frames, busy_ns
+    con: duckdb.DuckDBPyConnection | None = None
+    _recovery_cache: dict[tuple[int, int], int] = field(default_factory=dict)
+    # per-event cumulative counts (filled by prepare_counts)
+    ev_t: list[int] = field(default_factory=list)
+    ev_frames_before: list[int] = field(default_factory=list)
+    ev_own_before: list[list[int]] = field(default_factory=list)
+    ev_loss_since_prev: list[bool] = field(default_factory=list)
+    loss_counts: list[int | None] | None = None  # per loss, the records the logger dropped
+
+    @property
+    def frames(self) -> int:
+        return int(self.frame_t.size)
+
+    def node_index(self, name: str | None) -> int:
+        if name is None:
+            return -1
+        try:
+            return self.nodes.index(name)
+        except ValueError:
+            return -1
+
+
+def _sql(text: str) -> str:
+    return "'" + text.replace("'", "''") + "'"
+
+
+def _frame(con: duckdb.DuckDBPyConnection, query: str) -> pl.DataFrame:
+    return con.sql(query).pl()
+
+
+def run_buses(con: duckdb.DuckDBPyConnection, run: str | None = None,
+              by_id: pl.DataFrame | None = None) -> list[tuple[str, str]]:
+    """(run, bus) pairs that have any frames or errors, sorted."""
+    where = f"WHERE run = {_sql(run)}" if run is not None else ""
+    rows = set(con.execute(f"SELECT DISTINCT run, bus FROM errors {where}").fetchall())
+    if by_id is None:
+        rows |= set(con.execute(f"SELECT DISTINCT run, bus FROM frames {where}").fetchall())
+    else:
+        rows |= set(by_id.select("run", "bus").unique().iter_rows())
+    return sorted((str(r), str(b)) for r, b in rows)
+
+
+def _sender_codes(catalog: CatalogLike, bus: str, nodes: list[str]) -> pl.DataFrame:
+    messages = catalog.messages_frame().filter(pl.col("bus") == bus)
+    index = {name: i for i, name in enumerate(nodes)}
+    return messages.select(
+        pl.col("id").cast(pl.UInt32), pl.col("ext").cast(pl.Boolean), "sender",
+        pl.col("sender").replace_strict(index, default=-1, return_dtype=pl.Int16).alias("code"))
+
+
+def _nominal_bps(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run: str,
+                 bus: str) -> int:
+    spec = catalog.buses.get(bus) if hasattr(catalog.buses, "get") else None
+    if spec is not None:
+        return int(spec.nominal_bps)
+    for (buses,) in con.execute(
+            f"SELECT buses FROM manifest WHERE run = {_sql(run)}").fetchall():
+        try:
+            for decl in manifest_buses(buses):
+                if decl.get("alias") == bus:
+                    return int(decl["nominal_bps"])
+        except (ValueError, TypeError, KeyError):
+            continue
+    return 500_000
+
+
+def single_pair(con: duckdb.DuckDBPyConnection, run: str | None = None
+                ) -> tuple[str, str] | None:
+    """(run, bus) when the manifest holds one run with one declared bus, else None."""
+    try:
+        rows = con.execute("SELECT DISTINCT run, buses FROM manifest").fetchall()
+    except duckdb.Error:
+        return None
+    pairs = set()
+    for r, buses in rows:
+        try:
+            aliases = [b["alias"] for b in manifest_buses(buses)]
+        except (ValueError, TypeError, KeyError):
+            return None
+        if len(aliases) != 1:
+            return None
+        pairs.add((str(r), str(aliases[0])))
+    if len(pairs) != 1 or (run is not None and next(iter(pairs))[0] != run):
+        return None
+    return next(iter(pairs))
+
+
+def frames_by_id(con: duckdb.DuckDBPyConnection, run: str | None = None,
+                 pair: tuple[str, str] | None = None) -> pl.DataFrame:
+    """One scan: frames, bus time and FD frames per (run, bus, id, ext).
+
+    ``pair``: the dataset holds this (run, bus) only; the scan then groups by identifier.
+    """
+    if pair is not None:
+        any_ext, fd_frames, total = con.execute(
+            "SELECT coalesce(bool_or(ext), false), count(*) FILTER (WHERE fd), count(*) "
+            "FROM frames").fetchall()[0]
+        if not any_ext and not fd_frames and total >= SAMPLED_BY_ID_FRAMES:
+            # Counts per identifier come from the identifier array the replay reads anyway
+            # (load_bus_evidence); the bus time per identifier from a 2 % block sample of
+            # durations (frame lengths barely vary per identifier).
+            mean = _frame(con, "SELECT id, avg(duration_ns)::DOUBLE AS mean_ns FROM (SELECT "
+                          "id, duration_ns FROM frames USING SAMPLE 2 PERCENT (system)) "
+                          "GROUP BY id")
+            if mean.height == 0:
+                mean = _frame(con, "SELECT id, avg(duration_ns)::DOUBLE AS mean_ns "
+                              "FROM frames GROUP BY id")
+            return mean.select(pl.lit(pair[0]).alias("run"), pl.lit(pair[1]).alias("bus"),
+                               pl.col("id").cast(pl.UInt32), pl.lit(False).alias("ext"),
+                               pl.lit(None, pl.Int64).alias("frames"),
+                               pl.lit(None, pl.Int64).alias("busy_ns"),
+                               pl.lit(0, pl.Int64).alias("fd_frames"), "mean_ns")
+        frame = _frame(con, "SELECT id, ext, count(*) AS frames, sum(duration_ns)::BIGINT "
+                       "AS busy_ns, count(*) FILTER (WHERE fd) AS fd_frames FROM frames "
+                       "GROUP BY ALL")
+        return frame.select(pl.lit(pair[0]).alias("run"), pl.lit(pair[1]).alias("bus"),
+                            pl.col("id").cast(pl.UInt32), pl.col("ext").cast(pl.Boolean),
+                            "frames", "busy_ns", "fd_frames")
+    where = f"WHERE run = {_sql(run)}" if run is not None else ""
+    return _frame(con, "SELECT run, bus, id, ext, count(*) AS frames, "
+                  "sum(duration_ns)::BIGINT AS busy_ns, count(*) FILTER (WHERE fd) AS fd_frames "
+                  f"FROM frames {where} GROUP BY ALL").with_columns(
+        pl.col("id").cast(pl.UInt32), pl.col("ext").cast(pl.Boolean))
+
+
+def load_bus_evidence(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run: str,
+                      bus: str, by_id: pl.DataFrame | None = None,
+                      only_pair: bool = False) -> BusEvidence:
+    """Read frames, errors, status and losses of one (run, bus) into arrays.
+
+    ``only_pair``: the views hold this (run, bus) only, so the frame scans need no filter.
+    """
+    nodes = list(catalog.nodes_on(bus))
+    codes = _sender_codes(catalog, bus, nodes)
+    where = f"run = {_sql(run)} AND bus = {_sql(bus)}"
+    extra = [n for (n,) in con.execute(
+        f"SELECT DISTINCT node FROM status WHERE {where} UNION SELECT DISTINCT \"by\" FROM "
+        f"errors WHERE {where} AND \"by\" IS NOT NULL ORDER BY 1").fetchall() if n not in nodes]
+    nodes += extra
+    if by_id is None:
+        by_id = frames_by_id(con, run)
+    by_id = by_id.filter((pl.col("run") == run) & (pl.col("bus") == bus)).drop("run", "bus")
+    by_id = by_id.join(codes.select("id", "ext", "sender", "code"), on=["id", "ext"],
+                       how="left")
+    scan = f"FROM frames{'' if only_pair else ' WHERE ' + where}"
+    # Column by column: DuckDB hands each over as one numpy array (the cheapest transfer).
+    frame_t = np.asarray(con.sql(f"SELECT t_ns {scan}").fetchnumpy()["t_ns"], np.int64)
+    ids = np.asarray(con.sql(f"SELECT id {scan}").fetchnumpy()["id"])
+    any_ext = bool(by_id["ext"].any()) if by_id.height else False
+    if any_ext:
+        ext = np.asarray(con.sql(f"SELECT ext {scan}").fetchnumpy()["ext"], bool)
+        keys = ids.astype(np.int64) * 2 + ext
+    else:
+        keys = ids  # standard identifiers only: the key is the identifier
+    if int(by_id["fd_frames"].sum() or 0):
+        flags = con.sql(f"SELECT (fd::INT + (fd AND esi)::INT)::TINYINT AS esi {scan}")
+        esi = np.asarray(flags.fetchnumpy()["esi"], np.int8)
+    else:
+        esi = np.zeros(frame_t.size, np.int8)
+    if frame_t.size > 1 and bool(np.any(frame_t[1:] < frame_t[:-1])):
+        order = np.argsort(frame_t, kind="stable")  # rare: logs with backward time steps
+        frame_t, keys, esi = frame_t[order], keys[order], esi[order]
+    if "mean_ns" in by_id.columns:
+        by_id = _counted_by_id(ids, by_id, codes)
+    frame_node = _map_keys(keys, codes, with_ext=any_ext)
+    own_t = _split_by_node(frame_t, frame_node, len(nodes))
+    busy = np.zeros(len(nodes), dtype=np.float64)
+    for code, ns in zip(by_id["code"].fill_null(-1).to_list(), by_id["busy_ns"].to_list(),
+                        strict=True):
+        if code >= 0:
+            busy[code] += float(ns or 0)
+    total = float(by_id["busy_ns"].sum() or 0.0)
+    share = busy / total if total > 0 else np.full(len(nodes), 1.0 / max(1, len(nodes)))
+    events = _events(con, where, codes, nodes)
+    losses = con.execute(
+        f"SELECT t_ns, until_ns, count FROM losses WHERE {where} ORDER BY t_ns").fetchnumpy()
+    loss_arr = np.column_stack([np.asarray(losses["t_ns"], dtype=np.int64),
+                                np.asarray(losses["until_ns"], dtype=np.int64)]) \
+        if len(losses["t_ns"]) else np.zeros((0, 2), dtype=np.int64)
+    ends = [int(frame_t[0]), int(frame_t[-1])] if frame_t.size else []
+    if events.height:
+        ends += [int(events["t_ns"].min()), int(events["t_ns"].max())]  # type: ignore[arg-type]
+    first_t, last_t = (min(ends), max(ends)) if ends else (0, 0)
+    evidence = BusEvidence(run, bus, nodes, 1e9 / _nominal_bps(con, catalog, run, bus),
+                           frame_t, frame_node, esi, own_t, share, events, loss_arr, first_t,
+                           last_t, by_id, con)
+    evidence.loss_counts = [None if c is None or c != c else int(c)
+                            for c in np.asarray(losses["count"], dtype=object).tolist()]
+    prepare_counts(evidence)
+    return evidence
+
+
+def _counted_by_id(ids: np.ndarray, sampled: pl.DataFrame, codes: pl.DataFrame
+                   ) -> pl.DataFrame:
+    """frames and busy_ns per identifier from the identifier array and sampled durations."""
+    if ids.size == 0:
+        values = counts = np.zeros(0, dtype=np.int64)
+    elif int(ids.max()) >= 1 << 16:
+        values, counts = np.unique(ids, return_counts=True)
+    else:
+        values, counts = _bincount_ids(ids)
+    overall = float(np.mean(sampled["mean_ns"].to_numpy())) if sampled.height else 0.0
+    mean = dict(zip(sampled["id"].to_list(), sampled["mean_ns"].to_list(), strict=True))
+    frame = pl.DataFrame({
+        "id": values.astype(np.uint32), "ext": np.zeros(values.size, bool),
+        "frames": counts.astype(np.int64),
+        "busy_ns": np.round(counts * np.array([mean.get(int(v), overall) for v in values],
+                                              dtype=np.float64)).astype(np.int64),
+        "fd_frames": np.zeros(values.size, np.int64)})
+    return frame.join(codes.select("id", "ext", "sender", "code"), on=["id", "ext"], how="left")
+
+
+def _bincount_ids(ids: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    counts = np.bincount(ids)
+    values = np.flatnonzero(counts)
+    return values, counts[values]
+
+
+def _split_by_node(frame_t: np.ndarray, frame_node: np.ndarray, n: int) -> list[np.ndarray]:
+    """Per node, its frame times (sorted): a compress per node for a few nodes, else one
+    stable radix sort of the 16-bit codes (cheaper than many passes)."""
+    if n <= 8:
+        return [np.compress(frame_node == i, frame_t) for i in range(n)]
+    order = np.argsort(frame_node, kind="stable")
+    grouped = frame_t[order]
+    bounds = np.searchsorted(frame_node[order], np.arange(-1, n + 1, dtype=np.int16),
+                             side="left")
+    return [grouped[bounds[i + 1]:bounds[i + 2]] for i in range(n)]
+
+
+def _map_keys(keys: np.ndarray, codes: pl.DataFrame, with_ext: bool = True) -> np.ndarray:
+    """Sender index per frame from the key (id * 2 + ext, or the id alone when no frame is
+    extended), vectorised: a lookup table for small keys, else a sorted-key search."""
+    if with_ext:
+        cat_keys = (codes["id"].cast(pl.Int64) * 2 + codes["ext"].cast(pl.Int64)).to_numpy()
+        cat_codes = codes["code"].to_numpy().astype(np.int16)
+    else:
+        std = codes.filter(~pl.col("ext"))
+        cat_keys = std["id"].cast(pl.Int64).to_numpy()
+        cat_codes = std["code"].to_numpy().astype(np.int16)
+    if cat_keys.size == 0 or keys.size == 0:
+        return np.full(keys.size, -1, dtype=np.int16)
+    if int(keys.max()) < 4096 and int(cat_keys.max()) < 4096:
+        table = np.full(4096, -1, dtype=np.int16)
+        table[cat_keys] = cat_codes
+        return table[keys]
+    order = np.argsort(cat_keys)
+    cat_keys, cat_codes = cat_keys[order], cat_codes[order]
+    pos = np.searchsorted(cat_keys, keys)
+    pos = np.minimum(pos, cat_keys.size - 1)
+    found = cat_keys[pos] == keys
+    return np.where(found, cat_codes[pos], np.int16(-1)).astype(np.int16)
+
+
+def _events(con: duckdb.DuckDBPyConnection, where: str, codes: pl.DataFrame,
+            nodes: list[str]) -> pl.DataFrame:
+    """Error and status records in time order with transmitter / first-detector indices."""
+    index = {name: i for i, name in enumerate(nodes)}
+    errors = _frame(con, f"SELECT t_ns, type, field, id, ext, \"by\", file, line FROM errors "
+                         f"WHERE {where}")
+    errors = errors.with_columns(pl.col("id").cast(pl.UInt32),
+                                 pl.col("ext").cast(pl.Boolean).fill_null(False)).join(
+        codes.select("id", "ext", pl.col("code").alias("tx")), on=["id", "ext"], how="left")
+    errors = errors.select(
+        "t_ns", pl.lit(KIND_ERROR, pl.Int8).alias("kind"), "type", "field", "id", "ext",
+        pl.col("tx").fill_null(-1).cast(pl.Int16),
+        pl.col("by").replace_strict(index, default=None, return_dtype=pl.Int16).alias("by_node")
+        .fill_null(-1), "by",
+        pl.lit(-1, pl.Int16).alias("node"), pl.lit(None, pl.Int32).alias("tec"),
+        pl.lit(None, pl.Int32).alias("rec"), "file", "line")
+    status = _frame(con, f"SELECT t_ns, node, tec, rec, file, line FROM status WHERE {where}")
+    status = status.select(
+        "t_ns", pl.lit(KIND_STATUS, pl.Int8).alias("kind"), pl.lit(None, pl.String).alias("type"),
+        pl.lit(None, pl.String).alias("field"), pl.lit(None, pl.UInt32).alias("id"),
+        pl.lit(None, pl.Boolean).alias("ext"), pl.lit(-1, pl.Int16).alias("tx"),
+        pl.lit(-1, pl.Int16).alias("by_node"), pl.lit(None, pl.String).alias("by"),
+        pl.col("node").replace_strict(index, default=-1, return_dtype=pl.Int16),
+        pl.col("tec").cast(pl.Int32), pl.col("rec").cast(pl.Int32), "file", "line")
+    return pl.concat([errors, status]).sort(["t_ns", "file", "line"], nulls_last=True)
+
+
+def prepare_counts(ev: BusEvidence) -> None:
+    """Cumulative frame counts (all, and per sender) before every event: the vectorised part."""
+    t = ev.events["t_ns"].to_numpy().astype(np.int64)
+    ev.ev_t = t.tolist()
+    ev.ev_frames_before = np.searchsorted(ev.frame_t, t, side="left").tolist()
+    ev.ev_own_before = [np.searchsorted(own, t, side="left").tolist() for own in ev.own_t]
+    if ev.losses.shape[0] and t.size:
+        starts = ev.losses[:, 0]
+        upto = np.searchsorted(starts, t, side="right")
+        prev = np.concatenate([[0], upto[:-1]])
+        ev.ev_loss_since_prev = (upto > prev).tolist()
+    else:
+        ev.ev_loss_since_prev = [False] * t.size
+
+
+def with_extra_errors(ev: BusEvidence, t_ns: list[int], tx: int, error_type: str,
+                      frame_id: int | None, field: str = "ack") -> BusEvidence:
+    """A copy of the evidence with predicted (unlogged) error events added, counts redone."""
+    extra = pl.DataFrame({
+        "t_ns": t_ns, "kind": [KIND_ERROR] * len(t_ns), "type": [error_type] * len(t_ns),
+        "field": [field] * len(t_ns), "id": [frame_id] * len(t_ns),
+        "ext": [False] * len(t_ns), "tx": [tx] * len(t_ns), "by_node": [-1] * len(t_ns),
+        "by": [None] * len(t_ns), "node": [-1] * len(t_ns), "tec": [None] * len(t_ns),
+        "rec": [None] * len(t_ns), "file": ["(predicted)"] * len(t_ns),
+        "line": [None] * len(t_ns)}, schema=ev.events.schema)
+    events = pl.concat([ev.events, extra]).sort(["t_ns", "file", "line"], nulls_last=True)
+    copy = dataclasses.replace(ev, events=events, _recovery_cache={})
+    prepare_counts(copy)
+    return copy
+
+
+
+
+def evidence_window(ev: BusEvidence, t_from: int | None, t_to: int | None) -> BusEvidence:
+    """A copy holding only frames and records in [t_from, t_to) (for per-window findings)."""
+    lo = ev.first_t_ns if t_from is None else t_from
+    hi = ev.last_t_ns + 1 if t_to is None else t_to
+    i, j = (int(x) for x in np.searchsorted(ev.frame_t, [lo, hi], side="left"))
+    events = ev.events.filter((pl.col("t_ns") >= lo) & (pl.col("t_ns") < hi))
+    keep = (ev.losses[:, 0] < hi) & (ev.losses[:, 1] > lo) if ev.losses.shape[0] else \
+        np.zeros(0, dtype=bool)
+    counts = [c for c, k in zip(ev.loss_counts or [None] * ev.losses.shape[0], keep.tolist(),
+                                strict=True) if k]
+    own_t = [own[np.searchsorted(own, lo, side="left"):np.searchsorted(own, hi, side="left")]
+             for own in ev.own_t]
+    copy = dataclasses.replace(
+        ev, frame_t=ev.frame_t[i:j], frame_node=ev.frame_node[i:j], frame_esi=ev.frame_esi[i:j],
+        own_t=own_t, events=events, losses=ev.losses[keep], loss_counts=counts,
+        first_t_ns=lo, last_t_ns=max(lo, hi - 1), _recovery_cache={})
+    prepare_counts(copy)
+    return copy

@@ -1,0 +1,87 @@
+"""Logger losses: what the replay can still say across an interval the log does not cover.
+
+A ``loss`` record says the logger dropped ``count`` records over [t_ns, until_ns). Inside it
+errors and frames are missing, so every counter is only known between bounds:
+
+- lower reading: none of the lost records was an error (the replay as it stands);
+- upper reading: the lost records were errors, as many as the loss can hold (``count``, and
+  no more than back-to-back shortest error frames fit in the interval), charged to the
+  hypothesis' culprit.
+
+The first degradation is then an interval [earliest_ns, latest_ns]: the upper reading's
+transition (never before the loss starts) and the lower reading's. Silences that overlap a
+loss are trimmed to the part outside it, never dropped: a node that vanished inside a loss
+vanished somewhere between its last frame seen and the end of the loss.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from tracelab.forensics.evidence import BusEvidence, with_extra_errors
+
+#: The shortest attempt an error can destroy: an error detected right after arbitration
+#: (about 20 bits) plus a 6-bit flag, 8-bit delimiter and 3-bit intermission.
+SHORTEST_ERROR_ATTEMPT_BITS = 37
+
+
+def in_loss(ev: BusEvidence, t_ns: int) -> bool:
+    """True when t_ns lies inside a logger-loss interval."""
+    if not ev.losses.shape[0]:
+        return False
+    i = int(np.searchsorted(ev.losses[:, 0], t_ns, side="right")) - 1
+    return i >= 0 and int(ev.losses[i, 1]) > t_ns
+
+
+def loss_before(ev: BusEvidence, t_ns: int) -> tuple[int, int] | None:
+    """The last loss interval that starts before t_ns, or None."""
+    if not ev.losses.shape[0]:
+        return None
+    i = int(np.searchsorted(ev.losses[:, 0], t_ns, side="left")) - 1
+    if i < 0:
+        return None
+    return int(ev.losses[i, 0]), int(ev.losses[i, 1])
+
+
+def trim_to_losses(ev: BusEvidence, a: int, b: int) -> list[tuple[int, int]]:
+    """[a, b) minus every loss interval (a loop over the few losses overlapping it)."""
+    pieces = [(a, b)]
+    for lo, hi in ev.losses.tolist():
+        if lo >= b or hi <= a:
+            continue
+        nxt = []
+        for x, y in pieces:
+            if hi <= x or lo >= y:
+                nxt.append((x, y))
+                continue
+            if lo > x:
+                nxt.append((x, lo))
+            if hi < y:
+                nxt.append((hi, y))
+        pieces = nxt
+    return pieces
+
+
+def lost_counts(ev: BusEvidence) -> list[int]:
+    """Per loss interval, how many error records it can have hidden at most."""
+    out = []
+    rows = ev.loss_counts if ev.loss_counts is not None else [None] * ev.losses.shape[0]
+    for (lo, hi), count in zip(ev.losses.tolist(), rows, strict=True):
+        fit = int((hi - lo) / (SHORTEST_ERROR_ATTEMPT_BITS * ev.bit_ns)) + 1
+        out.append(min(fit, int(count)) if count is not None else fit)
+    return out
+
+
+def upper_evidence(ev: BusEvidence, tx: int, t_from: int | None = None,
+                   t_to: int | None = None) -> BusEvidence | None:
+    """The evidence with the upper reading's errors put into every loss in [t_from, t_to]:
+    ``tx`` the transmitter they are charged to (-1: unknown, every node a receiver).
+    None when there is no loss there."""
+    times: list[int] = []
+    for (lo, hi), n in zip(ev.losses.tolist(), lost_counts(ev), strict=True):
+        if (t_from is not None and hi < t_from) or (t_to is not None and lo > t_to) or n <= 0:
+            continue
+        times += np.linspace(lo, hi - 1, n).astype(np.int64).tolist()
+    if not times:
+        return None
+    return with_extra_errors(ev, times, tx, "stuff", None, field="data")
