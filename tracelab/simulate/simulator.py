@@ -72,11 +72,12 @@ class SimulationSummary:
             lines.append(f"  bus {b.bus}: {b.frames} frames, {b.error_frames} error frames, "
                          f"load {100 * b.load_ratio:.1f} %")
         for entry in self.first_degraded:
-            first, worst = entry.get("first_transition"), entry.get("worst")
+            first, worst = entry.get("first_transition"), entry.get("worst") or {}
             if first:  # same definition as `tracelab faults`: first transition out of error-active
                 lines.append(f"  bus {entry['bus']}: {first['node']} degraded first: "
                              f"{first['state']} at {first['t_ns'] / 1e9:.3f} s; worst state "
-                             f"{worst['state']} at {worst['t_ns'] / 1e9:.3f} s")
+                             f"{worst.get('state', first['state'])} at "
+                             f"{worst.get('t_ns', first['t_ns']) / 1e9:.3f} s")
         lines.append(f"log: {self.log}")
         lines.append(f"truth: {self.truth}")
         return "\n".join(lines)
