@@ -19,7 +19,7 @@ LAYERS: dict[str, int] = {
     "format": 1,
     "physics": 2,
     "network": 3,
-    "store": 4,
+    "store": 4, "inputs": 4,  # input shells (capture, convert): write format v1
     "analyses": 5, "simulate": 5, "forensics": 5,
     "report": 6,
     "fleet": 7,

@@ -204,6 +204,30 @@ def batch(
         raise typer.Exit(3)
 
 
+@app.command()
+def convert(
+    tables: list[Path] = typer.Argument(..., help="Delimited frame tables (CSV, TSV ...; .gz / .zst read too)."),
+    output: Path = typer.Option(..., "-o", "--output", help="Log to write (.frames[.gz|.zst])."),
+    bus: list[str] = typer.Option(..., "--bus", help="[VALUE=]ALIAS,nominal=BPS[,data=BPS]; repeat per bus."),
+    columns: str = typer.Option(..., "--columns", help="time=COL,id=COL,data=COL[,ext=,dlc=,rtr=,fd=,brs=,esi=,bus=]; COL a header name or 1-based number."),
+    time_unit: str = typer.Option("s", "--time-unit", help="Unit of the time column: s | ms | us | ns."),
+    origin: str | None = typer.Option(None, "--origin", help="UTC of t=0, e.g. 2026-11-30T21:04:05Z."),
+    delimiter: str = typer.Option(",", "--delimiter", help="Field delimiter (one character; 'tab' for TAB)."),
+    id_base: int = typer.Option(16, "--id-base", help="Identifiers written in base 16 or 10."),
+    no_header: bool = typer.Option(False, "--no-header", help="The first row is data (columns by number)."),
+    meta: list[str] = typer.Option([], "--meta", help="key=value for %meta (e.g. run=, vehicle=); repeat."),
+    strict: bool = typer.Option(False, "--strict", help="Stop at the first bad row (exit 3)."),
+    quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar."),
+) -> None:
+    """Convert delimited frame tables into one frame log (format v1); every row is accounted for."""
+    from tracelab import workflow
+
+    summary = workflow.convert(tables, output, bus=bus, columns=columns, time_unit=time_unit,
+                               origin=origin, delimiter=delimiter, id_base=id_base,
+                               header=not no_header, meta=meta, strict=strict, quiet=quiet)
+    typer.echo(summary.describe())
+
+
 def main(argv: list[str] | None = None) -> int:
     """Entry point: one line and a documented exit code for every user error.
 

@@ -341,3 +341,21 @@ def batch(root: Path, fleet: Path, catalog: Path | None = None, executor: str = 
     steps = PipelineSteps(ingest=ingest, timing=timing, load=load, faults=faults, report=report)
     return run_batch(root, fleet, steps, catalog=catalog, executor=executor,
                      scheduler=scheduler, workers=workers, previous=previous, quiet=quiet)
+
+
+# --- inputs: capture / convert --------------------------------------------------------------
+
+
+def convert(tables: list[Path], output: Path, bus: list[str], columns: str, time_unit: str = "s",
+            origin: str | None = None, delimiter: str = ",", id_base: int = 16,
+            header: bool = True, meta: list[str] | None = None, strict: bool = False,
+            quiet: bool = False) -> Any:
+    from tracelab.inputs.convert import ConvertOptions, convert_tables, parse_columns
+    from tracelab.inputs.options import parse_bus_option, parse_meta
+
+    named = {"tab": "\t", "\\t": "\t", "comma": ",", "semicolon": ";", "space": " "}
+    opts = ConvertOptions(buses=tuple(parse_bus_option(b) for b in bus),
+                          columns=parse_columns(columns), time_unit=time_unit, origin=origin,
+                          delimiter=named.get(delimiter.lower(), delimiter), id_base=id_base,
+                          header=header, strict=strict, meta=parse_meta(meta or []))
+    return convert_tables([Path(t) for t in tables], Path(output), opts, quiet=quiet)
