@@ -352,7 +352,9 @@ def convert(tables: list[Path], output: Path, bus: list[str], columns: str, time
             quiet: bool = False) -> Any:
     from tracelab.inputs.convert import ConvertOptions, convert_tables, parse_columns
     from tracelab.inputs.options import parse_bus_option, parse_meta
+    from tracelab.store.dataset import make_output_parent
 
+    make_output_parent(Path(output), "log")
     named = {"tab": "\t", "\\t": "\t", "comma": ",", "semicolon": ";", "space": " "}
     opts = ConvertOptions(buses=tuple(parse_bus_option(b) for b in bus),
                           columns=parse_columns(columns), time_unit=time_unit, origin=origin,

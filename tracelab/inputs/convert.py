@@ -19,8 +19,6 @@ Rules (docs/convert.md):
 
 from __future__ import annotations
 
-import gzip
-import io
 import os
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
@@ -30,10 +28,9 @@ from typing import BinaryIO
 import numpy as np
 import polars as pl
 import pyarrow as pa
-import zstandard
 
 from tracelab.errors import LogFormatError, UsageError, did_you_mean
-from tracelab.format.compression import GZIP_MAGIC, ZSTD_MAGIC, open_log_for_writing
+from tracelab.format.compression import open_log, open_log_for_writing
 from tracelab.format.grammar import (
     FD_PAYLOAD_BYTES,
     MAX_BASE_ID,
@@ -159,19 +156,6 @@ def origin_epoch_ns(origin: str) -> int:
 
 
 # --- reading: blocks of whole lines ---------------------------------------------------------
-
-
-def _open_table(path: Path) -> tuple[BinaryIO, BinaryIO]:
-    """(decompressed stream, raw file); gzip / zstd by their first bytes."""
-    raw = open(path, "rb")  # noqa: SIM115 - closed by the caller
-    head = raw.read(4)
-    raw.seek(0)
-    if head.startswith(GZIP_MAGIC):
-        return gzip.GzipFile(fileobj=raw, mode="rb"), raw  # type: ignore[return-value]
-    if head.startswith(ZSTD_MAGIC):
-        reader = zstandard.ZstdDecompressor().stream_reader(raw, read_across_frames=True)
-        return io.BufferedReader(reader), raw  # type: ignore[arg-type]
-    return raw, raw
 
 
 def _blocks(stream: BinaryIO, block_bytes: int) -> Iterator[bytes]:
@@ -569,7 +553,7 @@ def _convert_one(table: Path, opts: ConvertOptions, keys: dict[str, tuple[str, b
                  output_log: _Output, state: dict[str, int | bool | None], advance: Callable[[int], None],
                  block_bytes: int) -> TableSummary:
     result = TableSummary(path=str(table))
-    stream, raw = _open_table(table)
+    stream, raw = open_log(table)
     idx: dict[str, int] | None = None if opts.header else _resolve_columns(table, None,
                                                                           opts.columns)
     exponent = TIME_UNIT_EXPONENT[opts.time_unit]
