@@ -1,0 +1,112 @@
+"""Mutation testing of tracelab: mutmut (PyPI) over the Python layers, plus the SQL probe.
+
+Each target runs in its own scratch copy of the repository (``--work``, default
+/tmp/tracelab-mutation/<target>) with a [tool.mutmut] section naming the code to mutate and
+the test files that should catch it, so runs stay scoped and nothing is written into the
+checkout. ``make mutation`` runs every target; ``--target physics`` runs one. The SQL probe
+(tools/mutate_sql.py) plants mutations in tracelab/analyses/sql/*.sql the same way.
+
+Scores: killed / (killed + survived + timeout); "no tests" mutants (code no selected test
+runs) are counted as survivors too. docs/testing.md records the figures and the survivors.
+"""
+
+from __future__ import annotations
+
+import argparse
+import re
+import shutil
+import subprocess
+import sys
+import time
+from collections import Counter
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+TARGETS: dict[str, tuple[str, list[str]]] = {
+    "physics": ("tracelab/physics/", [
+        "tests/physics", "tests/oracles/test_frame_oracle.py",
+        "tests/oracles/test_counters_reference.py", "tests/oracles/test_counter_boundaries.py",
+    ]),
+    "analyses": ("tracelab/analyses/", [
+        "tests/analyses", "tests/oracles/test_load_oracle.py", "tests/test_incident_queries.py",
+    ]),
+    "forensics": ("tracelab/forensics/", [
+        "tests/forensics", "tests/oracles/test_counters_reference.py",
+        "tests/oracles/test_counter_boundaries.py",
+    ]),
+}
+
+
+def _scratch(target: str, work: Path) -> Path:
+    source, tests = TARGETS[target]
+    if work.exists():
+        shutil.rmtree(work)
+    work.mkdir(parents=True)
+    for name in ("tracelab", "tests", "demo_logs", "README.md", "DEVELOPERS.md", "docs"):
+        src = ROOT / name
+        if src.is_dir():
+            shutil.copytree(src, work / name, ignore=shutil.ignore_patterns("__pycache__"))
+        elif src.exists():
+            shutil.copy2(src, work / name)
+    tests = [t for t in tests if (ROOT / t).exists()]
+    pyproject = (ROOT / "pyproject.toml").read_text()
+    pyproject += (
+        "\n[tool.mutmut]\n"
+        "source_paths = ['tracelab/']\n"
+        f"only_mutate = ['{source}*']\n"
+        f"pytest_add_cli_args_test_selection = {tests!r}\n"
+        "pytest_add_cli_args = ['-x', '-q', '-p', 'no:cacheprovider']\n"
+        "also_copy = ['demo_logs', 'README.md', 'DEVELOPERS.md', 'docs']\n"
+    )
+    (work / "pyproject.toml").write_text(pyproject)
+    return work
+
+
+def run_target(target: str, work: Path, children: int) -> dict[str, object]:
+    bindir = Path(sys.executable).parent
+    work = _scratch(target, work)
+    t0 = time.monotonic()
+    subprocess.run([str(bindir / "mutmut"), "run", "--max-children", str(children)],
+                   cwd=work, check=False, stdout=subprocess.DEVNULL)
+    elapsed = time.monotonic() - t0
+    out = subprocess.run([str(bindir / "mutmut"), "results", "--all", "true"], cwd=work,
+                         check=True, capture_output=True, text=True).stdout
+    status: dict[str, str] = {}
+    for line in out.splitlines():
+        m = re.match(r"\s*(\S+): (.+)$", line)
+        if m:
+            status[m.group(1)] = m.group(2).strip()
+    counts = Counter(status.values())
+    killed = counts.get("killed", 0)
+    total = sum(n for s, n in counts.items() if s not in ("skipped", "not checked"))
+    survivors = sorted(k for k, s in status.items() if s not in ("killed", "skipped"))
+    return {"target": target, "counts": dict(counts), "killed": killed, "total": total,
+            "score": killed / total if total else float("nan"), "seconds": round(elapsed),
+            "survivors": survivors, "work": str(work)}
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--target", choices=[*TARGETS, "sql", "all"], default="all")
+    ap.add_argument("--work", type=Path, default=Path("/tmp/tracelab-mutation"))
+    ap.add_argument("--children", type=int, default=2)
+    args = ap.parse_args(argv)
+    names = list(TARGETS) + ["sql"] if args.target == "all" else [args.target]
+    for name in names:
+        if name == "sql":
+            from tools import mutate_sql
+
+            mutate_sql.main([])
+            continue
+        r = run_target(name, args.work / name, args.children)
+        print(f"{name}: {r['killed']}/{r['total']} killed ({100 * float(r['score']):.1f} %) "
+              f"in {r['seconds']} s; {r['counts']}")
+        listing = args.work / f"{name}-survivors.txt"
+        listing.write_text("".join(f"{s}\n" for s in r["survivors"]))
+        print(f"  {len(r['survivors'])} survivors listed in {listing}")
+        print(f"  details: cd {r['work']} && {Path(sys.executable).parent}/mutmut show NAME")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
