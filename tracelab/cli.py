@@ -131,6 +131,25 @@ def sql(
 
 
 @app.command()
+def signals(
+    dataset: Path = typer.Argument(..., help="Dataset directory."),
+    catalog: Path = typer.Option(..., "--catalog", help="Network catalog TOML with [[message.signal]] tables."),
+    run: str | None = typer.Option(None, "--run", help="Only this run."),
+    signal: list[str] | None = typer.Option(None, "--signal", help="Only this signal (NAME or MESSAGE.NAME); repeatable."),
+    from_: str | None = typer.Option(None, "--from", help="Start of the time window, e.g. 4m."),
+    to: str | None = typer.Option(None, "--to", help="End of the time window (exclusive)."),
+    stuck: str | None = typer.Option(None, "--stuck", help="Flag signals without change for this long, e.g. 10s."),
+    as_json: bool = typer.Option(False, "--json", help="Print JSON."),
+) -> None:
+    """Decode the catalog's signals from the payloads; statistics, counter and checksum checks."""
+    from tracelab import workflow
+
+    result = workflow.signals(dataset, catalog=catalog, run=run, names=signal, from_=from_,
+                              to=to, stuck=stuck)
+    _print_json(result.as_json()) if as_json else typer.echo(result.describe())
+
+
+@app.command()
 def faults(
     dataset: Path = typer.Argument(..., help="Dataset directory."),
     catalog: Path = typer.Option(..., "--catalog", help="Network catalog TOML (who sends what)."),

@@ -133,6 +133,49 @@ def sql(dataset: Path, query: str | None, fmt: str = "table", out: Path | None =
     sql_command(dataset, query, fmt=fmt, out=out)
 
 
+# --- signals ------------------------------------------------------------------------------
+
+
+def signals(dataset: Path, catalog: Path, run: str | None = None,
+            names: list[str] | None = None, from_: str | None = None, to: str | None = None,
+            stuck: str | None = None) -> Any:
+    """Decode and check the catalog's signals; store signals, signal_stats, signal_checks.
+
+    Counter jumps are classified with the stored timing gaps when the timing analysis covers
+    the runs (else they are computed here from the same catalog)."""
+    from tracelab.analyses.signals import signals as compute_signals
+    from tracelab.errors import UsageError
+    from tracelab.network.catalog import load_catalog, parse_duration_ns
+    from tracelab.store.dataset import open_dataset
+
+    def duration(option: str, text: str | None) -> int | None:
+        if text is None:
+            return None
+        try:
+            return parse_duration_ns(text)
+        except ValueError as error:
+            raise UsageError(f"{option}: {error}") from None
+
+    from_ns, to_ns, stuck_ns = duration("--from", from_), duration("--to", to), \
+        duration("--stuck", stuck)
+    if from_ns is not None and to_ns is not None and to_ns <= from_ns:
+        raise UsageError(f"--to {to} must be later than --from {from_}")
+    if stuck_ns is not None and stuck_ns <= 0:
+        raise UsageError("--stuck must be longer than 0")
+    ds = open_dataset(dataset)
+    cat = load_catalog(catalog)
+    _check_run(ds, run)
+    runs = [run] if run is not None else ds.runs()
+    gaps = ds.read_analysis("gaps") if _covers(ds, "timing", runs) else None
+    with ds.connect() as con:
+        result = compute_signals(con, cat, run=run, names=names or None, from_ns=from_ns,
+                                 to_ns=to_ns, gaps=gaps, stuck_ns=stuck_ns)
+    _store(ds, "signals", result.signals, run)
+    _store(ds, "signal_stats", result.stats, run)
+    _store(ds, "signal_checks", result.checks, run)
+    return result
+
+
 # --- forensics ----------------------------------------------------------------------------
 
 

@@ -59,8 +59,18 @@ SCENARIO_TOP_KEYS = ("run", "fault", "mark", "logger")
 BUS_KEYS = ("nominal", "data", "stamp", "name")
 NODE_KEYS = ("buses",)
 SCENARIO_NODE_KEYS = ("drift_ppm", "recovery", "recovery_delay")
-MESSAGE_KEYS = ("bus", "id", "form", "dlc", "sender", "period", "name")
+MESSAGE_KEYS = ("bus", "id", "form", "dlc", "sender", "period", "name", "signal")
 SCENARIO_MESSAGE_KEYS = ("jitter", "offset", "payload", "event_every")
+#: Keys of a ``[[message.signal]]`` table (docs/network-catalog.md, "Signals").
+SIGNAL_KEYS = ("name", "lsb", "length", "order", "signed", "scale", "offset", "unit", "min",
+               "max", "values", "role", "mux", "mux_value", "crc", "over", "step", "plot")
+SCENARIO_SIGNAL_KEYS = ("profile",)
+CRC_KEYS = ("width", "poly", "init", "xorout", "refin", "refout")
+SIGNAL_ORDERS = ("little", "big")
+SIGNAL_ROLES = ("counter", "checksum")
+SIGNAL_NAME_RE = re.compile(r"^[A-Za-z_][A-Za-z0-9_]{0,63}$")
+MAX_SIGNAL_BITS = 64
+MAX_CRC_WIDTH = 32
 
 
 def parse_duration_ns(text: str | int) -> int:
@@ -107,6 +117,74 @@ class NodeSpec:
 
 
 @dataclass(frozen=True)
+class CrcSpec:
+    """A CRC in the parameter model of the public CRC catalogue (width, poly, init, refin,
+    refout, xorout); ``poly`` is written without its top bit, MSB-first."""
+
+    width: int
+    poly: int
+    init: int = 0
+    xorout: int = 0
+    refin: bool = False
+    refout: bool = False
+
+
+@dataclass(frozen=True)
+class SignalSpec:
+    """One ``[[message.signal]]``: where its bits lie in an ``nbytes`` payload and how a raw
+    value becomes a physical one (physical = raw * scale + offset).
+
+    ``lsb`` = byte * 8 + bit of the least significant bit (bit 0 = the byte's least
+    significant bit). ``little``: raw = (int.from_bytes(data, "little") >> lsb) & mask;
+    ``big``: raw = (int.from_bytes(data, "big") >> (8 * (n - 1 - byte) + bit)) & mask.
+    """
+
+    name: str
+    lsb: int
+    length: int
+    nbytes: int
+    order: str = "little"
+    signed: bool = False
+    scale: float = 1.0
+    offset: float = 0.0
+    unit: str = ""
+    min: float | None = None
+    max: float | None = None
+    values: tuple[tuple[int, str], ...] = ()
+    role: str | None = None
+    mux: str | None = None
+    mux_value: int | None = None
+    crc: CrcSpec | None = None
+    over: tuple[int, ...] = ()
+    step: int = 1
+    plot: bool = False
+    #: The scenario's value profile (tracelab.simulate.payloads reads it), as written.
+    profile: Any = field(default=None, compare=False, hash=False)
+
+    @property
+    def mask(self) -> int:
+        return (1 << self.length) - 1
+
+    @property
+    def shift(self) -> int:
+        """Right shift of the signal in int.from_bytes(data, order) (the formula above)."""
+        if self.order == "little":
+            return self.lsb
+        byte, bit = divmod(self.lsb, 8)
+        return 8 * (self.nbytes - 1 - byte) + bit
+
+    def bit_positions(self) -> list[int]:
+        """Payload bits the signal occupies, each as byte * 8 + bit."""
+        shifted = range(self.shift, self.shift + self.length)
+        if self.order == "little":
+            return list(shifted)
+        return [8 * (self.nbytes - 1 - p // 8) + p % 8 for p in shifted]
+
+    def byte_indices(self) -> list[int]:
+        return sorted({p // 8 for p in self.bit_positions()})
+
+
+@dataclass(frozen=True)
 class MessageSpec:
     """One catalogued message; ``period_ns`` None means event-driven."""
 
@@ -121,6 +199,7 @@ class MessageSpec:
     period_ns: int | None
     name: str | None
     form: str
+    signals: tuple[SignalSpec, ...] = ()
 
     @property
     def id_hex(self) -> str:
@@ -380,9 +459,223 @@ def _load_messages(path: str, raw: list[Any], buses: dict[str, BusSpec],
         if period_ns is not None and period_ns < duration_ns:
             raise CatalogError(path, where, f"period {table['period']} is shorter than "
                                f"the frame itself ({duration_ns} ns on the bus)")
+        signals = _load_signals(path, where, table.get("signal", []),
+                                payload_bytes(dlc, fd, rtr))
         out.append(MessageSpec(bus, frame_id, ext, rtr, fd, brs, dlc, sender, period_ns,
-                               name, form))
+                               name, form, signals))
     return tuple(out)
+
+
+# --- signals ------------------------------------------------------------------------------
+
+
+def _number(path: str, where: str, table: Mapping[str, Any], key: str,
+            default: float | None) -> float | None:
+    value = table.get(key, default)
+    if value is None:
+        return None
+    if isinstance(value, bool) or not isinstance(value, int | float):
+        raise CatalogError(path, where, f"{key} must be a number, got {value!r}")
+    if value != value or value in (float("inf"), float("-inf")):
+        raise CatalogError(path, where, f"{key} must be a finite number")
+    return value
+
+
+def _bool(path: str, where: str, table: Mapping[str, Any], key: str) -> bool:
+    value = table.get(key, False)
+    if not isinstance(value, bool):
+        raise CatalogError(path, where, f"{key} must be true or false, got {value!r}")
+    return value
+
+
+def _load_crc(path: str, where: str, raw: Any, length: int) -> CrcSpec:
+    if not isinstance(raw, dict):
+        raise CatalogError(path, where, "crc must be a table such as { width = 8, poly = 0x1D, "
+                           "init = 0xFF, xorout = 0xFF }")
+    check_keys(path, f"{where} crc", raw, CRC_KEYS)
+    width = _int_field(path, f"{where} crc", raw, "width", 1, MAX_CRC_WIDTH)
+    assert width is not None
+    if width != length:
+        raise CatalogError(path, where, f"crc width {width} differs from the signal's length "
+                           f"{length}")
+    top = (1 << width) - 1
+    poly = _int_field(path, f"{where} crc", raw, "poly", 1, top)
+    init = _int_field(path, f"{where} crc", raw, "init", 0, top, required=False) or 0
+    xorout = _int_field(path, f"{where} crc", raw, "xorout", 0, top, required=False) or 0
+    assert poly is not None
+    return CrcSpec(width, poly, init, xorout, _bool(path, f"{where} crc", raw, "refin"),
+                   _bool(path, f"{where} crc", raw, "refout"))
+
+
+def _load_signals(path: str, message: str, raw: Any, nbytes: int) -> tuple[SignalSpec, ...]:
+    """Validate the ``[[message.signal]]`` tables of one message (a payload of ``nbytes``)."""
+    if not isinstance(raw, list):
+        raise CatalogError(path, message, "signals must be an array of tables "
+                           "[[message.signal]]")
+    out: list[SignalSpec] = []
+    for index, table in enumerate(raw, start=1):  # signals of one message: a handful
+        where = f"{message} signal {index}"
+        if not isinstance(table, dict):
+            raise CatalogError(path, where, "must be a table")
+        check_keys(path, where, table, SIGNAL_KEYS + SCENARIO_SIGNAL_KEYS)
+        name = table.get("name")
+        if not isinstance(name, str) or not SIGNAL_NAME_RE.match(name):
+            raise CatalogError(path, where, "name must be 1-64 letters, digits or '_', "
+                               f"starting with a letter or '_' (got {name!r})")
+        where = f"{message} signal '{name}'"
+        if any(s.name == name for s in out):
+            raise CatalogError(path, where, "name is used twice in this message")
+        if nbytes == 0:
+            raise CatalogError(path, where, "the message carries no payload bytes")
+        lsb = _int_field(path, where, table, "lsb", 0, 8 * nbytes - 1)
+        length = _int_field(path, where, table, "length", 1, MAX_SIGNAL_BITS)
+        assert lsb is not None and length is not None
+        order = table.get("order", "little")
+        if order not in SIGNAL_ORDERS:
+            raise CatalogError(path, where, f"order must be \"little\" or \"big\", got "
+                               f"{order!r}" + did_you_mean(str(order), SIGNAL_ORDERS))
+        signed = _bool(path, where, table, "signed")
+        scale = _number(path, where, table, "scale", 1.0)
+        offset = _number(path, where, table, "offset", 0.0)
+        assert scale is not None and offset is not None
+        if scale == 0:
+            raise CatalogError(path, where, "scale must not be 0")
+        low = _number(path, where, table, "min", None)
+        high = _number(path, where, table, "max", None)
+        if low is not None and high is not None and low > high:
+            raise CatalogError(path, where, f"min {low} is above max {high}")
+        unit = table.get("unit", "")
+        if not isinstance(unit, str):
+            raise CatalogError(path, where, "unit must be a string such as \"degC\"")
+        role = table.get("role")
+        if role is not None and role not in SIGNAL_ROLES:
+            raise CatalogError(path, where, f"role must be \"counter\" or \"checksum\", got "
+                               f"{role!r}" + did_you_mean(str(role), SIGNAL_ROLES))
+        if role is not None and signed:
+            raise CatalogError(path, where, f"a {role} is unsigned; drop 'signed = true'")
+        spec = SignalSpec(name, lsb, length, nbytes, order, signed, float(scale), float(offset),
+                          unit, low, high, plot=_bool(path, where, table, "plot"),
+                          profile=table.get("profile"))
+        _check_fits(path, where, spec)
+        values = _load_values(path, where, table.get("values", {}), spec)
+        step, crc, over = _load_role(path, where, table, spec, role)
+        mux, mux_value = _load_mux(path, where, table, name)
+        spec = SignalSpec(name, lsb, length, nbytes, order, signed, float(scale), float(offset),
+                          unit, low, high, values, role, mux, mux_value, crc, over, step,
+                          spec.plot, spec.profile)
+        _check_overlaps(path, where, spec, out)
+        out.append(spec)
+    for spec in out:  # a selector must be an ordinary, unmultiplexed signal of this message
+        if spec.mux is None:
+            continue
+        selector = next((s for s in out if s.name == spec.mux), None)
+        where = f"{message} signal '{spec.name}'"
+        if selector is None:
+            raise CatalogError(path, where, f"mux selector '{spec.mux}' is not a signal of this "
+                               "message" + did_you_mean(spec.mux, [s.name for s in out]))
+        if selector.mux is not None:
+            raise CatalogError(path, where, f"mux selector '{spec.mux}' is itself multiplexed "
+                               "(nested multiplexing is not supported)")
+        assert spec.mux_value is not None
+        if spec.mux_value > selector.mask:
+            raise CatalogError(path, where, f"mux_value {spec.mux_value} does not fit the "
+                               f"{selector.length}-bit selector '{selector.name}'")
+    return tuple(out)
+
+
+def _check_fits(path: str, where: str, spec: SignalSpec) -> None:
+    n = spec.nbytes
+    if spec.shift + spec.length > 8 * n:
+        byte, bit = divmod(spec.lsb, 8)
+        how = (f"bits {spec.lsb}..{spec.lsb + spec.length - 1}" if spec.order == "little" else
+               f"{spec.length} bits from byte {byte} bit {bit} towards byte 0")
+        raise CatalogError(path, where, f"{how} do not fit the {n}-byte payload "
+                           f"({8 * n} bits)")
+
+
+def _load_values(path: str, where: str, raw: Any, spec: SignalSpec
+                 ) -> tuple[tuple[int, str], ...]:
+    if not isinstance(raw, dict):
+        raise CatalogError(path, where, "values must be a table such as { 0 = \"off\" }")
+    out = []
+    for key, text in raw.items():
+        try:
+            number = int(key, 0)
+        except ValueError:
+            raise CatalogError(path, where, f"values key {key!r} is not an integer") from None
+        low, high = (-(1 << (spec.length - 1)), spec.mask >> 1) if spec.signed else \
+            (0, spec.mask)
+        if not low <= number <= high:
+            raise CatalogError(path, where, f"values key {number} does not fit the "
+                               f"{spec.length}-bit raw value ({low}..{high})")
+        if not isinstance(text, str):
+            raise CatalogError(path, where, f"values {key} must name the value as a string")
+        out.append((number, text))
+    return tuple(sorted(out))
+
+
+def _load_role(path: str, where: str, table: Mapping[str, Any], spec: SignalSpec,
+               role: str | None) -> tuple[int, CrcSpec | None, tuple[int, ...]]:
+    if role != "counter" and "step" in table:
+        raise CatalogError(path, where, "step is only for role = \"counter\"")
+    if role != "checksum":
+        for key in ("crc", "over"):
+            if key in table:
+                raise CatalogError(path, where, f"{key} is only for role = \"checksum\"")
+    step = 1
+    if role == "counter":
+        step = _int_field(path, where, table, "step", 1, spec.mask, required=False) or 1
+    if role != "checksum":
+        return step, None, ()
+    if "crc" not in table:
+        raise CatalogError(path, where, "a checksum needs crc = { width = ..., poly = ... }")
+    crc = _load_crc(path, where, table["crc"], spec.length)
+    own = spec.byte_indices()
+    if "over" not in table:
+        return step, crc, tuple(b for b in range(spec.nbytes) if b not in own)
+    over = table["over"]
+    if (not isinstance(over, list) or not over
+            or not all(isinstance(b, int) and not isinstance(b, bool) for b in over)):
+        raise CatalogError(path, where, "over must be a non-empty list of byte indices")
+    for byte in over:
+        if not 0 <= byte < spec.nbytes:
+            raise CatalogError(path, where, f"over: byte {byte} is outside the "
+                               f"{spec.nbytes}-byte payload (0..{spec.nbytes - 1})")
+        if byte in own:
+            raise CatalogError(path, where, f"over: byte {byte} holds the checksum itself")
+    if len(set(over)) != len(over):
+        raise CatalogError(path, where, "over: a byte is listed twice")
+    return step, crc, tuple(over)
+
+
+def _load_mux(path: str, where: str, table: Mapping[str, Any], name: str
+              ) -> tuple[str | None, int | None]:
+    mux = table.get("mux")
+    if mux is None:
+        if "mux_value" in table:
+            raise CatalogError(path, where, "mux_value needs mux = \"selector_name\"")
+        return None, None
+    if not isinstance(mux, str) or mux == name:
+        raise CatalogError(path, where, "mux must name another signal of this message")
+    value = _int_field(path, where, table, "mux_value", 0, (1 << MAX_SIGNAL_BITS) - 1)
+    return mux, value
+
+
+def _check_overlaps(path: str, where: str, spec: SignalSpec, earlier: list[SignalSpec]) -> None:
+    """Two signals may share bits only when both are multiplexed and never present together
+    (different selector values, or different selectors)."""
+    mine = set(spec.bit_positions())
+    for other in earlier:
+        shared = mine & set(other.bit_positions())
+        if not shared:
+            continue
+        both_mux = spec.mux is not None and other.mux is not None
+        if both_mux and (spec.mux, spec.mux_value) != (other.mux, other.mux_value):
+            continue
+        first = min(shared)
+        raise CatalogError(path, where, f"overlaps signal '{other.name}' at byte {first // 8} "
+                           f"bit {first % 8} (only signals in different mux groups may "
+                           "share bits)")
 
 
 def _heavy_duration_ns(bus: BusSpec, frame_id: int, ext: bool, rtr: bool, fd: bool, brs: bool,

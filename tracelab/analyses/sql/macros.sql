@@ -22,3 +22,12 @@ CREATE OR REPLACE TEMP MACRO ms(t_ns) AS t_ns / 1e6;
 CREATE OR REPLACE TEMP MACRO wall_time(r, t_ns) AS make_timestamp_ns(
     (SELECT epoch_ns(CAST(rtrim(any_value(m.origin), 'Z') AS TIMESTAMP_NS))
      FROM manifest m WHERE m.run = r) + t_ns);
+
+-- The decoded values of one signal (name or message.name) from the `signals` analysis, with
+-- the time in seconds: SELECT * FROM sig('coolant_temp'). The view is looked up when the
+-- macro is used, so sessions without a signals analysis still open.
+CREATE OR REPLACE TEMP MACRO sig(wanted, source := 'signals') AS TABLE
+    SELECT run, bus, t_ns, t_ns / 1e9 AS t_s, message, signal, raw, value, unit, file, line
+    FROM query_table(source)
+    WHERE signal = wanted OR message || '.' || signal = wanted
+    ORDER BY run, t_ns;
