@@ -140,12 +140,15 @@ def signals(
     to: str | None = typer.Option(None, "--to", help="End of the time window (exclusive)."),
     stuck: str | None = typer.Option(None, "--stuck", help="Flag signals without change for this long, e.g. 10s."),
     as_json: bool = typer.Option(False, "--json", help="Print JSON."),
+    memory: str | None = MEMORY_OPTION,
+    temp_dir: Path | None = TEMP_DIR_OPTION,
 ) -> None:
     """Decode the catalog's signals from the payloads; statistics, counter and checksum checks."""
     from tracelab import workflow
 
-    result = workflow.signals(dataset, catalog=catalog, run=run, names=signal, from_=from_,
-                              to=to, stuck=stuck)
+    with workflow.limits(memory, temp_dir):
+        result = workflow.signals(dataset, catalog=catalog, run=run, names=signal, from_=from_,
+                                  to=to, stuck=stuck)
     _print_json(result.as_json()) if as_json else typer.echo(result.describe())
 
 
