@@ -166,13 +166,14 @@ def signals(dataset: Path, catalog: Path, run: str | None = None,
     cat = load_catalog(catalog)
     _check_run(ds, run)
     runs = [run] if run is not None else ds.runs()
-    gaps = ds.read_analysis("gaps") if _covers(ds, "timing", runs) else None
-    with ds.connect() as con:
-        result = compute_signals(con, cat, run=run, names=names or None, from_ns=from_ns,
-                                 to_ns=to_ns, gaps=gaps, stuck_ns=stuck_ns)
-    _store(ds, "signals", result.signals, run)
-    _store(ds, "signal_stats", result.stats, run)
-    _store(ds, "signal_checks", result.checks, run)
+    with ds.writing("signals"):  # one writer at a time
+        gaps = ds.read_analysis("gaps") if _covers(ds, "timing", runs) else None
+        with ds.connect() as con:
+            result = compute_signals(con, cat, run=run, names=names or None, from_ns=from_ns,
+                                     to_ns=to_ns, gaps=gaps, stuck_ns=stuck_ns)
+        _store(ds, "signals", result.signals, run)
+        _store(ds, "signal_stats", result.stats, run)
+        _store(ds, "signal_checks", result.checks, run)
     return result
 
 
