@@ -227,6 +227,28 @@ def batch(
 
 
 @app.command()
+def capture(
+    ifaces: list[str] = typer.Argument(..., help="SocketCAN interfaces, e.g. can0 can1."),
+    output: Path = typer.Option(..., "-o", "--output", help="Log to write (NAME.frames[.gz|.zst])."),
+    rotate: str | None = typer.Option(None, "--rotate", help="New part every interval (1h) or size (512MB, 1GiB)."),
+    duration: str | None = typer.Option(None, "--duration", help="Stop after this long, e.g. 8h."),
+    meta: list[str] = typer.Option([], "--meta", help="key=value for %meta (run=, vehicle= ...); repeat."),
+    bus: list[str] = typer.Option([], "--bus", help="IFACE=ALIAS[,nominal=BPS][,data=BPS]; rates used when the system reports none."),
+    node: str = typer.Option("logger", "--node", help="Node name of the logger's own controller in status records."),
+    hardware_timestamps: bool = typer.Option(False, "--hardware-timestamps", help="Use the driver's hardware receive timestamps where it gives them."),
+    reorder: str = typer.Option("100ms", "--reorder", help="Reorder window across interfaces."),
+    quiet: bool = typer.Option(False, "--quiet", "-q", help="No live status line."),
+) -> None:
+    """Record SocketCAN interfaces into a frame log (format v1) until Ctrl-C, SIGTERM or --duration."""
+    from tracelab import workflow
+
+    summary = workflow.capture(ifaces, output, rotate=rotate, duration=duration, meta=meta,
+                               bus=bus, node=node, hardware_timestamps=hardware_timestamps,
+                               reorder=reorder, quiet=quiet)
+    typer.echo(summary.describe())
+
+
+@app.command()
 def convert(
     tables: list[Path] = typer.Argument(..., help="Delimited frame tables (CSV, TSV ...; .gz / .zst read too)."),
     output: Path = typer.Option(..., "-o", "--output", help="Log to write (.frames[.gz|.zst])."),

@@ -390,6 +390,43 @@ def batch(root: Path, fleet: Path, catalog: Path | None = None, executor: str = 
 # --- inputs: capture / convert --------------------------------------------------------------
 
 
+def capture(ifaces: list[str], output: Path, rotate: str | None = None,
+            duration: str | None = None, meta: list[str] | None = None,
+            bus: list[str] | None = None, node: str = "logger",
+            hardware_timestamps: bool = False, reorder: str = "100ms",
+            quiet: bool = False) -> Any:
+    from tracelab.errors import UsageError
+    from tracelab.inputs.capture import capture_interfaces
+    from tracelab.inputs.options import parse_bus_option, parse_meta, parse_size_bytes
+    from tracelab.inputs.rotation import Rotation
+    from tracelab.network.catalog import parse_duration_ns
+    from tracelab.store.dataset import make_output_parent
+
+    def duration_ns(option: str, text: str) -> int:
+        try:
+            value = parse_duration_ns(text)
+        except ValueError as error:
+            raise UsageError(f"{option}: {error}") from None
+        if value <= 0:
+            raise UsageError(f"{option} must be longer than 0")
+        return value
+
+    rotation = None
+    if rotate is not None:
+        size = parse_size_bytes(rotate)
+        rotation = (Rotation(size_bytes=size) if size else
+                    Rotation(interval_ns=duration_ns("--rotate (an interval such as 1h or a "
+                                                     "size such as 512MB)", rotate)))
+    if not node or any(c in node for c in "\t\n\r"):
+        raise UsageError("--node must be a name without TABs or line ends")
+    make_output_parent(Path(output), "log")
+    return capture_interfaces(
+        ifaces, Path(output), [parse_bus_option(b) for b in bus or []], parse_meta(meta or []),
+        rotation=rotation, duration_ns=duration_ns("--duration", duration) if duration else None,
+        node=node, hardware=hardware_timestamps, reorder_ns=duration_ns("--reorder", reorder),
+        quiet=quiet)
+
+
 def convert(tables: list[Path], output: Path, bus: list[str], columns: str, time_unit: str = "s",
             origin: str | None = None, delimiter: str = ",", id_base: int = 16,
             header: bool = True, meta: list[str] | None = None, strict: bool = False,
