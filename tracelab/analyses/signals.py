@@ -317,7 +317,8 @@ def _join_losses(events: pl.DataFrame, losses: pl.DataFrame) -> pl.DataFrame:
              .select("run", "bus", pl.col("t_ns").alias("loss_from_ns"),
                      pl.col("until_ns").cum_max().over("run", "bus").alias("loss_reach_ns")))
     joined = events.join_asof(reach, left_on="t_ns", right_on="loss_from_ns", by=["run", "bus"],
-                              strategy="backward", allow_exact_matches=False)
+                              strategy="backward", allow_exact_matches=False,
+                              check_sortedness=False)  # both sorted by time within run, bus
     return joined.with_columns(
         (pl.col("loss_reach_ns") > pl.col("prev_ns")).fill_null(False).alias("loss_overlap"))
 

@@ -30,6 +30,7 @@ from tracelab.network.catalog import (
     duration_field,
     read_toml,
 )
+from tracelab.simulate.payloads import signal_plan
 
 FAULT_KINDS = ("rx-noise", "tx-noise", "isolated", "bus-noise", "silent", "babble", "drift",
                "logger-loss")
@@ -47,7 +48,7 @@ FAULT_KEYS: dict[str, tuple[str, ...]] = {
     "drift": ("node", "ppm"),
     "logger-loss": ("bus", "rate"),
 }
-PAYLOAD_KINDS = ("counter", "random", "constant")
+PAYLOAD_KINDS = ("counter", "random", "constant", "signal")
 DEFAULT_DURATION_NS = 60_000_000_000
 MAX_DRIFT_PPM = 10_000.0
 #: %meta keys the simulator writes itself.
@@ -84,6 +85,8 @@ class ScheduleSpec:
     payload: str = "counter"
     constant: bytes = b""
     event_every_ns: int | None = None
+    #: payload "signal": the signals and their value profiles (simulate/payloads.py)
+    signal_plan: Any = None
 
 
 @dataclass(frozen=True)
@@ -255,7 +258,8 @@ def _load_schedules(path: str, raw: list[Any], catalog: Catalog) -> tuple[Schedu
                 raise CatalogError(path, where, "event_every is for messages without period")
             if jitter >= spec.period_ns:
                 raise CatalogError(path, where, "jitter must be shorter than the period")
-        payload = table.get("payload", "counter")
+        # a message with signals writes them unless the scenario says otherwise
+        payload = table.get("payload", "signal" if spec.signals else "counter")
         constant = b""
         if not isinstance(payload, str):
             raise CatalogError(path, where, "payload must be a string")
@@ -263,7 +267,7 @@ def _load_schedules(path: str, raw: list[Any], catalog: Catalog) -> tuple[Schedu
         if kind not in PAYLOAD_KINDS:
             raise CatalogError(path, where, f"payload '{payload}' is unknown"
                                + (did_you_mean(kind, PAYLOAD_KINDS)
-                                  or "; use counter, random or constant:HEX"))
+                                  or "; use counter, random, constant:HEX or signal"))
         nbytes = grammar_payload_bytes(spec.dlc, spec.fd, spec.rtr)
         if kind == "constant":
             hex_text = payload.split(":", 1)[1] if ":" in payload else ""
@@ -277,7 +281,8 @@ def _load_schedules(path: str, raw: list[Any], catalog: Catalog) -> tuple[Schedu
                                    f"DLC {spec.dlc} needs {nbytes}")
         elif ":" in payload:
             raise CatalogError(path, where, f"payload '{payload}': only constant takes a value")
-        out.append(ScheduleSpec(jitter, offset, kind, constant, event_every))
+        plan = signal_plan(path, where, spec) if kind == "signal" else None
+        out.append(ScheduleSpec(jitter, offset, kind, constant, event_every, plan))
     return tuple(out)
 
 

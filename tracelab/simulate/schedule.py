@@ -15,6 +15,7 @@ import pyarrow as pa
 from tracelab.format.grammar import form_letters, id_text, parse_form, payload_bytes
 from tracelab.network.catalog import BusSpec, MessageSpec
 from tracelab.physics.bitlength import frame_bits, frame_durations_ns
+from tracelab.simulate.payloads import signal_payloads
 from tracelab.simulate.scenario import FaultSpec, Scenario, ScheduleSpec
 
 #: Event-driven messages without ``event_every`` are never released (documented).
@@ -228,15 +229,18 @@ def build_schedule(scenario: Scenario, bus: str, duration_ns: int, rng: np.rando
             behaviour = scenario.behaviour[msg.sender]
             clock = node_clock(behaviour.drift_ppm, drift_faults.get(msg.sender, []), duration_ns)
             t = _releases(msg.period_ns, sched, clock, duration_ns, rng)
+        release = np.arange(len(t), dtype=np.int64)  # numbers before suppression (counters)
         for f in silent.get(msg.sender, []):
             end = duration_ns if f.end_ns is None else f.end_ns
             quiet = (t >= f.start_ns) & (t < end)
             suppressed[msg.rank] += int(quiet.sum())
             t = t[~quiet]
+            release = release[~quiet]
         t_parts.append(t)
         r_parts.append(np.full(len(t), msg.rank, dtype=np.int64))
         k_parts.append(np.arange(len(t), dtype=np.int64))
-        payloads.append(_payloads(msg, sched, len(t), rng))
+        payloads.append(_payloads(msg, sched, len(t), rng) if sched.signal_plan is None
+                        else signal_payloads(sched.signal_plan, t, release, rng))
     t_all = np.concatenate(t_parts) if t_parts else np.zeros(0, np.int64)
     r_all = np.concatenate(r_parts) if r_parts else np.zeros(0, np.int64)
     k_all = np.concatenate(k_parts) if k_parts else np.zeros(0, np.int64)
