@@ -163,9 +163,9 @@ def message_frames(con: duckdb.DuckDBPyConnection,
 
 
 def decode_message(part: DecodedMessage, signals: list[SignalSpec]
-                   ) -> list[tuple[SignalSpec, np.ndarray, np.ndarray, np.ndarray]]:
-    """(signal, row positions, raw int64, value float64) per signal; a multiplexed signal
-    keeps the rows where its selector holds its mux_value."""
+                   ) -> list[tuple[SignalSpec, np.ndarray | None, np.ndarray, np.ndarray]]:
+    """(signal, row positions or None for all rows, raw int64, value float64) per signal; a
+    multiplexed signal keeps the rows where its selector holds its mux_value."""
     words = PayloadWords(part.rows)
     every = {s.name: s for s in part.msg.signals}
     unsigned: dict[str, np.ndarray] = {}
@@ -178,10 +178,10 @@ def decode_message(part: DecodedMessage, signals: list[SignalSpec]
     out = []
     for spec in signals:  # signals of one message: a handful
         raw = raw_of(spec)
-        positions = np.arange(len(raw), dtype=np.int64)
+        positions = None
         if spec.mux is not None:
             keep = raw_of(every[spec.mux]) == np.uint64(spec.mux_value or 0)
-            positions, raw = positions[keep], raw[keep]
+            positions, raw = np.flatnonzero(keep), raw[keep]
         values = signed_values(raw, spec.length, spec.signed)
         wide = spec.length == 64 and not spec.signed
         out.append((spec, positions, values, physical(values, spec.scale, spec.offset, wide)))
@@ -208,7 +208,7 @@ def long_form(parts: list[DecodedMessage], chosen: list[tuple[MessageSpec, list[
         base = pl.from_arrow(part.table)
         assert isinstance(base, pl.DataFrame)
         for spec, positions, raw, value in decode_message(part, signals):
-            rows = base if len(positions) == base.height else base[positions]
+            rows = base if positions is None else base[positions]
             pieces.append(rows.with_columns(
                 pl.lit(msg.id, pl.UInt32).alias("id"), pl.lit(msg.ext).alias("ext"),
                 pl.lit(msg.label).alias("message"), pl.lit(spec.name).alias("signal"),

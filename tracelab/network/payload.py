@@ -88,9 +88,9 @@ class PayloadWords:
         out = self.word(order, first) >> _U64(within)
         if within + length > 64 and first + 8 < nbytes:  # the ninth byte of a long signal
             extra = self.source(order)[:, first + 8].astype(np.uint64)
-            out = out | (extra << _U64(64 - within))
+            out |= extra << _U64(64 - within)
         if length < 64:
-            out = out & _U64((1 << length) - 1)
+            out &= _U64((1 << length) - 1)
         return out
 
 
@@ -129,16 +129,26 @@ def physical(raw: np.ndarray, scale: float, offset: float, unsigned64: bool = Fa
     denominator = lcm(fs.denominator, fo.denominator)
     s_int = int(fs * denominator)
     o_int = int(fo * denominator)
-    values = raw.astype(np.float64) if not unsigned64 else raw.view(np.uint64).astype(np.float64)
     if len(raw) == 0:
-        return values
-    reach = int(np.abs(values).max()) if not unsigned64 else int(raw.view(np.uint64).max())
+        return np.zeros(0, dtype=np.float64)
+    if unsigned64:
+        reach = int(raw.view(np.uint64).max())
+    else:
+        reach = max(-int(raw.min()), int(raw.max()))
     if denominator < EXACT_FLOAT_INT and reach * abs(s_int) + abs(o_int) < EXACT_FLOAT_INT:
-        numerator = raw.astype(np.int64) * np.int64(s_int) + np.int64(o_int)
-        if denominator == 1:
-            return numerator.astype(np.float64)
-        return numerator.astype(np.float64) / float(denominator)
-    return values * float(scale) + float(offset)
+        if s_int == 1 and o_int == 0 and denominator == 1:
+            return raw.astype(np.float64)
+        numerator = raw.astype(np.int64) * np.int64(s_int)  # exact: below 2**53
+        if o_int:
+            numerator += np.int64(o_int)
+        out = numerator.astype(np.float64)
+        if denominator != 1:
+            out /= float(denominator)  # one correctly rounded IEEE division
+        return out
+    values = raw.view(np.uint64).astype(np.float64) if unsigned64 else raw.astype(np.float64)
+    values *= float(scale)
+    values += float(offset)
+    return values
 
 
 def insert_raw(rows: np.ndarray, raw: np.ndarray, spec: SignalSpec) -> None:
