@@ -351,15 +351,20 @@ def prepare_counts(ev: BusEvidence) -> None:
         ev.ev_loss_since_prev = [False] * t.size
 
 
-def with_extra_errors(ev: BusEvidence, t_ns: list[int], tx: int, error_type: str,
+#: The file name of error events the replay adds (predicted, not logged).
+PREDICTED = "(predicted)"
+
+
+def with_extra_errors(ev: BusEvidence, t_ns: list[int], tx: int | list[int], error_type: str,
                       frame_id: int | None, field: str = "ack") -> BusEvidence:
     """A copy of the evidence with predicted (unlogged) error events added, counts redone."""
+    txs = tx if isinstance(tx, list) else [tx] * len(t_ns)
     extra = pl.DataFrame({
         "t_ns": t_ns, "kind": [KIND_ERROR] * len(t_ns), "type": [error_type] * len(t_ns),
         "field": [field] * len(t_ns), "id": [frame_id] * len(t_ns),
-        "ext": [False] * len(t_ns), "tx": [tx] * len(t_ns), "by_node": [-1] * len(t_ns),
+        "ext": [False] * len(t_ns), "tx": txs, "by_node": [-1] * len(t_ns),
         "by": [None] * len(t_ns), "node": [-1] * len(t_ns), "tec": [None] * len(t_ns),
-        "rec": [None] * len(t_ns), "file": ["(predicted)"] * len(t_ns),
+        "rec": [None] * len(t_ns), "file": [PREDICTED] * len(t_ns),
         "line": [None] * len(t_ns)}, schema=ev.events.schema)
     events = pl.concat([ev.events, extra]).sort(["t_ns", "file", "line"], nulls_last=True)
     copy = dataclasses.replace(ev, events=events, _recovery_cache={})
@@ -387,3 +392,45 @@ def evidence_window(ev: BusEvidence, t_from: int | None, t_to: int | None) -> Bu
         first_t_ns=lo, last_t_ns=max(lo, hi - 1), _recovery_cache={})
     prepare_counts(copy)
     return copy
+
+
+#: Error frames whose flag is measured: at most this many, evenly spread over the log.
+FLAG_SAMPLE = 400
+#: Bits from an error record (flag start) to the next frame's start on a busy bus: flag, 8-bit
+#: delimiter, 3-bit intermission. 6-bit flag (everyone detected at once) -> 17; superposed
+#: 12-bit flag (one node detected first, the others answered its flag) -> 23.
+SHORT_FLAG_GAP_BITS = (14.0, 20.0)
+LONG_FLAG_GAP_BITS = (20.0, 29.0)
+
+
+def flag_lengths(ev: BusEvidence) -> tuple[int, int]:
+    """(short, long): how many sampled error frames were followed by the next frame's start
+    after a 6-bit flag (17 bits) or after a superposed flag (23 bits) on a busy bus.
+
+    One query over the few frames right after the sampled errors (their start_ns).
+    """
+    errors = ev.events.filter((pl.col("kind") == KIND_ERROR) & (pl.col("file") != PREDICTED))
+    if ev.con is None or errors.height < 3 or ev.frame_t.size == 0:
+        return 0, 0
+    t = errors["t_ns"].to_numpy().astype(np.int64)
+    if t.size > FLAG_SAMPLE:
+        t = t[np.linspace(0, t.size - 1, FLAG_SAMPLE).astype(np.int64)]
+    i = np.searchsorted(ev.frame_t, t, side="right")
+    ok = i < ev.frame_t.size
+    t, nxt = t[ok], ev.frame_t[i[ok]]
+    if t.size == 0:
+        return 0, 0
+    probe = pl.DataFrame({"t_err": t, "t_next": nxt})
+    ev.con.register("_tl_flag_probe", probe.to_arrow())
+    try:
+        rows = ev.con.execute(
+            "SELECT p.t_err, min(f.start_ns) AS start_ns FROM _tl_flag_probe p JOIN frames f "
+            "ON f.t_ns = p.t_next WHERE f.run = ? AND f.bus = ? GROUP BY p.t_err",
+            [ev.run, ev.bus]).fetchnumpy()
+    finally:
+        ev.con.unregister("_tl_flag_probe")
+    gap = (np.asarray(rows["start_ns"], dtype=np.float64)
+           - np.asarray(rows["t_err"], dtype=np.float64)) / ev.bit_ns
+    short = int(np.sum((gap >= SHORT_FLAG_GAP_BITS[0]) & (gap < SHORT_FLAG_GAP_BITS[1])))
+    long_ = int(np.sum((gap >= LONG_FLAG_GAP_BITS[0]) & (gap < LONG_FLAG_GAP_BITS[1])))
+    return short, long_

@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 import polars as pl
 
-from tracelab.forensics.evidence import KIND_ERROR, BusEvidence, with_extra_errors
+from tracelab.forensics.evidence import KIND_ERROR, BusEvidence, flag_lengths, with_extra_errors
 from tracelab.forensics.losses import trim_to_losses
 from tracelab.forensics.replay import NodeReplay, replay_node
 from tracelab.physics.confinement import (
@@ -56,6 +56,16 @@ PASSIVE_BOUNDARY_ERRORS = 2
 FLOOD_FACTOR = 4.0
 FLOOD_MIN_FRAMES = 200
 FLOOD_MIN_PER_S = 200.0
+#: Superposed (12-bit) error flags mean one node detected first; a whole-bus disturbance is
+#: detected by every node on the same bit (6-bit flag). Share of long flags from which the
+#: whole-bus reading is charged, the likelihood of a long flag under it, and the cap.
+LONG_FLAG_SHARE = 0.7
+P_LONG_FLAG_BUS = 0.1
+FLAG_CAP = 40.0
+#: A listen-only logger records a CRC error only when corrupted bits were on the wire: the
+#: whole-bus reading expects at least this share of CRC errors among its errors.
+P_CRC_BUS = 0.3
+CRC_MIN_ERRORS = 10
 #: ACK errors a lone transmitter needs to go from TEC 0 to error-passive (16 x 8 = 128).
 PASSIVE_ATTEMPTS = 16
 
@@ -264,11 +274,14 @@ def candidates(ev: BusEvidence, base: list[NodeReplay], first: list[NodeReplay],
             h = Hypothesis(f"isolation:{ev.nodes[n]}", "isolation", n, reps)
             h.facts["far_side"] = True
             out.append(h)
+    for h in out:
+        h.facts["floods"] = list(floods or [])
     for f in floods or []:
         who = ev.nodes[f.sender] if f.sender >= 0 else None
         h = Hypothesis(f"flood:{f.id:03X}" + (f":{who}" if who else ""), "flood",
                        f.sender if f.sender >= 0 else None, list(base))
         h.flood = f
+        h.facts["floods"] = list(floods or [])
         out.append(h)
     others = len(out) - 1
     for h in out:
@@ -374,6 +387,17 @@ def score(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Silence]) -> N
     attributed = (by >= 0) & known & (by != tx)
     lp_by_uniform = np.where(attributed, -math.log(n_nodes), 0.0)
     bus_rate = _poisson(n_err, exposure) - penalty
+    short, long_ = flag_lengths(ev)
+    flags_bus = 0.0
+    if long_ + short >= 3 and long_ >= LONG_FLAG_SHARE * (long_ + short):
+        flags_bus = max(-FLAG_CAP, long_ * math.log(P_LONG_FLAG_BUS)
+                        + short * math.log(1 - P_LONG_FLAG_BUS))
+    types = errors["type"].fill_null("").to_numpy()
+    crc = int(np.sum(types == "crc"))
+    no_ack = int(np.sum(~ack))
+    crc_bus = 0.0
+    if crc == 0 and no_ack >= CRC_MIN_ERRORS and not bool(np.any(types == "bit")):
+        crc_bus = max(-FLAG_CAP, no_ack * math.log(1 - P_CRC_BUS))
     for h in hyps:  # loop over hypotheses (a few per node)
         n = h.node
         if h.kind in ("bus-disturbance", "silence", "flood") or n is None \
@@ -430,6 +454,10 @@ def score(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Silence]) -> N
             h.facts["after_passive_own"] = k_pown
             h.facts["passive_frames"] = f_in
         h.parts["errors"] = float(rate + lp.sum())
+        if h.kind in ("bus-disturbance", "silence", "flood") or h.facts.get("far_side"):
+            h.parts["flags"] = flags_bus
+            h.parts["types"] = crc_bus
+        h.facts["flags"] = {"short": short, "long": long_}
         h.parts["esi"] = _esi_loglik(ev, h)
         h.parts["silences"] = _silence_loglik(ev, h, silences)
         h.parts["status"] = _status_loglik(h)
@@ -485,6 +513,9 @@ def _silence_loglik(ev: BusEvidence, h: Hypothesis, silences: list[Silence]) -> 
                     explained.add(j)
     own_claim = h.kind == "silence" or bool(h.facts.get("far_side"))
     f = h.flood
+    floods = h.facts.get("floods", [])
+    # an identifier far above its rate (or unknown) that no hypothesis but a flood explains
+    total += sum(math.log(P_UNEXPLAINED_SILENCE) for x in floods if x is not f)
     for j, s in enumerate(silences):
         if j in explained:
             continue

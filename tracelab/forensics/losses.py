@@ -17,8 +17,9 @@ vanished somewhere between its last frame seen and the end of the loss.
 from __future__ import annotations
 
 import numpy as np
+import polars as pl
 
-from tracelab.forensics.evidence import BusEvidence, with_extra_errors
+from tracelab.forensics.evidence import KIND_ERROR, PREDICTED, BusEvidence, with_extra_errors
 
 #: The shortest attempt an error can destroy: an error detected right after arbitration
 #: (about 20 bits) plus a 6-bit flag, 8-bit delimiter and 3-bit intermission.
@@ -72,16 +73,38 @@ def lost_counts(ev: BusEvidence) -> list[int]:
     return out
 
 
-def upper_evidence(ev: BusEvidence, tx: int, t_from: int | None = None,
-                   t_to: int | None = None) -> BusEvidence | None:
-    """The evidence with the upper reading's errors put into every loss in [t_from, t_to]:
-    ``tx`` the transmitter they are charged to (-1: unknown, every node a receiver).
-    None when there is no loss there."""
+def filled_evidence(ev: BusEvidence, mode: str = "rate", tx: int | None = None,
+                    t_to: int | None = None) -> BusEvidence | None:
+    """The evidence with errors put into the losses before t_to: ``mode="rate"`` at the error
+    rate seen around each loss (the most likely reading), ``"upper"`` as many as the loss can
+    hold. Their transmitters follow the sender mix of the errors around the loss, or ``tx``.
+    None when no loss needs filling."""
+    errors = ev.events.filter(pl.col("kind") == KIND_ERROR)
+    t_err = errors["t_ns"].to_numpy().astype(np.int64)
+    tx_err = errors["tx"].to_numpy().astype(np.int64)
     times: list[int] = []
-    for (lo, hi), n in zip(ev.losses.tolist(), lost_counts(ev), strict=True):
-        if (t_from is not None and hi < t_from) or (t_to is not None and lo > t_to) or n <= 0:
+    senders: list[int] = []
+    for (lo, hi), most in zip(ev.losses.tolist(), lost_counts(ev), strict=True):
+        if (t_to is not None and lo > t_to) or most <= 0:
+            continue  # a loop over the few loss intervals
+        span = max(hi - lo, 1)
+        near = ((t_err >= lo - span) & (t_err < lo)) | ((t_err >= hi) & (t_err < hi + span))
+        if not near.any():
+            continue  # no errors on either side: nothing says the fault went on inside
+        n = most if mode == "upper" else min(most, int(round(near.sum() / 2)))
+        if n <= 0:
             continue
         times += np.linspace(lo, hi - 1, n).astype(np.int64).tolist()
+        if tx is not None:
+            senders += [tx] * n
+        else:
+            mix = tx_err[near]
+            senders += mix[np.linspace(0, mix.size - 1, n).astype(np.int64)].tolist()
     if not times:
         return None
-    return with_extra_errors(ev, times, tx, "stuff", None, field="data")
+    return with_extra_errors(ev, times, senders, "stuff", None, field="data")
+
+
+def original_rows(filled: BusEvidence) -> np.ndarray:
+    """Mask over a filled evidence's events: True for the logged ones."""
+    return (filled.events["file"] != PREDICTED).fill_null(True).to_numpy()

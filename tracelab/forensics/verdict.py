@@ -34,7 +34,7 @@ from tracelab.forensics.hypotheses import (
     node_silences,
     score,
 )
-from tracelab.forensics.losses import loss_before, upper_evidence
+from tracelab.forensics.losses import filled_evidence, loss_before, original_rows
 from tracelab.forensics.replay import NodeReplay, replay_node
 from tracelab.format.grammar import wall_time
 from tracelab.physics.confinement import DEFAULT_CONFIG, ConfinementConfig
@@ -51,6 +51,8 @@ ALTERNATIVE_RATIO = 0.2
 #: Errors before (after) a node-specific winner's onset that make the earlier (later) window
 #: worth a verdict of its own.
 WINDOW_MIN_ERRORS = 8
+#: Errors in the run that marks a node's transmit-side onset (at least 60 % on its frames).
+SEGMENT_RUN = 30
 
 COUNTERS_SCHEMA = {"run": pl.String, "bus": pl.String, "node": pl.String, "t_ns": pl.Int64,
                    "tec": pl.Int32, "rec": pl.Int32, "state": pl.String, "cause": pl.String,
@@ -161,11 +163,17 @@ class Analysis:
 def analyse(ev: BusEvidence, gaps: pl.DataFrame | None, cat: CatalogView,
             config: ConfinementConfig = DEFAULT_CONFIG) -> Analysis:
     """Replay the candidates of one bus (or one window of it) and score them, best first."""
-    base = [replay_node(ev, n, False, config) for n in range(len(ev.nodes))]
+    # Through logger losses the replay walks the most likely reading: errors at the rate seen
+    # around each loss (losses.filled_evidence); the scores still read the logged events only.
+    walk = filled_evidence(ev, "rate") if ev.losses.shape[0] else None
+    keep = original_rows(walk) if walk is not None else None
+    src = walk if walk is not None else ev
+    base = [_logged(replay_node(src, n, False, config), keep) for n in range(len(ev.nodes))]
     attributed = bool((ev.events.filter(pl.col("kind") == KIND_ERROR)["by_node"]
                        >= 0).all()) if ev.events.height else True
     first = base if attributed else [
-        replay_node(ev, n, True, config, keep_rows=False) for n in range(len(ev.nodes))]
+        _logged(replay_node(src, n, True, config, keep_rows=False), keep)
+        for n in range(len(ev.nodes))]
     silences = node_silences(ev, gaps, cat.keys)
     floods = find_floods(ev, cat.periods)
     hyps = candidates(ev, base, first, silences, floods)
@@ -174,6 +182,22 @@ def analyse(ev: BusEvidence, gaps: pl.DataFrame | None, cat: CatalogView,
     # rule-based predictions (docs/forensics.md); otherwise the order of candidates()
     hyps.sort(key=lambda h: (-round(h.score, 6), 0 if h.facts.get("far_side") else 1))
     return Analysis(hyps, base, first, silences, floods, attributed)
+
+
+def _logged(rep: NodeReplay, keep: np.ndarray | None) -> NodeReplay:
+    """The replay's per-event states restricted to the logged events."""
+    if keep is not None and len(rep.state_before) == keep.size:
+        rep.state_before = [st for st, k in zip(rep.state_before, keep.tolist(), strict=True)
+                            if k]
+    return rep
+
+
+def _replay_full(ev: BusEvidence, n: int, config: ConfinementConfig) -> NodeReplay:
+    """A winner's first-detector replay with every counter row (losses filled as in analyse)."""
+    walk = filled_evidence(ev, "rate") if ev.losses.shape[0] else None
+    if walk is None:
+        return replay_node(ev, n, True, config)
+    return _logged(replay_node(walk, n, True, config), original_rows(walk))
 
 
 def _catalog_match(ev: BusEvidence, cat: CatalogView) -> dict[str, Any]:
@@ -261,53 +285,12 @@ def bus_verdict(ev: BusEvidence, origin: str | None, gaps: pl.DataFrame | None,
     clean = n_errors == 0 and not silences and not an.floods
     winner = hyps[0]
     if winner.kind == "receive-fault" and winner.node is not None and not attributed_everywhere:
-        winner.replays[winner.node] = replay_node(ev, winner.node, True, config)  # with rows
+        winner.replays[winner.node] = _replay_full(ev, winner.node, config)  # with rows
     findings = [_finding(ev, winner, None, None)] if not clean else []
     cause_h = winner
-    # An earlier fault under a stronger later one: the window before the winner's onset
-    # gets its own verdict, and a later fault never rewrites who degraded first.
-    if winner.kind in ("transmit-fault", "isolation") and winner.node is not None \
+    if not clean and winner.kind in ("bus-disturbance", "transmit-fault") \
             and not winner.facts.get("far_side"):
-        t_on = _onset(ev, winner.node)
-        if t_on is not None and int((errors["t_ns"] < t_on).sum()) >= WINDOW_MIN_ERRORS:
-            early = analyse(evidence_window(ev, None, t_on), None, cat, config)
-            w0 = early.hyps[0]
-            if w0.kind == "receive-fault" and w0.node == winner.node:
-                # one story: a receive fault whose node, once passive, fails on its own frames
-                full = next((h for h in hyps if h.name == w0.name), None)
-                if full is not None and full.node is not None:
-                    full.replays[full.node] = replay_node(ev, full.node, True, config)
-                    cause_h = winner = full
-                    findings = [_finding(ev, full, None, None)]
-            elif w0.kind != "bus-disturbance" or w0.replays and any(
-                    r.first_degradation() for r in w0.replays):
-                if w0.kind == "receive-fault" and w0.node is not None:
-                    w0.replays[w0.node] = replay_node(ev, w0.node, True, config)
-                f0 = _finding(ev, w0, None, t_on)
-                findings.insert(0, f0)
-                t0 = (f0["first_transition"] or {}).get("t_ns")
-                t1 = (findings[1]["first_transition"] or {}).get("t_ns")
-                if t0 is not None and (t1 is None or t0 <= t1):
-                    cause_h = w0
-    # a later transmit-side fault on another node
-    if not clean and cause_h.kind in ("receive-fault", "bus-disturbance", "transmit-fault"):
-        for n in range(len(ev.nodes)):  # loop over nodes
-            if n == cause_h.node or any(f["node"] == ev.nodes[n] for f in findings):
-                continue
-            t_on = _onset(ev, n, run=12, share=0.75)
-            if t_on is None or int((errors["t_ns"] >= t_on).sum()) < WINDOW_MIN_ERRORS:
-                continue
-            first_t = (findings[0]["first_transition"] or {}).get("t_ns")
-            if first_t is None or t_on <= first_t:
-                continue
-            late = analyse(evidence_window(ev, t_on, None), None, cat, config)
-            w1 = late.hyps[0]
-            if w1.kind == "transmit-fault" and w1.node == n:
-                fl = _finding(ev, w1, t_on, None)
-                tr = next((r.first_degradation() for r in w1.replays if r.node == ev.nodes[n]),
-                          None)
-                fl["first_transition"] = dict(tr) if tr else None
-                findings.append(fl)
+        cause_h, winner, findings = _segment(ev, cat, config, hyps, winner, findings, errors)
     findings.sort(key=lambda f: f["from_ns"])
     catalog_match = _catalog_match(ev, cat)
     known_tx = int((errors["tx"] >= 0).sum()) if n_errors else 0
@@ -346,6 +329,16 @@ def bus_verdict(ev: BusEvidence, origin: str | None, gaps: pl.DataFrame | None,
     for h in hyps:
         h.why = _why(ev, h, hyps[0])
     conf = _calibrated(ev, cause_h, hyps, first_deg, thin, clean, alternatives, findings)
+    if first_deg is not None and first_deg.get("state") != "silent" \
+            and cause_h.facts.get("far_side") and cause_h.node is not None \
+            and first_deg["node"] == ev.nodes[cause_h.node]:
+        # its unseen attempts start at its next release after the cut: which message
+        # and its jitter are unknown, so up to one period of its slowest message later
+        periods = [cat.periods[k] for k in cat.keys.get(cause_h.node, set())
+                   if k in cat.periods]
+        if periods:
+            first_deg["latest_ns"] = int(first_deg["latest_ns"]) + max(periods)
+            first_deg["uncertain"] = True
     result: dict[str, Any] = {
         "run": ev.run,
         "bus": ev.bus,
@@ -373,6 +366,59 @@ def bus_verdict(ev: BusEvidence, origin: str | None, gaps: pl.DataFrame | None,
     if first_deg is not None:
         first_deg["confidence"] = conf
     return result, winner
+
+
+def _segment(ev: BusEvidence, cat: CatalogView, config: ConfinementConfig,
+             hyps: list[Hypothesis], winner: Hypothesis, findings: list[dict[str, Any]],
+             errors: pl.DataFrame) -> tuple[Hypothesis, Hypothesis, list[dict[str, Any]]]:
+    """Several faults on one bus: cut the log where one node's frames start to carry most of
+    the errors, give each window its own verdict, and keep the cause of the first degradation.
+
+    A later, stronger fault never rewrites who degraded first. A receive fault whose node,
+    once error-passive, fails on its own frames is one story (the full-log hypothesis).
+    Returns (cause, winner for the counter tables, findings).
+    """
+    t_err = errors["t_ns"].to_numpy()
+    # a run of 30 errors, 60 % on one node's frames: by chance (a node with a quarter of the
+    # bus time under a whole-bus disturbance) about 1e-4 (binomial tail, derived)
+    onsets = sorted({t for n in range(len(ev.nodes))
+                     if (t := _onset(ev, n, run=SEGMENT_RUN, share=0.6)) is not None})
+    cuts: list[int] = []
+    for t in onsets:  # loop over a few onset times
+        prev = cuts[-1] if cuts else int(t_err[0]) if t_err.size else ev.first_t_ns
+        if int(((t_err >= prev) & (t_err < t)).sum()) >= WINDOW_MIN_ERRORS \
+                and int((t_err >= t).sum()) >= WINDOW_MIN_ERRORS:
+            cuts.append(t)
+    if not cuts:
+        return winner, winner, findings
+    bounds: list[int | None] = [None, *cuts, None]
+    windows: list[tuple[Hypothesis, int | None, int | None]] = []
+    for lo, hi in zip(bounds[:-1], bounds[1:], strict=True):  # loop over a few windows
+        w = analyse(evidence_window(ev, lo, hi), None, cat, config).hyps[0]
+        if w.score < MIN_CONFIDENCE:
+            continue
+        if windows and windows[-1][0].name == w.name:
+            windows[-1] = (windows[-1][0], windows[-1][1], hi)
+            continue
+        windows.append((w, lo, hi))
+    if len(windows) < 2:
+        return winner, winner, findings
+    first_w = windows[0][0]
+    if first_w.kind == "receive-fault" and first_w.node is not None and \
+            windows[1][0].kind == "transmit-fault" and windows[1][0].node == first_w.node:
+        full = next((h for h in hyps if h.name == first_w.name), None)
+        if full is not None and full.node is not None and math.isfinite(full.loglik):
+            full.replays[full.node] = _replay_full(ev, full.node, config)
+            return full, full, [_finding(ev, full, None, None)]
+    out = []
+    for w, lo, hi in windows:
+        if w.kind == "receive-fault" and w.node is not None:
+            w.replays[w.node] = _replay_full(evidence_window(ev, lo, hi), w.node, config)
+        out.append(_finding(ev, w, lo, hi))
+    times = [(f["first_transition"] or {}).get("t_ns") for f in out]
+    known = [(t, i) for i, t in enumerate(times) if t is not None]
+    cause = windows[min(known)[1]][0] if known else windows[0][0]
+    return cause, winner, out
 
 
 def _flood_json(ev: BusEvidence, f: Flood, silences: list[Silence],
@@ -421,25 +467,29 @@ def _silent_reading(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Sile
 
 def _bound_first(ev: BusEvidence, h: Hypothesis, first: dict[str, Any],
                  config: ConfinementConfig) -> None:
-    """earliest_ns / latest_ns of the first degradation through logger losses before it."""
+    """earliest_ns / latest_ns of the first degradation through logger losses before it:
+    the reading with as many errors as each loss can hold, and the one with none."""
     t = int(first["t_ns"])
     first["earliest_ns"] = first["latest_ns"] = t
-    loss = loss_before(ev, t + 1)
-    if loss is None:
+    if loss_before(ev, t + 1) is None:
         return
     n = ev.node_index(first["node"])
     if n < 0:
         return
-    tx = h.node if h.kind in ("transmit-fault", "isolation") and h.node is not None else \
-        (-1 if h.kind == "receive-fault" else n)
-    up = upper_evidence(ev, tx if tx is not None else -1, None, t)
-    if up is None:
-        return
-    rep = replay_node(up, n, h.kind == "receive-fault" and h.node == n, config,
-                      keep_rows=False)
-    tr = next((x for x in rep.transitions if x["from"] == "error-active"), None)
-    if tr is not None and tr["t_ns"] < t:
-        first["earliest_ns"] = max(int(tr["t_ns"]), loss[0])
+    bonus = h.kind == "receive-fault" and h.node == n
+    tx = h.node if h.kind in ("transmit-fault", "isolation") else None
+    up = filled_evidence(ev, "upper", tx, t)
+    readings = [t]
+    for src in (up, ev):
+        if src is None:
+            continue
+        rep = replay_node(src, n, bonus, config, keep_rows=False)
+        tr = rep.first_degradation()
+        if tr is not None:
+            readings.append(int(tr["t_ns"]))
+    lo = loss_before(ev, t + 1)
+    first["earliest_ns"] = max(min(readings), lo[0]) if lo and min(readings) < t else min(readings)
+    first["latest_ns"] = max(readings)
     first["uncertain"] = first["earliest_ns"] != first["latest_ns"]
 
 
@@ -564,6 +614,15 @@ def _why(ev: BusEvidence, h: Hypothesis, best: Hypothesis) -> str:
                      f"(predicted: all) over {facts.get('passive_frames', 0)} frames")
         else:
             text += ", so it predicts nothing the whole-bus explanation does not"
+    elif h.kind == "flood" and h.flood is not None:
+        f = h.flood
+        rate = f.frames / max(1e-9, (f.to_ns - f.from_ns) / 1e9)
+        text = (f"identifier {f.id:03X} sent {f.frames} times from {f.from_ns / 1e9:.3f} s to "
+                f"{f.to_ns / 1e9:.3f} s ({rate:.0f}/s), "
+                + (f"{f.frames / f.catalog_frames:.0f} x its catalog rate"
+                   if f.catalog_frames else "an identifier the catalog does not list")
+                + (f", sent by {ev.nodes[f.sender]}" if f.sender >= 0 else ", sender unknown")
+                + "; the silences of lower-priority messages in that window follow from it")
     else:
         text = f"{name} fell silent with no errors explaining it"
     parts = ", ".join(f"{k} {v:.1f}" for k, v in h.parts.items() if v)
