@@ -182,3 +182,19 @@ def test_strict_rerun_skips_a_file_already_ingested_with_rejects(
     assert main(["ingest", str(log), "-o", str(tmp_path / "ds"), "--strict", "-q"]) == 0
     assert "skipped 1 already ingested" in capsys.readouterr().out
     assert _snapshot(tmp_path / "ds") == before
+
+
+def test_control_characters_are_escaped_on_the_terminal(tmp_path: Path,
+                                                       capsys: pytest.CaptureFixture[str]) -> None:
+    # a log whose bad line carries ESC / CR / BEL, under a file name with a newline
+    log = _write(tmp_path / "odd\nname.frames",
+                 HEADER + GOOD + "5\t\x1b[2JP\x07\tframe\t0C0\ts\t0\t-\r\n")
+    assert main(["ingest", str(log), "-o", str(tmp_path / "ds"), "-q"]) == 0
+    out = capsys.readouterr().out
+    assert not any(ord(ch) < 32 and ch != "\n" for ch in out)
+    assert "odd\\nname.frames:5: unknown bus '\\x1b[2JP\\x07'" in out
+    assert main(["ingest", str(log), "-o", str(tmp_path / "ds2"), "--strict", "-q"]) == 3
+    line = _one_line_error(capsys.readouterr().err)
+    assert "odd\\nname.frames:5: unknown bus '\\x1b[2JP\\x07'" in line
+    assert main(["ingest", str(tmp_path / "no\rsuch.frames"), "-o", str(tmp_path / "ds3")]) == 2
+    assert "no\\rsuch.frames: no such file" in _one_line_error(capsys.readouterr().err)

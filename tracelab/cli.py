@@ -14,7 +14,7 @@ from typing import Any
 
 import typer
 
-from tracelab.errors import EXIT_INTERNAL, EXIT_USAGE, TracelabError
+from tracelab.errors import EXIT_INTERNAL, EXIT_USAGE, TracelabError, printable
 
 app = typer.Typer(
     add_completion=False,
@@ -292,8 +292,8 @@ def main(argv: list[str] | None = None) -> int:
     except Exception as error:  # a bug: keep the one-line promise, traceback on request
         if os.environ.get("TRACELAB_DEBUG"):
             raise
-        typer.echo(f"tracelab: internal error: {type(error).__name__}: {error} "
-                   "(set TRACELAB_DEBUG=1 for a traceback)", err=True)
+        typer.echo(printable(f"tracelab: internal error: {type(error).__name__}: {error} ")
+                   + "(set TRACELAB_DEBUG=1 for a traceback)", err=True)
         return EXIT_INTERNAL
     return 0
 

@@ -12,11 +12,15 @@
 
 The CLI catches TracelabError once, prints ``str(error)`` on one line and exits with
 ``error.exit_code``. Anything else is a bug (exit 4, traceback only with TRACELAB_DEBUG=1).
+``str()`` of every error is ``printable()``: control characters from a log or a file name
+(CR, LF, ESC, BEL, ...) are shown escaped, so a message stays one line and cannot drive
+the terminal.
 """
 
 from __future__ import annotations
 
 import difflib
+import re
 from collections.abc import Iterable
 
 EXIT_OK = 0
@@ -26,8 +30,32 @@ EXIT_INTERNAL = 4
 EXIT_STORAGE = 5
 
 
+#: C0 and C1 control characters, DEL, line and paragraph separators, and the bidirectional
+#: controls (they reorder what a terminal shows): never printed raw.
+_UNPRINTABLE = re.compile("[\x00-\x1f\x7f-\x9f\u061c\u200e\u200f\u2028\u2029"
+                          "\u202a-\u202e\u2066-\u2069\ufeff]")
+_NAMED = {"\n": "\\n", "\r": "\\r", "\t": "\\t"}
+
+
+def _escape(match: re.Match[str]) -> str:
+    char = match.group()
+    if char in _NAMED:
+        return _NAMED[char]
+    code = ord(char)
+    return f"\\x{code:02x}" if code < 0x100 else f"\\u{code:04x}"
+
+
+def printable(text: str) -> str:
+    """``text`` with control characters escaped (``\\r``, ``\\n``, ``\\t``, ``\\x1b``,
+    ``\\u202e``): one line, safe to print on a terminal."""
+    return _UNPRINTABLE.sub(_escape, text)
+
+
 class TracelabError(Exception):
     exit_code = EXIT_INTERNAL
+
+    def __str__(self) -> str:
+        return printable(super().__str__())
 
 
 class UsageError(TracelabError):

@@ -39,26 +39,39 @@ def split_blocks(path: Path, stream: BinaryIO, raw: BinaryIO, first: bytes, last
     """Blocks of whole lines from ``stream``, the first starting with ``first`` (bytes the
     header reader took already) on line ``last_line + 1``; ``raw`` is the file on disk (its
     position is the progress)."""
-    carry = first
+    # whole lines the header reader took (the first record), put before the next body
+    lead = first if first.endswith(b"\n") else b""
+    # the start of a line whose end is not read yet, in pieces (joined once, when it ends)
+    partial: list[bytes] = [first] if first and not lead else []
+    partial_bytes = len(first) if partial else 0
     line_no = last_line
     while True:
         try:
             block = stream.read(chunk_bytes)
         except CORRUPT_ERRORS as error:
             raise corrupt(path, error) from error
-        data = carry + block if carry else block
-        cut = data.rfind(b"\n")
+        cut = block.rfind(b"\n")
         if cut < 0:
-            carry = data
-            if len(carry) > MAX_LINE_BYTES:  # memory stays bounded on garbage input
-                raise LogFormatError(str(path), line_no + 1, "line is longer than "
-                                     f"{MAX_LINE_BYTES >> 20} MiB: not a frame log?")
-        else:
-            body, carry = data[: cut + 1], data[cut + 1:]
-            newlines = body.count(b"\n")
-            yield Block(body, line_no + 1, True, raw.tell(), newlines)
-            line_no += newlines
-        if not block:
-            break
-    if carry:
-        yield Block(carry, line_no + 1, False, raw.tell())
+            if block:
+                partial.append(block)
+                partial_bytes += len(block)
+            if partial_bytes > MAX_LINE_BYTES:  # memory and time stay bounded on garbage
+                raise LogFormatError(str(path), line_no + lead.count(b"\n") + 1,
+                                     f"line is longer than {MAX_LINE_BYTES >> 20} MiB: "
+                                     "not a frame log?")
+            if not block:
+                break
+            continue
+        head = block if cut == len(block) - 1 else block[: cut + 1]
+        body = b"".join([lead, *partial, head]) if lead or partial else head
+        lead = b""
+        partial = [block[cut + 1:]] if cut < len(block) - 1 else []
+        partial_bytes = len(partial[0]) if partial else 0
+        newlines = body.count(b"\n")
+        yield Block(body, line_no + 1, True, raw.tell(), newlines)
+        line_no += newlines
+    if lead:
+        yield Block(lead, line_no + 1, True, raw.tell(), lead.count(b"\n"))
+        line_no += lead.count(b"\n")
+    if partial:
+        yield Block(b"".join(partial), line_no + 1, False, raw.tell())

@@ -16,39 +16,63 @@ ZSTD_MAGIC = b"\x28\xb5\x2f\xfd"
 CORRUPT_ERRORS = (OSError, EOFError, zlib.error, zstandard.ZstdError)
 
 
+#: Compressed bytes per zstd decompress call. A zstd block holds at most 128 KiB and an RLE
+#: block takes 4 bytes (source: RFC 8878, 3.1.1.2: Block_Maximum_Size, RLE_Block), so one
+#: step inflates to at most ~32 MiB whatever the input: a small file that inflates to GiBs
+#: costs memory for one step, and time only for what the reader asks for.
+ZSTD_STEP_BYTES = 1 << 10
+
+
 class _ZstdStream(io.RawIOBase):
-    """Decompress zstd frames one after another; a stream cut inside a frame is an error
-    (the library's stream reader reports a cut stream as a quiet end of file)."""
+    """Decompress zstd frames one after another, a bounded step at a time; a stream cut
+    inside a frame is an error (the library's stream reader reports a cut stream as a quiet
+    end of file)."""
 
     def __init__(self, raw: BinaryIO, block_bytes: int = 1 << 20) -> None:
         self._raw = raw
         self._block_bytes = block_bytes
         self._obj = zstandard.ZstdDecompressor().decompressobj()
+        self._input = memoryview(b"")
         self._pending = b""
+        self._pos = 0  # of the next byte of _pending to hand out
         self._in_frame = False
 
     def readable(self) -> bool:
         return True
 
-    def readinto(self, buffer: Any) -> int:
-        while not self._pending:
-            block = self._raw.read(self._block_bytes)
-            if not block:
+    def _step(self) -> bool:
+        """Decompress one step of input into _pending; False at the end of the stream."""
+        if not self._input:
+            self._input = memoryview(self._raw.read(self._block_bytes))
+            if not self._input:
                 if self._in_frame:
                     raise zstandard.ZstdError("stream ends inside a zstd frame")
-                return 0
-            while block:
-                self._in_frame = True
-                self._pending += self._obj.decompress(block)
-                block = b""
-                if self._obj.eof:
-                    block = self._obj.unused_data
-                    self._obj = zstandard.ZstdDecompressor().decompressobj()
-                    self._in_frame = False
-        size = min(len(buffer), len(self._pending))
-        buffer[:size] = self._pending[:size]
-        self._pending = self._pending[size:]
-        return size
+                return False
+        piece, self._input = self._input[:ZSTD_STEP_BYTES], self._input[ZSTD_STEP_BYTES:]
+        self._in_frame = True
+        out = [self._obj.decompress(piece)]
+        while self._obj.eof:  # a frame ended inside the piece: the rest starts the next
+            rest = self._obj.unused_data
+            self._obj = zstandard.ZstdDecompressor().decompressobj()
+            self._in_frame = bool(rest)
+            if not rest:
+                break
+            out.append(self._obj.decompress(rest))
+        self._pending, self._pos = b"".join(out), 0
+        return True
+
+    def readinto(self, buffer: Any) -> int:
+        view = memoryview(buffer).cast("B")
+        filled = 0
+        while filled < len(view):
+            if self._pos < len(self._pending):
+                size = min(len(view) - filled, len(self._pending) - self._pos)
+                view[filled: filled + size] = self._pending[self._pos: self._pos + size]
+                self._pos += size
+                filled += size
+            elif not self._step():
+                break
+        return filled
 
 
 def open_log(path: Path, block_bytes: int = 1 << 20) -> tuple[BinaryIO, BinaryIO]:

@@ -34,6 +34,7 @@ from tracelab.format.grammar import (
     MAX_EXTENDED_ID,
     NONE,
     RECORD_FIELDS,
+    last_frame_t_ns,
 )
 from tracelab.format.writer import LogHeader
 
@@ -89,9 +90,15 @@ def record_reasons(header: LogHeader) -> pl.Expr:
     need = pl.when(rtr).then(0).when(fd).then(_table_expr(FD_PAYLOAD_BYTES, dlc)).otherwise(
         _table_expr(CLASSIC_PAYLOAD_BYTES, dlc))
     have = pl.when(data == NONE).then(0).otherwise(n_hex // 2)
+    last_t_ns = bus.replace_strict(
+        {b.alias: last_frame_t_ns(b.nominal_bps, b.data_bps) for b in header.buses},
+        default=None, return_dtype=pl.Int64)
     frame = (
         _frame_id_reason(f[3], form)
         .when(dlc.is_null() | (dlc > 15)).then(pl.format("dlc '{}' is not 0-15", dlc_raw))
+        .when(t_ns > last_t_ns)
+        .then(pl.format("t_ns {} leaves no room for the frame's end_ns in 64 bits (on bus '{}' "
+                        "a frame starts at t_ns {} at the latest)", t_ns, bus, last_t_ns))
         .when(form.str.contains("b", literal=True) & ~bus.is_in(fd_buses))
         .then(pl.format("bit-rate switch (b) on bus '{}', which declares no data= bit rate", bus))
         .when(data == "").then(pl.lit("data is empty; write '-' for no payload"))

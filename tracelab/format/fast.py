@@ -28,6 +28,7 @@ from tracelab.format.grammar import (
     MAX_BASE_ID,
     MAX_EXTENDED_ID,
     NONE,
+    last_frame_t_ns,
 )
 from tracelab.format.writer import LogHeader
 
@@ -105,6 +106,8 @@ def parse_fast(header: LogHeader, reasons: pl.Expr, body: bytes, first_line: int
     if not header.buses:
         return None
     bus_enum = pl.Enum([b.alias for b in header.buses])
+    # frames later than the earliest bus limit go the exact way (which names the reason)
+    last_t_ns = min(last_frame_t_ns(b.nominal_bps, b.data_bps) for b in header.buses)
     fd_codes = [i for i, b in enumerate(header.buses) if b.data_bps is not None]
     # form as an index into VALID_FORMS: s, sr, sf, sfb, sfe, sfbe, x, xr, ... (6 each)
     variant = c("form_code") % 6
@@ -121,7 +124,9 @@ def parse_fast(header: LogHeader, reasons: pl.Expr, body: bytes, first_line: int
         line=pl.int_range(first_line, first_line + n, dtype=pl.Int64),
         # to_integer takes an optional sign then digits only; refusing the signs here is
         # as strict as the exact path's regexes, at a third of the cost
-        t_ns=pl.when(_unsigned(f[0])).then(f[0].str.to_integer(strict=False)),
+        # at most 19 digits, as the grammar says (to_integer would read 20 with a leading 0)
+        t_ns=pl.when(_unsigned(f[0]) & (f[0].str.len_bytes() <= 19)).then(
+            f[0].str.to_integer(strict=False)),
         id=pl.when(_unsigned(f[3]) & (f[3].str.len_bytes() <= 8)).then(
             f[3].str.to_integer(base=16, strict=False)),
         payload=payload,
@@ -141,7 +146,8 @@ def parse_fast(header: LogHeader, reasons: pl.Expr, body: bytes, first_line: int
         payload_table.gather(c("dlc") + 16 * c("fd").cast(pl.Int16)))
     frame_ok = (
         (f[2] == "frame") & c("t_ns").is_not_null() & c("bus_code").is_not_null()
-        & c("id").is_not_null() & c("form_code").is_not_null() & f[7].is_null()
+        & c("id").is_not_null() & c("form_code").is_not_null() & c("dlc").is_not_null()
+        & f[7].is_null() & (c("t_ns") <= last_t_ns)
         & pl.when(c("ext")).then(c("id") <= MAX_EXTENDED_ID).otherwise(c("id") <= MAX_BASE_ID)
         & (c("payload").bin.size() == need) & (~c("brs") | c("bus_code").is_in(fd_codes))
     ).fill_null(False)

@@ -36,13 +36,27 @@ NONE = "-"  # an absent optional field
 
 BUS_ALIAS_RE = re.compile(r"^[A-Za-z0-9_-]{1,16}$")
 META_KEY_RE = re.compile(r"^[a-z0-9_]+$")
-ORIGIN_RE = re.compile(r"^(\d{4}-\d{2}-\d{2}T\d{2}:\d{2}:\d{2})(?:\.(\d{1,9}))?Z$")
+ORIGIN_RE = re.compile(r"^([0-9]{4}-[0-9]{2}-[0-9]{2}T[0-9]{2}:[0-9]{2}:[0-9]{2})(?:\.([0-9]{1,9}))?Z$")
 #: ``s``/``x`` then, in this order: ``r`` (classic only) or ``f`` [``b``] [``e``] (FD only).
 FORM_RE = re.compile(r"^[sx](r|f?|fb|fe|fbe)$")
 HEX_ID_RE = re.compile(r"^[0-9A-Fa-f]{1,8}$")
 
 MAX_BASE_ID = 0x7FF
 MAX_EXTENDED_ID = 0x1FFFFFFF
+
+#: An upper bound on the bits of any frame, stuffing and the 3-bit intermission included (the
+#: longest, a 64-byte extended CAN FD frame, stays below 800; tests check it against
+#: physics.frame_bits): the room a frame's t_ns must leave below 2^63-1 for its end_ns.
+FRAME_BITS_BOUND = 1024
+MAX_T_NS = 2**63 - 1
+
+
+def last_frame_t_ns(nominal_bps: int, data_bps: int | None) -> int:
+    """The latest t_ns of a frame on a bus with these rates whose end_ns still fits in int64
+    (a bound: FRAME_BITS_BOUND bits at the slower rate)."""
+    slowest = min(nominal_bps, data_bps or nominal_bps)
+    return MAX_T_NS - -(-FRAME_BITS_BOUND * 1_000_000_000 // slowest)
+
 
 #: ISO 11898-1:2015, Table 5 (DLC to number of data bytes) for CAN FD frames.
 FD_PAYLOAD_BYTES = (0, 1, 2, 3, 4, 5, 6, 7, 8, 12, 16, 20, 24, 32, 48, 64)
@@ -76,16 +90,46 @@ def parse_form(form: str) -> tuple[bool, bool, bool, bool, bool] | None:
     return form[0] == "x", "r" in form, "f" in form, "b" in form, "e" in form
 
 
+def _origin_ns(origin: str) -> int | None:
+    """Nanoseconds since 1970-01-01 UTC of a ``%origin`` text; None when it is not a real
+    time (month 13, February 30, hour 24, a leap second)."""
+    match = ORIGIN_RE.match(origin)
+    if not match:
+        return None
+    try:
+        base = dt.datetime.strptime(match.group(1), "%Y-%m-%dT%H:%M:%S").replace(tzinfo=dt.UTC)
+    except ValueError:
+        return None
+    frac_ns = int((match.group(2) or "0").ljust(9, "0"))
+    seconds = (base - dt.datetime(1970, 1, 1, tzinfo=dt.UTC)) // dt.timedelta(seconds=1)
+    return seconds * 1_000_000_000 + frac_ns
+
+
+#: The wall times a report can show: datetime's years 1 .. 9999.
+_LAST_NS = (dt.datetime(9999, 12, 31, 23, 59, 59, tzinfo=dt.UTC)
+            - dt.datetime(1970, 1, 1, tzinfo=dt.UTC)) // dt.timedelta(seconds=1) * 1_000_000_000
+
+
+def origin_problem(origin: str) -> str | None:
+    """Why a ``%origin`` that matches ORIGIN_RE cannot be used, or None when it can: it must be
+    a real calendar time, and every t_ns after it (up to 2^63-1 ns, about 292 years) a wall
+    time before the year 10000."""
+    epoch_ns = _origin_ns(origin)
+    if epoch_ns is None:
+        return "not a real date and time (month 01-12, a day of that month, 00:00:00-23:59:59)"
+    if epoch_ns + MAX_T_NS > _LAST_NS:
+        return "too late: a t_ns up to 2^63-1 ns after it must stay before the year 10000"
+    return None
+
+
 def wall_time(origin: str | None, t_ns: int | None) -> str | None:
     """ISO 8601 UTC with nanoseconds: ``%origin`` (the wall time of t_ns = 0) plus t_ns."""
     if origin is None or t_ns is None:
         return None
-    match = ORIGIN_RE.match(origin)
-    if not match:
+    origin_ns = _origin_ns(origin)
+    if origin_ns is None:
         return None
-    base = dt.datetime.strptime(match.group(1), "%Y-%m-%dT%H:%M:%S").replace(tzinfo=dt.UTC)
-    frac_ns = int((match.group(2) or "0").ljust(9, "0"))
-    epoch_ns = int(base.timestamp()) * 1_000_000_000 + frac_ns + int(t_ns)
-    seconds, ns = divmod(epoch_ns, 1_000_000_000)
-    stamp = dt.datetime.fromtimestamp(seconds, tz=dt.UTC).strftime("%Y-%m-%dT%H:%M:%S")
+    seconds, ns = divmod(origin_ns + int(t_ns), 1_000_000_000)
+    stamp = (dt.datetime(1970, 1, 1, tzinfo=dt.UTC) + dt.timedelta(seconds=seconds)).strftime(
+        "%Y-%m-%dT%H:%M:%S")
     return f"{stamp}.{ns:09d}Z"

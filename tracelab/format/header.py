@@ -10,6 +10,7 @@ from pathlib import Path
 from typing import BinaryIO
 
 from tracelab.errors import LogFormatError, did_you_mean
+from tracelab.format.blocks import MAX_LINE_BYTES
 from tracelab.format.grammar import (
     BUS_ALIAS_RE,
     BUS_OPTIONS,
@@ -20,6 +21,7 @@ from tracelab.format.grammar import (
     ORIGIN_RE,
     STAMPS,
     VERSION,
+    origin_problem,
 )
 from tracelab.format.writer import BusDecl, LogHeader
 
@@ -100,6 +102,9 @@ def _parse_directive(path: Path, line_no: int, text: str, header: LogHeader) -> 
         if len(words) != 1 or not ORIGIN_RE.match(words[0]):
             raise LogFormatError(str(path), line_no, "%origin must be a UTC time like "
                                  "2026-11-30T21:04:05.000000000Z (ISO 8601, Z, <= 9 decimals)")
+        problem = origin_problem(words[0])
+        if problem:
+            raise LogFormatError(str(path), line_no, f"%origin {words[0]}: {problem}")
         header.origin = words[0]
     elif name == "bus":
         _parse_bus(path, line_no, words, header)
@@ -117,8 +122,24 @@ def _parse_directive(path: Path, line_no: int, text: str, header: LogHeader) -> 
                              f"{did_you_mean(name, DIRECTIVES)}; expected %origin, %bus or %meta")
 
 
+def _skip_rest_of_line(path: Path, stream: BinaryIO, line_no: int, seen: int) -> bool:
+    """Read past the rest of a long comment line a piece at a time (memory stays at one
+    piece); False when the file ends inside it."""
+    while True:
+        piece = stream.readline(_HEADER_LINE_LIMIT)
+        seen += len(piece)
+        if seen > MAX_LINE_BYTES:
+            raise LogFormatError(str(path), line_no, "line is longer than "
+                                 f"{MAX_LINE_BYTES >> 20} MiB: not a frame log?")
+        if not piece:
+            return False
+        if piece.endswith(b"\n"):
+            return True
+
+
 def parse_header(path: Path, stream: BinaryIO) -> tuple[LogHeader, int, bytes]:
-    """Parse lines up to the first record: (header, lines consumed, first record line)."""
+    """Parse lines up to the first record: (header, lines consumed, the bytes read of the
+    first record line, which may be only its start: the block splitter reads on)."""
     _parse_magic(path, stream.readline(_HEADER_LINE_LIMIT))
     header = LogHeader(buses=[])
     line_no = 1
@@ -126,17 +147,26 @@ def parse_header(path: Path, stream: BinaryIO) -> tuple[LogHeader, int, bytes]:
         line = stream.readline(_HEADER_LINE_LIMIT)
         if not line:
             return header, line_no, b""
-        if not line.startswith((b"%", b"#")) and line.strip(b" \t\r\n") != b"":
-            return header, line_no, line
+        whole = line.endswith(b"\n") or len(line) < _HEADER_LINE_LIMIT  # else: a long line
+        if line.startswith(b"#"):
+            line_no += 1
+            if not whole and not _skip_rest_of_line(path, stream, line_no, len(line)):
+                return header, line_no, b""
+            continue
+        if not line.startswith(b"%"):
+            if whole and line.strip(b" \t\r\n") == b"":
+                line_no += 1
+                continue
+            return header, line_no, line  # the first record (or a long blank line)
         line_no += 1
-        if line.startswith(b"%"):
-            if not line.endswith(b"\n"):
-                raise LogFormatError(str(path), line_no, "truncated final line (no line end)")
-            try:
-                text = line.rstrip(b"\n").removesuffix(b"\r").decode("utf-8")
-            except UnicodeDecodeError as error:
-                raise LogFormatError(str(path), line_no,
-                                     f"directive is not valid UTF-8 ({error.reason})") from error
-            _parse_directive(path, line_no, text, header)
-
-
+        if not whole:
+            raise LogFormatError(str(path), line_no, "directive is longer than "
+                                 f"{_HEADER_LINE_LIMIT >> 10} KiB")
+        if not line.endswith(b"\n"):
+            raise LogFormatError(str(path), line_no, "truncated final line (no line end)")
+        try:
+            text = line.rstrip(b"\n").removesuffix(b"\r").decode("utf-8")
+        except UnicodeDecodeError as error:
+            raise LogFormatError(str(path), line_no,
+                                 f"directive is not valid UTF-8 ({error.reason})") from error
+        _parse_directive(path, line_no, text, header)

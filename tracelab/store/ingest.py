@@ -25,7 +25,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 import tracelab
-from tracelab.errors import LogFormatError, UsageError
+from tracelab.errors import LogFormatError, UsageError, printable
 from tracelab.format.compression import compression_name, open_log
 from tracelab.format.reader import Block, Chunk, LogReader
 from tracelab.format.writer import LogHeader
@@ -168,7 +168,7 @@ class IngestSummary:
                      for line, reason in f.first_rejects][:SHOWN_REJECTS]
             out.append(f"{self.rejects:,} line(s) rejected (see the rejects table); first: "
                        + " | ".join(first))
-        return "\n".join(out)
+        return "\n".join(printable(line) for line in out)  # a name or a log's bytes: escaped
 
 
 def file_sha256(path: Path) -> str:
