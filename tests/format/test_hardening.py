@@ -303,3 +303,33 @@ def test_zstd_steps_are_bounded_across_frames(tmp_path: Path) -> None:
     path = _write(tmp_path, packed, "tiny.frames.zst")
     log = read_log(path, strict=True)
     assert log.frames.height == 40 and log.lines == 43
+
+
+def test_ingest_of_a_bomb_stops_hashing_its_content(tmp_path: Path,
+                                                    monkeypatch: pytest.MonkeyPatch) -> None:
+    # the dataset hashes a compressed log's decompressed bytes alongside the reader; once the
+    # reader fails, that hash must stop too instead of inflating the whole 16 GiB
+    from tracelab.store import ingest
+
+    path = _write(tmp_path, _zstd_bomb(16 << 10), "bomb.frames.zst")
+    hashed = 0
+    real_open = ingest.open_log
+
+    def counting_open(p: Path, *args: object) -> tuple[object, object]:
+        stream, raw = real_open(p, *args)  # type: ignore[arg-type]
+        stream_read = stream.read
+
+        def read(size: int = -1) -> bytes:
+            nonlocal hashed
+            data = stream_read(size)
+            hashed += len(data)
+            return data
+
+        stream.read = read  # type: ignore[method-assign]
+        return stream, raw
+
+    monkeypatch.setattr(ingest, "open_log", counting_open)
+    with pytest.raises(LogFormatError, match="line is longer than 64 MiB"):
+        ingest.ingest_logs([path], tmp_path / "ds", quiet=True)
+    assert hashed < (8 << 30)
+    assert not (tmp_path / "ds").exists()

@@ -430,6 +430,9 @@ def _ingest_locked(paths: list[Path], ds: Dataset, created: bool, strict: bool, 
                     result.skipped.append(str(path))
                     advance(path.stat().st_size - skip.done_bytes)
                     continue
+                except BaseException:
+                    stop.set()  # failed: do not inflate the rest of it (a bomb) to hash it
+                    raise
                 try:
                     content = content_future.result() or summary.sha256
                 except Exception:  # noqa: BLE001 - the reader read it; its bytes identify it
