@@ -122,9 +122,9 @@ def test_info_prints_runs_counts_rejects_and_backward_steps(
     out = capsys.readouterr().out
     assert "1 run(s), 1 file(s), 7 lines" in out
     assert "rejects: 1; backward time steps: 1" in out
-    assert "run r7: 1 file(s)" in out and "vehicle utv-07" in out
+    assert "run r7: 1 file, " in out and "vehicle utv-07" in out
     assert "bus C: nominal 500,000 bit/s, data 2,000,000 bit/s, stamp=end" in out
-    assert f"  file {log} (run r7): 7 lines, 1 rejects, first backward step at line 6" in out
+    assert f"  file {log} (run r7): 7 lines, 1 reject, first backward step at line 6" in out
     assert main(["info", str(tmp_path / "ds"), "--json"]) == 0
     import json
 
@@ -169,7 +169,7 @@ def test_raw_byte_faults_in_both_modes(tmp_path: Path, dataset: Path,
     assert _snapshot(dataset) == before
     assert main(["ingest", str(log), "-o", str(dataset), "-q"]) == 0
     out = capsys.readouterr().out
-    assert f"+ {records} records" in out and f"first: {log}:{BAD_LINE}: " in out
+    assert f"+ {records} record" in out and f"first: {log}:{BAD_LINE}: " in out
     assert reason in out
 
 
