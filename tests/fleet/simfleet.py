@@ -110,6 +110,8 @@ def write_night(root: Path, night: Night) -> Path:
     scenario.write_text(f'[run]\nname = "{night.run}"\nduration = "{night.seconds}s"\n'
                         f'seed = {night.night}\norigin = "{night.origin}"\n'
                         f'status_every = "100ms"\nmeta = {{ vehicle = "{night.vehicle}" }}\n'
+                        # the replay still takes an error record's time as the flag start
+                        + '[logger]\nview = "detector"\n'
                         + CATALOG + night.faults)
     log = folder / f"{night.run}{night.suffix}"
     simulate(load_scenario(scenario), log, quiet=True)  # compression by the extension

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
@@ -134,7 +135,21 @@ def test_lonely_node_gets_ack_errors_and_never_bus_off(tmp_path: Path) -> None:
     assert not truth.bus_off
     assert [t["to"] for t in truth.transitions] == ["warning", "error-passive"]
     errors = [line for _, _, line in res.records if "\terror\t" in line]
+    # A listen-only logger cannot see a missing ACK: it sees the transmitter's active flag
+    # overwrite the ACK delimiter (form error, ISO 11898-1 error detection), 16 times; once
+    # the node is error-passive its flag is recessive and the logger receives every
+    # retransmission as a complete frame.
+    assert len(errors) == 16 and all("\tform\tack\t100\ts\t" in line for line in errors)
+    assert len(res.unacked) > 100 and len(res.release) == len(res.unacked)
+
+
+def test_lonely_node_in_the_first_detector_view_logs_ack_errors(tmp_path: Path) -> None:
+    sc = scenario(tmp_path, message("100", "a", "10ms"), duration="200ms", nodes="a")
+    sc = replace(sc, run=replace(sc.run, logger_view="detector"))
+    res = run(sc)
+    errors = [line for _, _, line in res.records if "\terror\t" in line]
     assert len(errors) > 100 and all("\tack\tack\t" in line for line in errors)
+    assert len(res.release) == 0
 
 
 def test_persistent_transmit_error_passive_after_16_bus_off_after_32(tmp_path: Path) -> None:

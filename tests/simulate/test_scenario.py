@@ -98,7 +98,7 @@ BABBLE = '\n[[fault]]\nnode = "vcu"\nkind = "babble"\nrate = 500\nid = "{id}"\n'
     ('end = "7s"', 'end = "3s"', "[fault 1] end must come after start"),
     ('rate = 0.02', 'ppm = 3', "[fault 1] unknown key 'ppm'"),
     ('rate = 0.02', 'every = 0', "[fault 1] every must be a positive integer"),
-    ('rate = 0.02', '', "[fault 1] rx-noise needs either rate"),
+    ('rate = 0.02', '', "[fault 1] rx-noise needs one of rate"),
     ('constant:0102030405060708', 'constant:0102', "[message 1] payload constant has 2 bytes, DLC 8 needs 8"),
     ('payload = "constant', 'payload = "counterr', "[message 1] payload 'counterr"),
     ('jitter = "150us"', 'jitter = "20ms"', "[message 1] jitter must be shorter than the period"),

@@ -12,6 +12,7 @@ simplifications.
 
 from __future__ import annotations
 
+import math
 from array import array
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -32,8 +33,15 @@ from tracelab.physics.confinement import (
     ConfinementConfig,
     NodeCounters,
 )
-from tracelab.simulate.scenario import FaultSpec, Scenario
+from tracelab.simulate.scenario import NOISE_KINDS, FaultSpec, Scenario
 from tracelab.simulate.schedule import BusSchedule
+from tracelab.simulate.wire import (
+    WireLayout,
+    flag_detection,
+    misread_detection,
+    transmitter_reaction,
+    wire_layout,
+)
 
 ACTIVE_FLAG_BITS = 6
 SUPERPOSED_FLAG_BITS = 12  # a first detector's flag, then everybody else's (ISO 11898-1 10.4.4.2)
@@ -48,7 +56,10 @@ EOF_FROM_END = 10
 TAIL_RECESSIVE_BITS = 11
 INF = 1 << 62
 CHUNK = 1 << 16
-NOISE_KINDS = ("rx-noise", "tx-noise", "bus-noise")
+#: Bits of the arbitration field (unstuffed) of base / extended frames, SOF excluded.
+ARBITRATION_BITS = {False: 12, True: 32}
+#: Wire layouts kept for retransmissions of the same errored frame.
+LAYOUT_CACHE = 256
 
 
 @dataclass
@@ -65,17 +76,45 @@ class NodeTruth:
 @dataclass
 class _Noise:
     spec: FaultSpec
-    node: int  # -1: the whole bus
+    nodes: frozenset[int]  # empty: the whole bus
     start_ns: int
     end_ns: int
     count: int = 0
 
-    def rate_at(self, t_ns: int) -> float:
-        r0 = self.spec.rate or 0.0
-        if self.spec.rate_end is None:
+    def level_at(self, t_ns: int) -> float:
+        """The per-frame rate or the per-bit error probability at t_ns (ramps linearly)."""
+        per_bit = self.spec.ber is not None
+        r0 = (self.spec.ber if per_bit else self.spec.rate) or 0.0
+        r1 = self.spec.ber_end if per_bit else self.spec.rate_end
+        if r1 is None:
             return r0
         span = max(1, self.end_ns - self.start_ns)
-        return r0 + (self.spec.rate_end - r0) * min(1.0, max(0.0, (t_ns - self.start_ns) / span))
+        return r0 + (r1 - r0) * min(1.0, max(0.0, (t_ns - self.start_ns) / span))
+
+
+@dataclass
+class _Hit:
+    """What corrupted one attempt: ``kind`` bus (the whole wire), tx (the transmitter's own
+    bit), rx (a local disturbance at ``detectors``) or ack; ``pos`` the bit the noise hit
+    (per-bit noise; None: drawn later from the per-frame model)."""
+
+    kind: str
+    detectors: tuple[int, ...]
+    pos: int | None = None
+
+
+@dataclass(frozen=True)
+class _Detection:
+    """The first detectors' view of one error: flag start bit ``d`` (wire index from SOF),
+    their classification, the frame's wire layout, and the detectors by state."""
+
+    kind: str
+    d: int
+    dtype: str
+    dfield: str
+    lay: WireLayout | None
+    active: tuple[int, ...]
+    passive: tuple[int, ...]
 
 
 @dataclass
@@ -95,6 +134,8 @@ class BusResult:
     error_frames: int
     busy_error_ns: int
     trace: list[tuple[int, str, str, int]] | None = None
+    errors: list[dict[str, Any]] = field(default_factory=list)
+    unacked: list[int] = field(default_factory=list)
 
 
 class BusEngine:
@@ -135,6 +176,13 @@ class BusEngine:
         for m in schedule.messages:
             self.node_mask[self.index[m.sender]] |= 1 << m.rank
         self.logger_ack = scenario.run.logger_ack
+        self.own_view = scenario.run.logger_view == "own"
+        self._layouts: dict[tuple[int, bool], WireLayout] = {}
+        #: per error frame: who detected, where, the flag length and what the logger wrote
+        self.errors: list[dict[str, Any]] = []
+        #: output positions of frames the logger saw complete but nobody acknowledged (an
+        #: error-passive transmitter's ACK error: its passive flag is recessive)
+        self.unacked: list[int] = []
         self.susp_node = -1
         self.susp_until = INF
         self.rec_run_start: dict[int, float] = {}  # bus-off node -> start of recessive run
@@ -229,8 +277,8 @@ class BusEngine:
             if f.start_ns >= self.duration_ns:
                 continue
             if f.kind in NOISE_KINDS:
-                node = -1 if f.node is None else self.index[f.node]
-                noise = _Noise(f, node, f.start_ns, end)
+                nodes = frozenset(self.index[n] for n in f.nodes)
+                noise = _Noise(f, nodes, f.start_ns, end)
                 ev.append((f.start_ns, 1, "noise-on", noise))
                 ev.append((end, 0, "noise-off", noise))
             elif f.kind == "isolated":
@@ -460,30 +508,59 @@ class BusEngine:
             return "data"
         return "crc"
 
-    def _decide(self, x: int, t_ns: int) -> tuple[str, int] | None:
-        """Which error (if any) this attempt suffers: (kind, first detector or -1)."""
+    def _decide(self, x: int, t_ns: int, bits: int, ext: bool) -> _Hit | None:
+        """Which error (if any) this attempt suffers (one draw per active fault)."""
         for f in self.active:
-            if f.spec.kind == "bus-noise":
-                culprit = -1
-            elif f.node == x:
-                culprit = x  # tx-noise, or rx-noise seen by the transmitter's bit monitor
-            elif f.spec.kind == "rx-noise" and self._participating(f.node):
-                culprit = f.node
-            else:
+            kind = f.spec.kind
+            detectors: tuple[int, ...]
+            if kind == "bus-noise":
+                hit_kind, detectors = "bus", ()
+            elif x in f.nodes:
+                hit_kind, detectors = "tx", (x,)  # its own bit, or its bit monitor's reading
+            elif kind == "tx-noise":
                 continue
+            else:
+                detectors = tuple(sorted(n for n in f.nodes if self._participating(n)))
+                if not detectors:
+                    continue
+                hit_kind = "rx"
             f.count += 1
+            pos = None
             if f.spec.every is not None:
                 hit = f.count % f.spec.every == 0
+            elif f.spec.ber is not None:
+                # Per bit: the first corrupted bit is geometric; one uniform draw per frame.
+                # Exposed bits: a transmitter's own bits after arbitration up to the CRC
+                # delimiter (stuff bits of the arbitration field taken as none); a
+                # receiver's SOF .. the 6th EOF bit.
+                if hit_kind == "tx":
+                    exposed = bits - TRAILER_BITS + 1 - ARBITRATION_BITS[ext]
+                else:
+                    exposed = bits - INTERMISSION_BITS - 1
+                ber = f.level_at(t_ns)
+                j = int(math.log1p(-self._uniform()) / math.log1p(-ber)) if ber > 0 else INF
+                hit = j < exposed
+                pos = j
             else:
-                hit = self._uniform() < f.rate_at(t_ns)
+                hit = self._uniform() < f.level_at(t_ns)
             if hit:
-                if f.spec.kind == "bus-noise":
-                    return "bus", -1
-                return ("tx", x) if culprit == x else ("rx", culprit)
+                return _Hit(hit_kind, detectors, pos)
         others = self.ackers - (1 if self._participating(x) else 0)
         if others <= 0:
-            return "ack", x
+            return _Hit("ack", (x,))
         return None
+
+    def _layout(self, g: int, msg: Any, esi: bool) -> WireLayout:
+        """The wire bits of release g (rare: errored attempts only; cached for retries)."""
+        key = (g, esi)
+        lay = self._layouts.get(key)
+        if lay is None:
+            if len(self._layouts) >= LAYOUT_CACHE:
+                self._layouts.clear()
+            data = bytes(self.s.payloads[msg.rank][int(self.s.k[g])])
+            lay = wire_layout(msg.id, msg.ext, msg.rtr, msg.fd, msg.brs, esi, msg.dlc, data)
+            self._layouts[key] = lay
+        return lay
 
     def _attempt(self, r: int, g: int, dur: int, start: int, pending: int, out_t: array,
                  out_g: array, dropped: list[int]) -> tuple[int, int]:
@@ -505,17 +582,27 @@ class BusEngine:
             bits, dpb, dur = self._esi_bits[g]
         if self.rec_run_start:
             self._count_recessive(start)
-        decision = self._decide(x, start)
-        rx_passive = -1
-        if decision is not None and decision[0] == "rx" and self.counters[decision[1]].error_passive:
-            # A passive receiver's flag is recessive: it alone loses the frame (REC + 1).
-            rx_passive = decision[1]
-            self.counters[rx_passive].receive_error(first_detector=False)
-            t_rx = start + self._time_to_bit(bits - EOF_FROM_END, bits, dpb)
-            self._event(t_rx, rx_passive, "rx_error")
-            self._note(rx_passive, t_rx)
-            decision = None
-        if decision is None:
+        hit = self._decide(x, start, bits, msg.ext)
+        err = None if hit is None else self._resolve(hit, g, msg, x, bits, esi)
+        passive_only: tuple[int, ...] = ()
+        if err is not None and err.kind == "rx" and not err.active:
+            # Every detector is error-passive: their flags are recessive, only they lose the
+            # frame (REC + 1 each); it succeeds for everybody else.
+            passive_only = err.passive
+            t_rx = start + self._time_to_bit(err.d, bits, dpb)
+            for n in passive_only:
+                self.counters[n].receive_error(first_detector=False)
+                self._event(t_rx, n, "rx_error")
+                self._note(n, t_rx)
+            self.errors.append({"t_ns": t_rx, "tx": self.names[x], "id_hex": msg.id_hex,
+                                "kind": "rx-passive",
+                                "detectors": [self.names[n] for n in passive_only],
+                                "flag_bits": 0, "detected_as": err.dtype, "logged": None,
+                                "arbitration_lost": False, "tx_counted": False,
+                                "passive_flag": True})
+            err = None
+        transmitted = True
+        if err is None:
             end = start + dur
             pos = len(out_t)
             out_t.append(start)
@@ -529,12 +616,19 @@ class BusEngine:
                 self._event(t_eof, x, "tx_success")
                 self._note(x, t_eof)
             for n, c in enumerate(self.counters):
-                if n != x and n != rx_passive and c.rec and self._participating(n):
+                if n != x and n not in passive_only and c.rec and self._participating(n):
                     c.receive_success()
                     self._event(t_eof, n, "rx_success")
                     self._note(n, t_eof)
         else:
-            end = self._error(decision, r, msg, x, start, bits, dpb, esi)
+            end, transmitted, seen_whole = self._error(err, r, msg, x, start, bits, dpb, esi)
+            if seen_whole:  # the logger received it complete: it goes into the log
+                pos = len(out_t)
+                out_t.append(start)
+                out_g.append(g)
+                if esi:
+                    self._esi[pos] = dur
+                self.unacked.append(pos)
             if cx.bus_off:
                 lost = pending & self.node_mask[x]
                 while lost:  # a loop over the node's pending frames (a few), at bus-off only
@@ -544,7 +638,7 @@ class BusEngine:
                 pending &= ~self.node_mask[x]
         if self.rec_run_start:
             self._new_runs(end)
-        if cx.error_passive and not cx.bus_off:
+        if transmitted and cx.error_passive and not cx.bus_off:
             self.susp_node = x
             self.susp_until = end + int(round(SUSPEND_BITS * self.bit_ns))
         elif self.susp_node == x:
@@ -552,55 +646,155 @@ class BusEngine:
         self._recompute()
         return end, pending
 
-    def _error(self, decision: tuple[str, int], r: int, msg: Any, x: int, start: int,
-               bits: int, dpb: int, esi: bool) -> int:
-        """Error signalling and counter changes of one destroyed frame; returns its end."""
-        kind, first = decision
-        u = self._uniform()
-        nbytes = msg.nbytes
+    def _resolve(self, hit: _Hit, g: int, msg: Any, x: int, bits: int, esi: bool
+                 ) -> _Detection | None:
+        """Where the first detectors detect (flag start ``d``) and what they call it; None
+        when the corrupted bit does no harm (per-bit noise in the ACK slot)."""
+        kind = hit.kind
+        if kind == "ack":  # detected at the ACK slot, flagged from the ACK delimiter
+            return _Detection("ack", bits - ACK_DELIMITER_FROM_END, "ack", "ack", None, (x,), ())
+        lay = self._layout(g, msg, esi)
         stuffed_to_crc_end = bits - TRAILER_BITS
-        if kind == "ack":
-            etype, efield, d = "ack", "ack", bits - ACK_DELIMITER_FROM_END
-        elif kind == "tx":
-            # A bit error somewhere after arbitration (control .. CRC).
-            lo = 0.25
-            frac = lo + (1 - lo) * u
-            etype, efield = "bit", self._field_of(msg.ext, msg.fd, nbytes, frac)
-            d = int(frac * stuffed_to_crc_end) + 1
-        elif u < 0.5:
-            frac = 2 * u
-            etype, efield = "stuff", self._field_of(msg.ext, msg.fd, nbytes, frac)
-            d = int(frac * stuffed_to_crc_end) + 1
+        if kind == "tx":
+            if hit.pos is None:  # per frame: a bit error somewhere after arbitration
+                frac = 0.25 + 0.75 * self._uniform()
+                d = int(frac * stuffed_to_crc_end) + 1
+            else:
+                d = min(lay.field.index("control") + hit.pos, lay.crc_delimiter - 1) + 1
+            dtype, dfield = "bit", lay.field[d - 1]
+        elif hit.pos is None:  # per frame, a receiver's detection: stuff or CRC, even odds
+            u = self._uniform()
+            if u < 0.5:
+                d = int(2 * u * stuffed_to_crc_end) + 1
+                dtype, dfield = "stuff", lay.field[d - 1]
+            else:
+                d, dtype, dfield = bits - EOF_FROM_END, "crc", "crc"
         else:
-            etype, efield, d = "crc", "crc", bits - EOF_FROM_END
+            seen = misread_detection(lay, hit.pos)
+            if seen is None:
+                return None
+            d, dtype, dfield = seen[0] + 1, seen[1], seen[2]
+        if kind == "bus":
+            return _Detection("bus", d, dtype, dfield, lay, (), ())
+        detectors = hit.detectors
+        active = tuple(n for n in detectors if not self.counters[n].error_passive)
+        passive = tuple(n for n in detectors if self.counters[n].error_passive)
+        return _Detection(kind, d, dtype, dfield, lay, active, passive)
+
+    def _error(self, det: _Detection, r: int, msg: Any, x: int, start: int, bits: int,
+               dpb: int, esi: bool) -> tuple[int, bool, bool]:
+        """Error signalling and counter changes of one destroyed frame.
+
+        Returns (end of the error frame, whether x was still the transmitter at the end (it
+        did not lose arbitration), whether the logger saw the frame complete)."""
+        kind, d, lay = det.kind, det.d, det.lay
         t_flag = start + self._time_to_bit(d, bits, dpb)
         receivers = [n for n in range(len(self.names)) if n != x and self._participating(n)]
-        if kind in ("tx", "rx") and receivers:
-            flag = SUPERPOSED_FLAG_BITS
+        cx = self.counters[x]
+        x_passive = cx.error_passive
+        tx_role = "tx_error"
+        reactors_active = 0
+        flag_end = d + ACTIVE_FLAG_BITS
+        seen_whole = False
+        first_flag_dominant = True
+        rx_first: tuple[int, ...] = ()
+        if kind == "ack":
+            tx_role = "tx_ack_error"
+            first_flag_dominant = not x_passive
+            log = (d, "form", "ack")  # the transmitter's flag overwrites the ACK delimiter
+            # a passive flag is recessive: a listen-only logger sees the frame complete
+            seen_whole = x_passive and self.own_view
+        elif kind == "bus":  # every node detects on the same bit
+            log = (d - 1, det.dtype, det.dfield)
+            first_flag_dominant = any(not self.counters[n].error_passive
+                                      for n in receivers) or not x_passive
         else:
-            flag = ACTIVE_FLAG_BITS
-        end = t_flag + int(round((flag + ERROR_DELIMITER_BITS + INTERMISSION_BITS) * self.bit_ns))
+            assert lay is not None
+            rx_first = det.active if kind == "rx" else ()
+            first_flag_dominant = bool(rx_first) or (kind == "tx" and not x_passive)
+            react = flag_detection(lay, d, dominant=first_flag_dominant)
+            log = react
+            if kind == "tx":
+                # the corrupted bit is on the wire: the logger may trip over it first
+                seen = misread_detection(lay, d - 1)
+                if seen is not None and seen[1] != "crc" and seen[0] <= react[0]:
+                    log = seen
+            for n in receivers:
+                if n not in rx_first and n not in det.passive \
+                        and not self.counters[n].error_passive:
+                    reactors_active += 1
+                    flag_end = max(flag_end, react[0] + 1 + ACTIVE_FLAG_BITS)
+            if kind == "rx":
+                role, p = transmitter_reaction(lay, d, react[0])
+                if role == "lost":
+                    tx_role, p = "lost", react[0]
+                elif role == "arb-stuff":
+                    tx_role = "tx_arb_stuff_error"
+                if not x_passive:
+                    reactors_active += 1
+                    flag_end = max(flag_end, p + 1 + ACTIVE_FLAG_BITS)
+            if self.logger_ack:  # a logger that acknowledges flags errors too
+                reactors_active += 1
+                flag_end = max(flag_end, react[0] + 1 + ACTIVE_FLAG_BITS)
+            if not first_flag_dominant:
+                flag_end = max(flag_end, d + ACTIVE_FLAG_BITS)
+        flag_bits = flag_end - d
+        end = t_flag + int(round((flag_bits + ERROR_DELIMITER_BITS + INTERMISSION_BITS)
+                                 * self.bit_ns))
         self.error_frames += 1
         self.busy_error_ns += end - start
+        # the error record, as the logger's controller or as the first detector saw it
+        if kind == "rx":
+            first = rx_first[0]
+        elif kind in ("tx", "ack"):
+            first = x
+        else:
+            first = -1
         by = self.names[first] if (self.attribute and first >= 0) else None
         form = msg.form + ("e" if esi else "")
-        self.records.append((t_flag, r, error_line(t_flag, self.bus, etype, efield, msg.id,
-                                                   msg.ext, form, by)))
-        cx = self.counters[x]
+        logged: dict[str, Any] | None = None
+        if not seen_whole:
+            if self.own_view:
+                t_rec = start + self._time_to_bit(log[0] + 1, bits, dpb)
+                etype, efield = log[1], log[2]
+                unknown_id = lay is not None and (d - (kind in ("bus", "tx"))) <= lay.id_done
+            else:
+                t_rec, etype, efield, unknown_id = t_flag, det.dtype, det.dfield, False
+            ident = None if unknown_id else msg.id
+            self.records.append((t_rec, r, error_line(t_rec, self.bus, etype, efield, ident,
+                                                      None if unknown_id else msg.ext,
+                                                      None if unknown_id else form, by)))
+            logged = {"t_ns": t_rec, "type": etype, "field": efield}
+        self.errors.append({
+            "t_ns": t_flag, "tx": self.names[x], "id_hex": msg.id_hex, "kind": kind,
+            "detectors": ([self.names[n] for n in rx_first] if kind == "rx" else
+                          [self.names[x]] if kind in ("tx", "ack") else
+                          [self.names[n] for n in [x, *receivers]]),
+            "flag_bits": flag_bits, "detected_as": det.dtype, "logged": logged,
+            "arbitration_lost": tx_role == "lost",
+            "tx_counted": tx_role in ("tx_error", "tx_ack_error"),
+            "passive_flag": not first_flag_dominant})
+        # counters (ISO 11898-1 rules a, b, c)
         was_off = cx.bus_off
-        cx.transmit_error(ack_error=kind == "ack")
-        self._event(t_flag, x, "tx_ack_error" if kind == "ack" else "tx_error")
+        if tx_role == "lost":  # no longer the transmitter: a receiver that detects (rule a)
+            cx.receive_error()
+            self._event(t_flag, x, "rx_error")
+        else:
+            cx.transmit_error(ack_error=kind == "ack",
+                              arbitration_stuff_error=tx_role == "tx_arb_stuff_error")
+            self._event(t_flag, x, tx_role)
         self._note(x, t_flag)
         if cx.bus_off and not was_off:
             self.truth[x].bus_off.append({"from_ns": t_flag, "to_ns": None})
             self.rec_occ[x] = 0
             self.rec_run_start[x] = end - TAIL_RECESSIVE_BITS * self.bit_ns
         for n in receivers:
-            first_n = kind == "rx" and n == first
+            # rule b: a first detector sees the others' flags right after its own
+            first_n = n in rx_first and reactors_active > 0
             self.counters[n].receive_error(first_detector=first_n)
             self._event(t_flag, n, "rx_error_first" if first_n else "rx_error")
             self._note(n, t_flag)
-        return end
+        return end, tx_role != "lost", seen_whole
 
     def _result(self, out_t: array, out_g: array, dropped: list[int]) -> BusResult:
         s = self.s
@@ -614,7 +808,7 @@ class BusEngine:
         return BusResult(s, start, release, start + durations, esi, self.records,
                          np.asarray(dropped, dtype=np.int64), self.truth,
                          self.first_degraded, self.first_warning, self.error_frames,
-                         self.busy_error_ns, self.trace)
+                         self.busy_error_ns, self.trace, self.errors, self.unacked)
 
 
 __all__ = ["BusEngine", "BusResult", "NodeTruth"]

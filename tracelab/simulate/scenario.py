@@ -32,16 +32,20 @@ from tracelab.network.catalog import (
 )
 from tracelab.simulate.payloads import signal_plan
 
-FAULT_KINDS = ("rx-noise", "tx-noise", "isolated", "bus-noise", "silent", "babble", "drift",
-               "logger-loss")
+FAULT_KINDS = ("rx-noise", "tx-noise", "local-noise", "isolated", "bus-noise", "silent",
+               "babble", "drift", "logger-loss")
+#: Fault kinds that corrupt bits: a per-frame ``rate``, every N-th frame or a per-bit ``ber``.
+NOISE_KINDS = ("rx-noise", "tx-noise", "local-noise", "bus-noise")
+LOGGER_VIEWS = ("own", "detector")
 RUN_KEYS = ("name", "duration", "seed", "origin", "status_every", "attribute_errors", "meta")
-LOGGER_KEYS = ("ack",)
+LOGGER_KEYS = ("ack", "view")
 MARK_KEYS = ("at", "text", "bus")
 #: Keys each fault kind accepts besides kind, start, end.
 FAULT_KEYS: dict[str, tuple[str, ...]] = {
-    "rx-noise": ("node", "bus", "rate", "rate_end", "every"),
-    "tx-noise": ("node", "bus", "rate", "rate_end", "every"),
-    "bus-noise": ("bus", "rate", "rate_end", "every"),
+    "rx-noise": ("node", "bus", "rate", "rate_end", "every", "ber", "ber_end"),
+    "tx-noise": ("node", "bus", "rate", "rate_end", "every", "ber", "ber_end"),
+    "local-noise": ("nodes", "bus", "rate", "rate_end", "every", "ber", "ber_end"),
+    "bus-noise": ("bus", "rate", "rate_end", "every", "ber", "ber_end"),
     "isolated": ("node", "bus"),
     "silent": ("node", "bus"),
     "babble": ("node", "bus", "rate", "id", "form", "dlc"),
@@ -51,6 +55,8 @@ FAULT_KEYS: dict[str, tuple[str, ...]] = {
 PAYLOAD_KINDS = ("counter", "random", "constant", "signal")
 DEFAULT_DURATION_NS = 60_000_000_000
 MAX_DRIFT_PPM = 10_000.0
+#: Largest accepted bit error probability (beyond it almost every frame fails anyway).
+MAX_BER = 0.01
 #: %meta keys the simulator writes itself.
 RESERVED_META = ("run", "seed", "source", "version")
 
@@ -66,6 +72,9 @@ class RunSpec:
     logger_ack: bool
     #: Extra ``%meta`` of the log (vehicle, site, ...), in written order.
     meta: tuple[tuple[str, str], ...] = ()
+    #: "own": error records as the logger's own controller classifies them; "detector": the
+    #: first detector's classification (docs/simulator.md).
+    logger_view: str = "own"
 
 
 @dataclass(frozen=True)
@@ -106,15 +115,22 @@ class FaultSpec:
     babble_id: int | None = None
     babble_form: str = "s"
     babble_dlc: int = 8
+    #: Bit error probability (noise kinds), ramping to ber_end.
+    ber: float | None = None
+    ber_end: float | None = None
+    #: The nodes that see the disturbance (rx-noise, tx-noise: the node; local-noise: nodes).
+    nodes: tuple[str, ...] = ()
 
     def as_json(self) -> dict[str, Any]:
         out: dict[str, Any] = {"kind": self.kind}
         if self.node is not None:
             out["node"] = self.node
         out["bus"] = self.buses[0] if len(self.buses) == 1 else list(self.buses)
+        if self.kind == "local-noise":
+            out["nodes"] = list(self.nodes)
         out["start_ns"] = self.start_ns
         out["end_ns"] = self.end_ns
-        for key in ("rate", "rate_end", "every", "ppm"):
+        for key in ("rate", "rate_end", "every", "ber", "ber_end", "ppm"):
             value = getattr(self, key)
             if value is not None:
                 out[key] = value
@@ -188,8 +204,9 @@ def _load_run(path: str, raw: Any, file: Path, logger: Any) -> RunSpec:
     attribute = table.get("attribute_errors", False)
     if not isinstance(attribute, bool):
         raise CatalogError(path, "run", "attribute_errors must be true or false")
+    ack, view = _load_logger(path, logger)
     return RunSpec(name, duration or DEFAULT_DURATION_NS, seed, origin, status_every, attribute,
-                   _load_logger(path, logger), _load_meta(path, table.get("meta", {})))
+                   ack, _load_meta(path, table.get("meta", {})), view)
 
 
 def _load_meta(path: str, raw: Any) -> tuple[tuple[str, str], ...]:
@@ -208,13 +225,18 @@ def _load_meta(path: str, raw: Any) -> tuple[tuple[str, str], ...]:
     return tuple(out)
 
 
-def _load_logger(path: str, raw: Any) -> bool:
+def _load_logger(path: str, raw: Any) -> tuple[bool, str]:
     table = _table(path, "logger", raw)
     check_keys(path, "logger", table, LOGGER_KEYS)
     ack = table.get("ack", False)
     if not isinstance(ack, bool):
         raise CatalogError(path, "logger", "ack must be true or false")
-    return ack
+    view = table.get("view", "own")
+    if view not in LOGGER_VIEWS:
+        raise CatalogError(path, "logger", f"view {view!r} is unknown"
+                           + (did_you_mean(str(view), LOGGER_VIEWS)
+                              or "; use \"own\" or \"detector\""))
+    return ack, view
 
 
 def _number(path: str, where: str, table: Mapping[str, Any], key: str) -> float | None:
@@ -342,23 +364,17 @@ def _load_faults(path: str, raw: Any, catalog: Catalog, run: RunSpec) -> tuple[F
         end = duration_field(path, where, table, "end")
         if end is not None and end <= start:
             raise CatalogError(path, where, "end must come after start")
-        needs_node = kind not in ("bus-noise", "logger-loss")
-        node, buses = _fault_node_buses(path, where, table, catalog, needs_node,
-                                        one_bus=kind == "babble")
+        needs_node = kind not in ("bus-noise", "logger-loss", "local-noise")
+        if kind == "local-noise":
+            node, nodes, buses = None, *_local_nodes(path, where, table, catalog)
+        else:
+            node, buses = _fault_node_buses(path, where, table, catalog, needs_node,
+                                            one_bus=kind == "babble")
+            nodes = (node,) if node is not None else ()
         fault = FaultSpec(index, kind, node, buses, start, end)
-        if kind in ("rx-noise", "tx-noise", "bus-noise"):
-            every = table.get("every")
-            if every is not None and (isinstance(every, bool) or not isinstance(every, int)
-                                      or every < 1):
-                raise CatalogError(path, where, "every must be a positive integer")
-            rate = _rate(path, where, table, "rate", 1.0)
-            rate_end = _rate(path, where, table, "rate_end", 1.0)
-            if (rate is None) == (every is None):
-                raise CatalogError(path, where, f"{kind} needs either rate (0..1] or every = N")
-            if rate_end is not None and rate is None:
-                raise CatalogError(path, where, "rate_end needs rate")
-            fault = FaultSpec(index, kind, node, buses, start, end, rate=rate,
-                              rate_end=rate_end, every=every)
+        if kind in NOISE_KINDS:
+            fault = _noise(path, where, table, FaultSpec(index, kind, node, buses, start, end,
+                                                         nodes=nodes))
         elif kind == "logger-loss":
             rate = _rate(path, where, table, "rate", 1.0)
             fault = FaultSpec(index, kind, None, buses, start, end, rate=1.0 if rate is None
@@ -374,6 +390,54 @@ def _load_faults(path: str, raw: Any, catalog: Catalog, run: RunSpec) -> tuple[F
             fault = _babble(path, where, table, catalog, fault, out)
         out.append(fault)
     return tuple(out)
+
+
+def _noise(path: str, where: str, table: Mapping[str, Any], fault: FaultSpec) -> FaultSpec:
+    """rate (per frame), every = N, or ber (per bit): exactly one of them."""
+    every = table.get("every")
+    if every is not None and (isinstance(every, bool) or not isinstance(every, int)
+                              or every < 1):
+        raise CatalogError(path, where, "every must be a positive integer")
+    rate = _rate(path, where, table, "rate", 1.0)
+    rate_end = _rate(path, where, table, "rate_end", 1.0)
+    ber = _rate(path, where, table, "ber", MAX_BER)
+    ber_end = _rate(path, where, table, "ber_end", MAX_BER)
+    if ber == 0:
+        raise CatalogError(path, where, f"ber = 0 must lie in (0, {MAX_BER:g}]")
+    if sum(v is not None for v in (rate, every, ber)) != 1:
+        raise CatalogError(path, where, f"{fault.kind} needs one of rate (0..1, per frame), "
+                           "ber (per bit) or every = N")
+    if rate_end is not None and rate is None:
+        raise CatalogError(path, where, "rate_end needs rate")
+    if ber_end is not None and ber is None:
+        raise CatalogError(path, where, "ber_end needs ber")
+    return FaultSpec(fault.index, fault.kind, fault.node, fault.buses, fault.start_ns,
+                     fault.end_ns, rate=rate, rate_end=rate_end, every=every, ber=ber,
+                     ber_end=ber_end, nodes=fault.nodes)
+
+
+def _local_nodes(path: str, where: str, table: Mapping[str, Any], catalog: Catalog
+                 ) -> tuple[tuple[str, ...], tuple[str, ...]]:
+    """``nodes = ["a", "b"]`` of a local-noise fault, and the buses they share."""
+    nodes = table.get("nodes")
+    if not isinstance(nodes, list) or not nodes or not all(isinstance(n, str) for n in nodes):
+        raise CatalogError(path, where, "local-noise needs nodes = [\"name\", ...]")
+    for n in nodes:
+        if n not in catalog.nodes:
+            raise CatalogError(path, where, f"node '{n}' is not a declared node"
+                               + did_you_mean(n, catalog.nodes))
+    if len(set(nodes)) != len(nodes):
+        raise CatalogError(path, where, "nodes lists a node twice")
+    shared = [b for b in catalog.nodes[nodes[0]].buses
+              if all(b in catalog.nodes[n].buses for n in nodes)]
+    bus = table.get("bus")
+    if bus is not None:
+        if bus not in shared:
+            raise CatalogError(path, where, f"not every node of {nodes} is on bus '{bus}'")
+        return tuple(nodes), (bus,)
+    if not shared:
+        raise CatalogError(path, where, f"the nodes {nodes} share no bus")
+    return tuple(nodes), tuple(shared)
 
 
 def _babble(path: str, where: str, table: Mapping[str, Any], catalog: Catalog,

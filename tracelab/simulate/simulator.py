@@ -329,6 +329,7 @@ def build_truth(scenario: Scenario, results: list[BusResult], duration_ns: int, 
         entry["end_ns"] = duration_ns if f.end_ns is None else min(f.end_ns, duration_ns)
         faults.append(entry)
     nodes, messages, first = [], [], []
+    errors: list[dict[str, Any]] = []
     for res in results:
         s = res.schedule
         bus = s.bus.alias
@@ -337,6 +338,9 @@ def build_truth(scenario: Scenario, results: list[BusResult], duration_ns: int, 
                           "transitions": nt.transitions, "bus_off": nt.bus_off})
         queued = np.bincount(s.rank, minlength=len(s.messages))
         sent = np.bincount(s.rank[res.release], minlength=len(s.messages))
+        if res.unacked:  # logged complete, but nobody acknowledged: retransmitted
+            unacked = np.asarray(res.unacked, dtype=np.int64)
+            sent -= np.bincount(s.rank[res.release[unacked]], minlength=len(s.messages))
         for m in s.messages:
             messages.append({
                 "bus": bus, "id": m.id, "id_hex": m.id_hex, "ext": m.ext, "name": m.name,
@@ -351,11 +355,15 @@ def build_truth(scenario: Scenario, results: list[BusResult], duration_ns: int, 
                       "first_warning": res.first_warning,
                       "first_transition": res.first_warning,
                       "worst": _worst_state(res.nodes, res.first_warning)})
+        errors.extend({"bus": bus, **e} for e in res.errors)
     return {
         "run": scenario.run.name, "seed": seed, "duration_ns": duration_ns,
         "origin": scenario.run.origin, "scenario": str(scenario.path),
         "faults": faults, "nodes": nodes, "messages": messages, "first_degraded": first,
         "logger_loss": loss_truth,
         "buses": [{"bus": r.schedule.bus.alias, "frames": len(r.release),
-                   "error_frames": r.error_frames} for r in results],
+                   "error_frames": r.error_frames, "unacknowledged": len(r.unacked)}
+                  for r in results],
+        "logger": {"view": scenario.run.logger_view, "ack": scenario.run.logger_ack},
+        "errors": errors,
     }
