@@ -1,7 +1,8 @@
 """The ``tracelab`` command: a thin typer shell over tracelab.workflow.
 
 Exit codes: 0 ok, 2 usage, 3 input error (bad log, catalog, query), 4 internal error.
-Each command parses options, calls one library function and prints.
+Each command parses options, calls one library function and prints; its docstring ends with
+one ``Example:`` line (tests/test_cli_docs.py checks it).
 """
 
 from __future__ import annotations
@@ -14,13 +15,30 @@ from typing import Any
 
 import typer
 
+import tracelab
 from tracelab.errors import EXIT_INTERNAL, EXIT_USAGE, TracelabError, printable
 
+# Plain help (rich_markup_mode=None): flags show no "<bool>" type column and the page reads
+# the same in a pipe; errors are ours (main()), so no rich boxes either.
 app = typer.Typer(
     add_completion=False,
     no_args_is_help=True,
+    rich_markup_mode=None,
+    pretty_exceptions_enable=False,
     help="Timing, bus-load and fault-confinement forensics for CAN / CAN FD frame logs.",
 )
+
+
+def _print_version(value: bool) -> None:
+    if value:
+        typer.echo(f"tracelab {tracelab.__version__}")
+        raise typer.Exit()
+
+
+@app.callback()
+def _root(version: bool = typer.Option(False, "--version", is_eager=True, callback=_print_version,
+                                       help="Print the version and exit.")) -> None:
+    """Timing, bus-load and fault-confinement forensics for CAN / CAN FD frame logs."""
 
 
 #: The memory options every dataset-reading command takes (store/limits.py); reuse them in
@@ -45,7 +63,12 @@ def ingest(
     force: bool = typer.Option(False, "--force", help="Re-ingest files already in the dataset."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar, summary only."),
 ) -> None:
-    """Ingest frame logs into a Parquet dataset; every line is ingested or recorded as rejected."""
+    """Ingest frame logs into a Parquet dataset; every line is ingested or recorded as rejected.
+
+    \b
+    Example:
+      tracelab ingest night-07.frames.zst -o night.ds
+    """
     from tracelab import workflow
 
     summary = workflow.ingest(logs, output, strict=strict, force=force, quiet=quiet)
@@ -57,7 +80,12 @@ def info(
     dataset: Path = typer.Argument(..., help="Dataset directory."),
     as_json: bool = typer.Option(False, "--json", help="Print JSON."),
 ) -> None:
-    """Runs, files, time span, buses, counts per record kind, rejects, backward time steps."""
+    """Runs, files, time span, buses, counts per record kind, rejects, backward time steps.
+
+    \b
+    Example:
+      tracelab info night.ds
+    """
     from tracelab import workflow
 
     result = workflow.info(dataset)
@@ -72,7 +100,12 @@ def simulate(
     seed: int | None = typer.Option(None, "--seed", help="Override the scenario seed."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar."),
 ) -> None:
-    """Simulate a bus scenario; writes LOG and LOG.truth.json (the ground truth)."""
+    """Simulate a bus scenario; writes LOG and LOG.truth.json (the ground truth).
+
+    \b
+    Example:
+      tracelab simulate demo_logs/endurance-night.toml -o sim.frames --duration 60s
+    """
     from tracelab import workflow
 
     summary = workflow.simulate(scenario, output, duration=duration, seed=seed, quiet=quiet)
@@ -89,7 +122,12 @@ def timing(
     memory: str | None = MEMORY_OPTION,
     temp_dir: Path | None = TEMP_DIR_OPTION,
 ) -> None:
-    """Period, jitter, drift and gaps per message."""
+    """Period, jitter, drift and gaps per message.
+
+    \b
+    Example:
+      tracelab timing night.ds --catalog catalog.toml
+    """
     from tracelab import workflow
 
     with workflow.limits(memory, temp_dir):
@@ -106,7 +144,12 @@ def load(
     memory: str | None = MEMORY_OPTION,
     temp_dir: Path | None = TEMP_DIR_OPTION,
 ) -> None:
-    """Bus load over time per bus, from exact frame durations."""
+    """Bus load over time per bus, from exact frame durations.
+
+    \b
+    Example:
+      tracelab load night.ds --window 1s
+    """
     from tracelab import workflow
 
     with workflow.limits(memory, temp_dir):
@@ -123,7 +166,12 @@ def sql(
     memory: str | None = MEMORY_OPTION,
     temp_dir: Path | None = TEMP_DIR_OPTION,
 ) -> None:
-    """Read-only DuckDB SQL over a dataset (or a fleet) with ready-made views and macros."""
+    """Read-only DuckDB SQL over a dataset (or a fleet) with ready-made views and macros.
+
+    \b
+    Example:
+      tracelab sql night.ds "SELECT bus, count(*) FROM frames GROUP BY bus"
+    """
     from tracelab import workflow
 
     with workflow.limits(memory, temp_dir):
@@ -143,7 +191,12 @@ def signals(
     memory: str | None = MEMORY_OPTION,
     temp_dir: Path | None = TEMP_DIR_OPTION,
 ) -> None:
-    """Decode the catalog's signals from the payloads; statistics, counter and checksum checks."""
+    """Decode the catalog's signals from the payloads; statistics, counter and checksum checks.
+
+    \b
+    Example:
+      tracelab signals night.ds --catalog catalog.toml --stuck 10s
+    """
     from tracelab import workflow
 
     with workflow.limits(memory, temp_dir):
@@ -161,7 +214,12 @@ def faults(
     memory: str | None = MEMORY_OPTION,
     temp_dir: Path | None = TEMP_DIR_OPTION,
 ) -> None:
-    """Replay error counters and name the node that degraded first, with the evidence."""
+    """Replay error counters and name the node that degraded first, with the evidence.
+
+    \b
+    Example:
+      tracelab faults night.ds --catalog catalog.toml
+    """
     from tracelab import workflow
 
     with workflow.limits(memory, temp_dir):
@@ -181,7 +239,12 @@ def report(
     memory: str | None = MEMORY_OPTION,
     temp_dir: Path | None = TEMP_DIR_OPTION,
 ) -> None:
-    """Write an interactive, self-contained HTML dashboard per run."""
+    """Write an interactive, self-contained HTML dashboard per run.
+
+    \b
+    Example:
+      tracelab report night.ds -o night.html --catalog catalog.toml
+    """
     from tracelab import workflow
 
     with workflow.limits(memory, temp_dir):
@@ -198,7 +261,12 @@ def demo(
     memory: str | None = MEMORY_OPTION,
     temp_dir: Path | None = TEMP_DIR_OPTION,
 ) -> None:
-    """Run the whole job on the bundled demo scenario and print the verdict and report path."""
+    """Run the whole job on the bundled demo scenario and print the verdict and report path.
+
+    \b
+    Example:
+      tracelab demo -o demo_out
+    """
     from tracelab import workflow
 
     with workflow.limits(memory, temp_dir):
@@ -216,7 +284,12 @@ def batch(
     previous: int = typer.Option(5, "--previous", help="Runs per vehicle the regression flags compare with."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar."),
 ) -> None:
-    """Nightly fleet batch: ingest, analyse and report every run; fleet summary and index."""
+    """Nightly fleet batch: ingest, analyse and report every run; fleet summary and index.
+
+    \b
+    Example:
+      tracelab batch logs/ -o fleet --workers 2
+    """
     from tracelab import workflow
 
     summary = workflow.batch(root, output, catalog=catalog, executor=executor,
@@ -239,7 +312,12 @@ def capture(
     reorder: str = typer.Option("100ms", "--reorder", help="Reorder window across interfaces."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No live status line."),
 ) -> None:
-    """Record SocketCAN interfaces into a frame log (format v1) until Ctrl-C, SIGTERM or --duration."""
+    """Record SocketCAN interfaces into a frame log (format v1) until Ctrl-C, SIGTERM or --duration.
+
+    \b
+    Example:
+      tracelab capture can0 -o bench.frames.zst --duration 10m
+    """
     from tracelab import workflow
 
     summary = workflow.capture(ifaces, output, rotate=rotate, duration=duration, meta=meta,
@@ -263,7 +341,12 @@ def convert(
     strict: bool = typer.Option(False, "--strict", help="Stop at the first bad row (exit 3)."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar."),
 ) -> None:
-    """Convert delimited frame tables into one frame log (format v1); every row is accounted for."""
+    """Convert delimited frame tables into one frame log (format v1); every row is accounted for.
+
+    \b
+    Example:
+      tracelab convert table.csv -o t.frames --bus P,nominal=500000 --columns time=1,id=2,data=3
+    """
     from tracelab import workflow
 
     summary = workflow.convert(tables, output, bus=bus, columns=columns, time_unit=time_unit,
@@ -272,14 +355,32 @@ def convert(
     typer.echo(summary.describe())
 
 
+def _usage_line(error: typer.TyperException) -> str:
+    """A CLI-framework error (missing option, bad value, unknown option) as our one line."""
+    ctx = getattr(error, "ctx", None)
+    hint = f" (see '{ctx.command_path} --help')" if ctx is not None else ""
+    return printable(f"tracelab: {error.format_message()}{hint}")
+
+
 def main(argv: list[str] | None = None) -> int:
     """Entry point: one line and a documented exit code for every user error.
 
-    typer (in standalone mode) reports usage errors itself and exits 2; our own errors and
-    bugs propagate out of it and are turned into one line here.
+    The CLI framework runs without its own error handling (standalone_mode=False): its usage
+    errors, our own errors and bugs all come here and become one line.
     """
     try:
-        app(args=argv, prog_name="tracelab")
+        command = typer.main.get_command(app)
+        code = command.main(args=argv, prog_name="tracelab", standalone_mode=False)
+        return code if isinstance(code, int) else 0
+    except typer.TyperException as error:  # the CLI framework's usage errors
+        if type(error).__name__ == "NoArgsIsHelpError":  # bare `tracelab`: the help page
+            typer.echo(error.format_message())
+        else:
+            typer.echo(_usage_line(error), err=True)
+        return EXIT_USAGE
+    except typer.Abort:
+        typer.echo("tracelab: interrupted", err=True)
+        return 130
     except SystemExit as stop:
         code = stop.code
         return code if isinstance(code, int) else (0 if code is None else EXIT_USAGE)
@@ -295,7 +396,6 @@ def main(argv: list[str] | None = None) -> int:
         typer.echo(printable(f"tracelab: internal error: {type(error).__name__}: {error} ")
                    + "(set TRACELAB_DEBUG=1 for a traceback)", err=True)
         return EXIT_INTERNAL
-    return 0
 
 
 if __name__ == "__main__":
