@@ -213,6 +213,13 @@ def faults(dataset: Path, catalog: Path, run: str | None = None) -> Any:
 # --- report / demo ------------------------------------------------------------------------
 
 
+def _has_signals(catalog: Path) -> bool:
+    """Whether the catalog defines any [[message.signal]] (the report then shows them)."""
+    from tracelab.network.catalog import load_catalog
+
+    return any(m.signals for m in load_catalog(catalog).messages)
+
+
 def _report_path(output: Path, run: str, several: bool) -> Path:
     """``-o x.html`` is the file for one run (x-<run>.html for several); else a directory."""
     import re
@@ -268,6 +275,7 @@ def report(dataset: Path, output: Path, catalog: Path | None = None, run: str | 
     # when something is missing (a complete dataset may be read-only to this user).
     def missing() -> list[str]:
         names = ["timing", "load"] + (["faults"] if catalog is not None else [])
+        names += ["signals"] if catalog is not None and _has_signals(catalog) else []
         return [name for name in names if not _covers(ds, name, runs)]
 
     if missing():
@@ -279,6 +287,8 @@ def report(dataset: Path, output: Path, catalog: Path | None = None, run: str | 
                 load(dataset)
             if "faults" in todo and catalog is not None:
                 faults(dataset, catalog=catalog)
+            if "signals" in todo and catalog is not None:
+                signals(dataset, catalog=catalog)
     faults_json = ds.read_analysis_json("faults")
     written = []
     with ds.connect() as con:

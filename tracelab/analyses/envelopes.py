@@ -19,6 +19,7 @@ import duckdb
 import polars as pl
 
 from tracelab.analyses import run_sql_frame
+from tracelab.analyses.signal_envelopes import signal_section
 from tracelab.format.grammar import wall_time
 from tracelab.store.schema import manifest_buses
 
@@ -59,6 +60,8 @@ class ReportData:
     marks_total: int = 0
     rejects: pl.DataFrame = field(default_factory=pl.DataFrame)
     notes: list[str] = field(default_factory=list)
+    #: the Signals section (analyses/signal_envelopes.py); None without a signals analysis
+    signals: Any = None
 
 
 def _views(con: duckdb.DuckDBPyConnection) -> set[str]:
@@ -334,4 +337,5 @@ def report_data(con: duckdb.DuckDBPyConnection, run: str, faults: dict[str, Any]
     data.marks_total = int(total or 0)
     data.rejects = _frame(con, "SELECT file, line, reason, raw FROM rejects WHERE run = $run "
                                "ORDER BY file, line LIMIT $n", {"run": run, "n": reject_rows})
+    data.signals = signal_section(con, run, t0, t1, data.faults)
     return data

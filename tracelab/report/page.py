@@ -16,6 +16,7 @@ import polars as pl
 from tracelab import __version__
 from tracelab.analyses.envelopes import ReportData
 from tracelab.report import figures, style
+from tracelab.report import signals as signal_figures
 from tracelab.report.figures import NS_PER_S, esc, message_label
 from tracelab.wording import counted
 
@@ -366,6 +367,7 @@ def build_figures(data: ReportData, load_limit: float) -> dict[str, tuple[go.Fig
         "fig-counters": (figures.counters_figure(data.counters, data.states, t0, t1, data.marks),
                          True),
     }
+    built.update(signal_figures.build(data.signals, t0, t1, data.marks, data.losses))
     figures.align_time_axes([fig for fig, time in built.values() if time])
     return built
 
@@ -470,6 +472,8 @@ def render(data: ReportData, load_limit: float = 0.5, plotly_src: str | None = N
         "<h3>error events by type</h3>" + div("fig-errors") +
         "<h3>TEC and REC per node</h3>" + div("fig-counters") +
         f'<p class="note">{counters_note}</p></section>',
+        (signal_figures.section_html(data.signals, div, figures.window_label)
+         if data.signals is not None else ""),
         quality_section(data),
         f'<footer id="caution"><p><b>Caution.</b> {CAUTION}</p>'
         f"<p>Written by tracelab {esc(__version__)}.</p></footer>",
