@@ -142,10 +142,14 @@ MALFORMED = [
 ]
 
 
-def test_malformed_rows_are_named_and_accounted(tmp_path: Path) -> None:
+@pytest.mark.parametrize("path", ["polars reader", "general"])
+def test_malformed_rows_are_named_and_accounted(tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
+                                                path: str) -> None:
+    if path == "general":  # blocks with quotes or bad UTF-8 take this path; same results
+        monkeypatch.setattr("tracelab.inputs.convert._rows_fast", lambda *a: None)
     good = [["0.5", "100", "0011223344556677", "8", "0"], ["0.75", "1ABCDEF", "", "0", "1"]]
     rows = [["time", "id", "data", "dlc", "fd"], good[0], *[r for r, _ in MALFORMED], [],
-            good[1]]
+            ["   "], good[1]]
     table = _write_table(tmp_path / "bad.csv", rows)
     log = tmp_path / "bad.frames"
     opts = ConvertOptions(buses=(parse_bus_option("A,nominal=500000"),),
@@ -156,9 +160,11 @@ def test_malformed_rows_are_named_and_accounted(tmp_path: Path) -> None:
     n_lines = len(rows)
     assert result.lines == n_lines
     assert result.lines == result.converted + result.skipped + result.rejected
-    assert (result.converted, result.skipped, result.rejected) == (2, 2, len(MALFORMED))
+    assert (result.converted, result.skipped, result.rejected) == (2, 3, len(MALFORMED))
     assert result.first_rejects == [(3 + i, reason) for i, (_, reason) in
                                     enumerate(MALFORMED[:5])]
+    # 0.75 s relative; fd=1 with no data: CAN FD, DLC 0
+    assert _records(log)[1] == "750000000\tA\tframe\t01ABCDEF\txf\t0\t-"
     manifest = ingest_strict([log], tmp_path / "ds")
     assert manifest["frames"].to_list() == [2]  # the table's valid rows, nothing else
 
