@@ -19,6 +19,7 @@ Rules (docs/convert.md):
 
 from __future__ import annotations
 
+import io
 import os
 import re
 from collections.abc import Callable, Iterator
@@ -491,7 +492,9 @@ class _Output:
     def write(self, lines: pl.Series) -> None:
         assert self.out is not None
         if len(lines):
-            self.out.write((lines.str.join("\n").item() + "\n").encode("utf-8"))
+            buffer = io.BytesIO()
+            lines.to_frame().write_csv(buffer, include_header=False, quote_style="never")
+            self.out.write(buffer.getbuffer())
 
     def commit(self) -> None:
         assert self.out is not None
@@ -578,8 +581,8 @@ def _header_in(block: bytes, delimiter: str) -> tuple[list[str], int, bytes] | N
     return _split_fields(text, delimiter), block.count(b"\n", 0, start) + 1, block[end + 1:]
 
 
-def _rows_fast(block: bytes, first_line: int, delimiter: str,
-               needed: int) -> tuple[pl.DataFrame, int] | None:
+def _rows_fast(block: bytes, first_line: int, delimiter: str, needed: int,
+               n_block_lines: int) -> tuple[pl.DataFrame, int] | None:
     """(rows as _fields gives them, blank lines skipped) by polars' CSV reader, for blocks
     without quotes; None sends the block to the general path (quotes, bad UTF-8, or a row
     count that does not match the line count)."""
@@ -590,7 +593,7 @@ def _rows_fast(block: bytes, first_line: int, delimiter: str,
     except UnicodeDecodeError:
         return None
     body = block.replace(b"\r\n", b"\n") if b"\r" in block else block
-    n_lines = _line_count(body)
+    n_lines = _line_count(body) if body is not block else n_block_lines
     names = [f"f{i}" for i in range(needed)]
     try:
         rows = pl.read_csv(body, has_header=False, separator=delimiter, quote_char=None,
@@ -633,64 +636,107 @@ def _rows_general(block: bytes, first_line: int, delimiter: str,
     return _fields(lines.filter(~blank), delimiter, needed), int(blank.sum())
 
 
+#: Blocks checked at the same time (polars releases the GIL; two cores on the target box).
+WORKERS = 2
+
+
+@dataclass
+class _Checked:
+    good: pl.Series  # frame lines
+    bad: pl.DataFrame  # line, reason
+    skipped: int
+    done_bytes: int
+
+
+def _check_block(block: bytes, first_line: int, idx: dict[str, int], opts: ConvertOptions,
+                 keys: dict[str, tuple[str, bool]], state: dict[str, int | bool | None],
+                 done_bytes: int) -> _Checked:
+    """Rows of one block -> frame lines and rejects; reads ``state`` (decides the time mode
+    when it is still open, which only the first block does, synchronously)."""
+    needed = max(idx.values()) + 1
+    fast = _rows_fast(block, first_line, opts.delimiter, needed, _line_count(block))
+    rows, skipped = fast if fast is not None else _rows_general(
+        block, first_line, opts.delimiter, needed)
+    if state["epoch"] is None:
+        _decide_time_mode(rows, idx, TIME_UNIT_EXPONENT[opts.time_unit], state)
+    origin = state["origin"]
+    checked = _checked(rows, idx, opts, keys, origin if isinstance(origin, int) else None,
+                       bool(state["epoch"]))
+    good = checked.filter(pl.col("reason").is_null())
+    return _Checked(frame_lines(good) if good.height else pl.Series("line", [], pl.String),
+                    checked.filter(pl.col("reason").is_not_null()).select("line", "reason"),
+                    skipped, done_bytes)
+
+
 def _convert_one(table: Path, opts: ConvertOptions, keys: dict[str, tuple[str, bool]],
                  output_log: _Output, state: dict[str, int | bool | None],
                  advance: Callable[[int], None], block_bytes: int) -> TableSummary:
+    """Blocks are read in order, checked by up to WORKERS threads and consumed in order, so
+    rejects, --strict and the output keep the table's order."""
+    from collections import deque
+    from concurrent.futures import Future, ThreadPoolExecutor
+
     result = TableSummary(path=str(table))
     stream, raw = open_log(table)
     idx: dict[str, int] | None = None if opts.header else _resolve_columns(table, None,
                                                                           opts.columns)
-    exponent = TIME_UNIT_EXPONENT[opts.time_unit]
     line_no = 0
     position = 0
-    try:
-        for block in _blocks(stream, block_bytes):
-            first_line = line_no + 1
-            n_lines = _line_count(block)
-            line_no += n_lines
-            result.lines += n_lines
-            if idx is None:  # the header row: the first line that is not blank
-                found = _header_in(block, opts.delimiter)
-                if found is None:
-                    result.skipped += n_lines
-                    continue
-                head, upto, block = found
-                idx = _resolve_columns(table, head, opts.columns)
-                result.skipped += upto
-                first_line += upto
-                if not block:
-                    continue
-            needed = max(idx.values()) + 1
-            fast = _rows_fast(block, first_line, opts.delimiter, needed)
-            rows, skipped = fast if fast is not None else _rows_general(
-                block, first_line, opts.delimiter, needed)
-            result.skipped += skipped
-            if state["epoch"] is None:
-                _decide_time_mode(rows, idx, exponent, state)
-            origin = state["origin"]
-            checked = _checked(rows, idx, opts, keys, origin if isinstance(origin, int) else None,
-                               bool(state["epoch"]))
-            bad = checked.filter(pl.col("reason").is_not_null())
-            if bad.height:
-                if opts.strict:
-                    raise LogFormatError(str(table), int(bad["line"][0]), str(bad["reason"][0]))
-                result.rejected += bad.height
-                room = SHOWN_REJECTS - len(result.first_rejects)
-                result.first_rejects += list(zip(bad["line"].head(room).to_list(),
-                                                 bad["reason"].head(room).to_list(),
-                                                 strict=True))
-            good = checked.filter(pl.col("reason").is_null())
-            if output_log.out is None and good.height:
+
+    def consume(done: _Checked) -> None:
+        nonlocal position
+        result.skipped += done.skipped
+        bad = done.bad
+        if bad.height:
+            if opts.strict:
+                raise LogFormatError(str(table), int(bad["line"][0]), str(bad["reason"][0]))
+            result.rejected += bad.height
+            room = SHOWN_REJECTS - len(result.first_rejects)
+            result.first_rejects += list(zip(bad["line"].head(room).to_list(),
+                                             bad["reason"].head(room).to_list(), strict=True))
+        if len(done.good):
+            if output_log.out is None:
                 origin = state["origin"]
                 output_log.open(wall_time(EPOCH, origin) if state["epoch"]
                                 and isinstance(origin, int) else opts.origin)
-            if good.height:
-                output_log.write(frame_lines(good))
-            result.converted += good.height
-            now = raw.tell()
-            advance(now - position)
-            position = now
+            output_log.write(done.good)
+        result.converted += len(done.good)
+        advance(done.done_bytes - position)
+        position = done.done_bytes
+
+    pending: deque[Future[_Checked]] = deque()
+    try:
+        with ThreadPoolExecutor(WORKERS, thread_name_prefix="tracelab-convert") as pool:
+            for block in _blocks(stream, block_bytes):
+                first_line = line_no + 1
+                n_lines = _line_count(block)
+                line_no += n_lines
+                result.lines += n_lines
+                if idx is None:  # the header row: the first line that is not blank
+                    found = _header_in(block, opts.delimiter)
+                    if found is None:
+                        result.skipped += n_lines
+                        continue
+                    head, upto, block = found
+                    idx = _resolve_columns(table, head, opts.columns)
+                    result.skipped += upto
+                    first_line += upto
+                    if not block:
+                        continue
+                if state["epoch"] is None:  # decides the time mode: before any other block
+                    while pending:
+                        consume(pending.popleft().result())
+                    consume(_check_block(block, first_line, idx, opts, keys, state, raw.tell()))
+                    continue
+                pending.append(pool.submit(_check_block, block, first_line, idx, opts, keys,
+                                           state, raw.tell()))
+                while len(pending) > WORKERS:
+                    consume(pending.popleft().result())
+            while pending:
+                consume(pending.popleft().result())
     finally:
+        for future in pending:
+            future.cancel()
         stream.close()
         raw.close()
     return result
