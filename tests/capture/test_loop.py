@@ -269,3 +269,23 @@ def test_empty_capture_is_still_a_valid_log(tmp_path: Path) -> None:
     manifest = ingest_strict([log], tmp_path / "ds")
     assert manifest["frames"].to_list() == [0]
     assert pl.read_parquet(tmp_path / "ds" / "manifest.parquet")["origin"].null_count() == 0
+
+
+def test_live_line_names_rates_errors_losses_and_part(capsys: Any) -> None:
+    from tracelab.inputs.capture import _LiveLine, _Stats
+
+    sources = [Source("can0", "P", None), Source("can1", "C", None)]  # type: ignore[arg-type]
+    stats = _Stats(["P", "C"])
+    live = _LiveLine(True, sources)
+    live.last -= 2.0  # two seconds have passed
+    stats.frames.update(P=2000, C=500)
+    stats.errors, stats.losses, stats.dropped = 3, 1, 17
+    live.draw(stats, Path("night-p0002.frames.zst"))
+    live.end()
+    err = capsys.readouterr().err
+    assert "can0 1,000/s" in err and "can1 250/s" in err  # derived: frames / 2 s
+    assert "errors 3" in err and "losses 1 (17 dropped)" in err
+    assert "part night-p0002.frames.zst" in err
+    quiet = _LiveLine(False, sources)
+    quiet.draw(stats, None, force=True)
+    assert capsys.readouterr().err == ""
