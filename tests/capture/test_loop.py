@@ -289,3 +289,24 @@ def test_live_line_names_rates_errors_losses_and_part(capsys: Any) -> None:
     quiet = _LiveLine(False, sources)
     quiet.draw(stats, None, force=True)
     assert capsys.readouterr().err == ""
+
+
+def test_a_write_failure_stops_the_capture_with_one_error(tmp_path: Path,
+                                                          monkeypatch: Any) -> None:
+    import pytest
+
+    from tracelab.errors import StorageError
+    from tracelab.inputs import rotation
+
+    def full(self: Any, now_mono: float | None = None) -> None:
+        raise OSError(28, "No space left on device")
+
+    send, recv = _pair()
+    for k in range(50):
+        send.send(classic(0x123, bytes([k])))
+    monkeypatch.setattr(rotation.PartLog, "flush", full)
+    stop = threading.Event()
+    with pytest.raises(StorageError, match="No space left on device"):
+        run_capture([Source("can0", "P", Injecting(recv))], tmp_path / "full.frames",
+                    [BusDecl("P", 500000)], META, quiet=True, stop=stop, handle_signals=False,
+                    flush_every_s=0.0, reorder_ns=1_000_000)

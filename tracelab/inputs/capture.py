@@ -25,7 +25,7 @@ from pathlib import Path
 from types import FrameType
 from typing import Any, Protocol
 
-from tracelab.errors import UsageError, did_you_mean
+from tracelab.errors import StorageError, UsageError, did_you_mean
 from tracelab.format.grammar import wall_time
 from tracelab.format.writer import (
     BusDecl,
@@ -87,6 +87,7 @@ class CaptureSummary:
     origin: str | None = None
     notes: list[str] = field(default_factory=list)
     stopped_by: str = "end"
+    timestamps: str = "kernel"
 
     def describe(self) -> str:
         frames = ", ".join(f"{bus} {n:,}" for bus, n in self.frames.items()) or "none"
@@ -103,6 +104,9 @@ class CaptureSummary:
         if self.clamped:
             out.append(f"{self.clamped:,} record(s) stamped before the origin were written at "
                        "t=0 (raise --reorder)")
+        if self.timestamps == "hardware":
+            out.append(f"{self.hardware_stamped:,} of {sum(self.frames.values()):,} frame(s) "
+                       "carried a hardware timestamp (the others: the kernel's)")
         out += self.notes
         return "\n".join(out)
 
@@ -329,20 +333,29 @@ def run_capture(sources: list[Source], output: Path, buses: list[BusDecl],
     receivers = [threading.Thread(target=_receive, args=(s, node, inbox, stop, stats),
                                   name=f"tracelab-capture-{s.iface}", daemon=True)
                  for s in sources]
-    writer = threading.Thread(target=_write_loop, name="tracelab-capture-writer", daemon=True,
-                              args=(log, sources, inbox, reorder_ns, stats, summary, live,
-                                    start_ns))
+    failure: list[BaseException] = []
+
+    def write() -> None:
+        try:
+            _write_loop(log, sources, inbox, reorder_ns, stats, summary, live, start_ns)
+        except BaseException as error:  # reported by the main thread below
+            failure.append(error)
+            stop.set()
+
+    writer = threading.Thread(target=write, name="tracelab-capture-writer", daemon=True)
     try:
         for thread in (*receivers, writer):
             thread.start()
         deadline = None if duration_ns is None else time.monotonic() + duration_ns / 1e9
-        while not stop.is_set() and any(r.is_alive() for r in receivers):
+        while not stop.is_set() and writer.is_alive() and any(r.is_alive() for r in receivers):
             remaining = 0.2 if deadline is None else min(0.2, deadline - time.monotonic())
             if remaining <= 0:
                 break
             stop.wait(remaining)
         if not stop.is_set() and not any(r.is_alive() for r in receivers):
             stopped_by[0] = "end of input"
+        if failure:
+            stopped_by[0] = "a write failure"
         stop.set()
         for thread in receivers:
             thread.join()
@@ -353,6 +366,13 @@ def run_capture(sources: list[Source], output: Path, buses: list[BusDecl],
             signal.signal(number, handler)
         for source in sources:
             source.sock.close()
+    if failure:
+        error = failure[0]
+        if isinstance(error, OSError):
+            where = log.current or output
+            raise StorageError(f"{where}: cannot write the log ({error.strerror or error}); "
+                             f"{len(log.paths)} part(s) written") from error
+        raise error
     summary.parts = list(log.paths)
     summary.frames = dict(stats.frames)
     summary.dropped = stats.dropped
@@ -361,6 +381,7 @@ def run_capture(sources: list[Source], output: Path, buses: list[BusDecl],
     summary.hardware_stamped = stats.hardware
     summary.origin = log.origin
     summary.stopped_by = stopped_by[0]
+    summary.timestamps = "hardware" if any(s.hardware for s in sources) else "kernel"
     return summary
 
 

@@ -31,7 +31,7 @@ import numpy as np
 import polars as pl
 import pyarrow as pa
 
-from tracelab.errors import LogFormatError, UsageError, did_you_mean
+from tracelab.errors import LogFormatError, StorageError, UsageError, did_you_mean
 from tracelab.format.compression import open_log, open_log_for_writing
 from tracelab.format.grammar import (
     FD_PAYLOAD_BYTES,
@@ -484,22 +484,34 @@ class _Output:
         self.buses, self.meta = buses, meta
         self.out: BinaryIO | None = None
 
+    def _failed(self, error: OSError) -> StorageError:
+        return StorageError(f"{self.path}: cannot write the log ({error.strerror or error})")
+
     def open(self, origin: str | None) -> None:
         header = LogHeader(buses=self.buses, origin=origin, meta=self.meta)
-        self.out = open_log_for_writing(self.tmp)
-        self.out.write(("\n".join(header.lines()) + "\n").encode("utf-8"))
+        try:
+            self.out = open_log_for_writing(self.tmp)
+            self.out.write(("\n".join(header.lines()) + "\n").encode("utf-8"))
+        except OSError as error:
+            raise self._failed(error) from error
 
     def write(self, lines: pl.Series) -> None:
         assert self.out is not None
         if len(lines):
             buffer = io.BytesIO()
             lines.to_frame().write_csv(buffer, include_header=False, quote_style="never")
-            self.out.write(buffer.getbuffer())
+            try:
+                self.out.write(buffer.getbuffer())
+            except OSError as error:
+                raise self._failed(error) from error
 
     def commit(self) -> None:
         assert self.out is not None
-        self.out.close()
-        os.replace(self.tmp, self.path)
+        try:
+            self.out.close()
+            os.replace(self.tmp, self.path)
+        except OSError as error:
+            raise self._failed(error) from error
 
     def discard(self) -> None:
         if self.out is not None:
