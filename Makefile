@@ -7,7 +7,7 @@ BIN := $(VENV)/bin
 RUNTIME := $(VENV)/.installed-runtime
 STAMP := $(VENV)/.installed
 
-.PHONY: demo test lint typecheck unit browser-deps bench clean
+.PHONY: demo test lint typecheck unit browser-deps bench mutation clean
 
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
@@ -45,6 +45,13 @@ test: lint typecheck browser-deps unit
 bench: $(STAMP)
 	$(BIN)/python bench/physics.py
 	$(BIN)/python bench/ingest.py --lines 20000000
+
+# Mutation testing (not part of `make test`; see docs/testing.md for scores and timings):
+# mutmut over physics/, analyses/, forensics/ in scratch copies, then the SQL probe.
+# MUTATION_ARGS="--target physics --sample 200" narrows it.
+mutation: $(STAMP)
+	$(BIN)/pip install --quiet -e '.[test,mutation]'
+	$(BIN)/python -m tools.mutation $(MUTATION_ARGS)
 
 clean:
 	rm -rf $(VENV) demo_out .pytest_cache .mypy_cache .ruff_cache

@@ -89,34 +89,46 @@ def _tests_for(stem: str) -> list[str]:
     return []
 
 
-def run(mutants: list[Mutant]) -> tuple[list[Mutant], list[Mutant]]:
+def _child(path: str, tests: list[str]) -> int:
+    """In a fresh interpreter: serve one mutated SQL file and run the tests once."""
     import pytest
 
     import tracelab.analyses as analyses
 
+    mutated = Path(path)
+    name, text = mutated.stem, mutated.read_text("utf-8")
     original = analyses.sql_text
+
+    def patched(wanted: str) -> str:
+        return text if wanted == name else original(wanted)
+
+    analyses.sql_text = patched  # type: ignore[assignment]
+    return int(pytest.main([*tests, "-x", "-q", "-p", "no:cacheprovider", "--no-header",
+                            "-m", "not slow", "-k", "not cli_load", "--tb=no"]))
+
+
+def run(mutants: list[Mutant]) -> tuple[list[Mutant], list[Mutant]]:
+    """Each mutant in its own interpreter (pytest.main in one process leaks DuckDB threads)."""
+    import subprocess
+    import tempfile
+
     killed: list[Mutant] = []
     survived: list[Mutant] = []
-    for i, mut in enumerate(mutants):
-        tests = _tests_for(mut.file)
-        if not tests:
-            continue
-
-        def patched(name: str, _mut: Mutant = mut) -> str:
-            if name == _mut.file:
-                return _mut.text
-            return original(name)
-
-        analyses.sql_text = patched  # type: ignore[assignment]
-        try:
-            code = pytest.main([*tests, "-x", "-q", "-p", "no:cacheprovider", "--no-header",
-                                "-o", "addopts=-m 'not slow'", "--tb=no", "-W", "ignore"],
-                               plugins=[])
-        finally:
-            analyses.sql_text = original
-        (survived if code == 0 else killed).append(mut)
-        print(f"[{i + 1}/{len(mutants)}] {'SURVIVED' if code == 0 else 'killed'} "
-              f"{mut.label()}", file=sys.stderr, flush=True)
+    with tempfile.TemporaryDirectory() as tmp:
+        for i, mut in enumerate(mutants):
+            tests = _tests_for(mut.file)
+            if not tests:
+                continue
+            path = Path(tmp) / f"{mut.file}.sql"
+            path.write_text(mut.text, "utf-8")
+            code = subprocess.run(
+                [sys.executable, "-c", "import sys; from tools.mutate_sql import _child; "
+                 "sys.exit(_child(sys.argv[1], sys.argv[2:]))", str(path), *tests],
+                cwd=ROOT, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+                check=False).returncode
+            (survived if code == 0 else killed).append(mut)
+            print(f"[{i + 1}/{len(mutants)}] {'SURVIVED' if code == 0 else 'killed'} "
+                  f"{mut.label()}", file=sys.stderr, flush=True)
     return killed, survived
 
 
@@ -124,6 +136,8 @@ def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--only", default="", help="SQL file name prefix, e.g. load")
     ap.add_argument("--list", action="store_true", help="list the mutants and stop")
+    ap.add_argument("--sample", type=int, default=0, help="a seeded random sample of N")
+    ap.add_argument("--seed", type=int, default=17)
     args = ap.parse_args(argv)
     files = sorted(p for p in SQL_DIR.glob("*.sql") if p.stem.startswith(args.only))
     mutants = [m for f in files for m in mutants_of(f) if _tests_for(f.stem)]
@@ -133,6 +147,11 @@ def main(argv: list[str] | None = None) -> int:
         print(f"{len(mutants)} mutants")
         return 0
     t0 = time.monotonic()
+    if args.sample:
+        import random
+
+        mutants = sorted(random.Random(args.seed).sample(mutants, min(args.sample, len(mutants))),
+                         key=lambda m: (m.file, m.line))
     killed, survived = run(mutants)
     total = len(killed) + len(survived)
     print(f"sql: {len(killed)}/{total} killed ({100 * len(killed) / max(total, 1):.1f} %) "

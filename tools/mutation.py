@@ -86,23 +86,32 @@ def _status(work: Path) -> dict[str, str]:
     return status
 
 
-def run_target(target: str, work: Path, children: int, sample: int = 0, seed: int = 17
-               ) -> dict[str, object]:
+#: one mutant per target, tested first to make mutmut generate all mutants and collect its
+#: test statistics before a sample is drawn
+PROBE = {"physics": "tracelab.physics.confinement.x_recovery_bits__mutmut_1",
+         "analyses": "tracelab.analyses.load.x_check_window__mutmut_1",
+         "forensics": "tracelab.forensics.*__mutmut_1"}
+
+
+def run_target(target: str, work: Path, children: int, sample: int = 0, seed: int = 17,
+               reuse: bool = False) -> dict[str, object]:
     """Run mutmut on one target; with ``sample`` > 0 only a seeded random sample of that many
-    mutants (all are generated; the score is then an estimate)."""
+    mutants (all are generated; the score is then an estimate). ``reuse`` keeps an earlier
+    scratch copy and its results (mutmut skips mutants it has already tested)."""
     bindir = Path(sys.executable).parent
-    work = _scratch(target, work)
+    if not (reuse and (work / "mutants").exists()):
+        work = _scratch(target, work)
     t0 = time.monotonic()
     mutmut = [str(bindir / "mutmut"), "run", "--max-children", str(children)]
     names: list[str] = []
     if sample:
-        # generate every mutant and collect the test statistics, testing a single mutant
-        subprocess.run([*mutmut, f"tracelab.{target}.*__mutmut_1"], cwd=work, check=False,
-                       stdout=subprocess.DEVNULL)
+        if not (work / "mutants" / "mutmut-stats.json").exists():
+            subprocess.run([*mutmut, PROBE[target]], cwd=work, check=False,
+                           stdout=subprocess.DEVNULL)
         every = sorted(_status(work))
         names = sorted(random.Random(seed).sample(every, min(sample, len(every))))
-    for a in range(0, max(len(names), 1), 60):  # keep the command line short
-        subprocess.run([*mutmut, *names[a:a + 60]], cwd=work, check=False,
+    for a in range(0, max(len(names), 1), 200):  # keep the command line short
+        subprocess.run([*mutmut, *names[a:a + 200]], cwd=work, check=False,
                        stdout=subprocess.DEVNULL)
     elapsed = time.monotonic() - t0
     status = _status(work)
@@ -122,6 +131,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--target", choices=[*TARGETS, "sql", "all"], default="all")
     ap.add_argument("--work", type=Path, default=Path("/tmp/tracelab-mutation"))
     ap.add_argument("--children", type=int, default=2)
+    ap.add_argument("--reuse", action="store_true", help="keep the scratch copy and results")
     ap.add_argument("--sample", type=int, default=0,
                     help="test only a seeded random sample of this many mutants per target")
     args = ap.parse_args(argv)
@@ -132,7 +142,8 @@ def main(argv: list[str] | None = None) -> int:
 
             mutate_sql.main([])
             continue
-        r = run_target(name, args.work / name, args.children, args.sample)
+        r = run_target(name, args.work / name, args.children, args.sample,
+                       reuse=args.reuse)
         print(f"{name}: {r['killed']}/{r['total']} killed ({100 * float(r['score']):.1f} %) "
               f"in {r['seconds']} s; {r['counts']}")
         listing = args.work / f"{name}-survivors.txt"

@@ -114,6 +114,7 @@ def test_negative_starts_and_exact_edges(bps: int, window_ns: int) -> None:
         (window_ns - d, d, 111, False, False),      # ends exactly on an edge: no spill
         (2 * window_ns - 1, d, 111, False, False),  # starts 1 ns before an edge
         (3 * window_ns, d, 111, True, False),       # starts exactly on an edge
+        (5 * window_ns - d + 1, d, 111, False, False),  # the last: 1 ns into the next window
     ]
     errors = [(-3 * bit_ns, "crc", False), (2 * window_ns + 2 * bit_ns, "eof", True)]
     _check(frames, errors, bit_ns, window_ns)

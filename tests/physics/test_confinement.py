@@ -93,8 +93,12 @@ def test_rec_above_127_returns_into_119_127_after_one_good_reception(after: int)
 
 
 def test_rec_out_of_range_is_refused() -> None:
-    with pytest.raises(ValueError):
-        ConfinementConfig(rec_after_passive_reception=118)
+    # from memory (rule h): the value lies in 119..127, both ends allowed
+    for bad in (118, 128):
+        with pytest.raises(ValueError):
+            ConfinementConfig(rec_after_passive_reception=bad)
+    for good in (119, 127):
+        assert ConfinementConfig(rec_after_passive_reception=good).rec_after_passive_reception == good
 
 
 def test_bus_off_recovery_128_x_11_bits_is_2816_us_at_500k() -> None:
