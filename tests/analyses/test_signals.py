@@ -250,3 +250,28 @@ def test_bad_options(dataset: tuple[Path, Path]) -> None:
     with pytest.raises(UsageError, match="later than"):
         workflow.signals(ds, cat, from_="2s", to="1s")
     assert main(["signals", str(ds), "--catalog", str(cat), "--run", "nope"]) == 2
+
+
+def test_counter_wrap_is_explained_by_the_gap() -> None:
+    from tracelab.analyses.signals import SIGNAL_SCHEMA, counter_checks
+    from tracelab.network.catalog import SignalSpec
+
+    spec = SignalSpec("alive", 0, 4, 8, role="counter")
+    # counters 0 1 2, then 15 frames missing (counter back at 2 + 16 = 2: delta 0), then
+    # 16 frames missing (delta 1 = step), then a plain repeat with no gap
+    t = [0, 10, 20, 180, 350, 360]
+    raw = [0, 1, 2, 2, 3, 3]
+    decoded = pl.DataFrame({
+        "run": ["r"] * 6, "bus": ["P"] * 6, "t_ns": t, "id": [0x310] * 6, "ext": [False] * 6,
+        "message": ["m"] * 6, "signal": ["alive"] * 6, "raw": raw, "value": [float(r) for r in raw],
+        "unit": [""] * 6, "file": ["f"] * 6, "line": list(range(1, 7))}, schema=SIGNAL_SCHEMA)
+    gaps = pl.DataFrame({"run": ["r", "r"], "bus": ["P", "P"], "id": [0x310, 0x310],
+                         "ext": [False, False], "from_ns": [20, 180], "to_ns": [180, 350],
+                         "missing": [15, 16], "in_loss": [False, False]},
+                        schema_overrides={"id": pl.UInt32})
+    losses = pl.DataFrame(schema={"run": pl.String, "bus": pl.String, "t_ns": pl.Int64,
+                                  "until_ns": pl.Int64})
+    found = counter_checks(decoded, {("m", "alive"): spec}, gaps, losses)
+    # derived: a 4-bit counter wraps every 16 releases; 15 + 1 = 16 = 0 and 16 + 1 = 1 mod 16
+    assert found.select("t_ns", "kind", "count").rows() == [
+        (180, "counter-lost", 15), (350, "counter-lost", 16), (360, "counter-repeat", None)]

@@ -177,3 +177,10 @@ def test_sine_and_constant_profiles() -> None:
     t = np.array([0, 1_000_000_000, 3_000_000_000])
     # source: sin(0) = 0, sin(pi/2) = 1, sin(3 pi / 2) = -1
     assert np.allclose(profile_values(profile, t, np.random.default_rng(0)), [5.0, 7.0, 3.0])
+    spec = SignalSpec("s", 0, 8, 1, profile={"kind": "curve", "at": ["1s", "3s"],
+                                              "values": [10.0, 30.0]})
+    curve = load_profile("x", "here", spec)
+    # derived: flat 10 before 1 s, halfway (20) at 2 s, flat 30 after 3 s
+    got = profile_values(curve, np.array([0, 2_000_000_000, 9_000_000_000]),
+                         np.random.default_rng(0))
+    assert got.tolist() == [10.0, 20.0, 30.0]

@@ -262,7 +262,14 @@ def _segments(frame: pl.DataFrame, flag: pl.Expr) -> pl.Expr:
 def counter_checks(decoded: pl.DataFrame, specs: dict[tuple[str, str], SignalSpec],
                    gaps: pl.DataFrame, losses: pl.DataFrame) -> pl.DataFrame:
     """Counter jumps and repeats, each joined with the timing gap that ends at the same
-    frame and with the logger losses overlapping the interval before it."""
+    frame and with the logger losses overlapping the interval before it.
+
+    A gap of m missing frames explains a counter advance of (m + 1) * step modulo
+    2**length; then the finding counts m releases (so a long gap that wraps the counter is
+    still counted right, and a wrap to the same value is no repeat)."""
+    gap_keys = gaps.select("run", "bus", "id", "ext", pl.col("to_ns").alias("t_ns"),
+                           pl.col("missing").cast(pl.Int64),
+                           pl.col("in_loss").alias("gap_in_loss"))
     found = []
     for (message, name), spec in specs.items():  # counters: a handful
         if spec.role != "counter":
@@ -276,33 +283,35 @@ def counter_checks(decoded: pl.DataFrame, specs: dict[tuple[str, str], SignalSpe
         part = part.with_columns(
             pl.col("t_ns").shift(1).over("run").alias("prev_ns"),
             ((raw - raw.shift(1).over("run")) % modulus).cast(pl.Int64).alias("delta"),
-            ((raw.shift(1).over("run") + step) % modulus).cast(pl.Int64).alias("expected"))
-        odd = part.filter(pl.col("delta").is_not_null() & (pl.col("delta") != step))
+            ((raw.shift(1).over("run") + step) % modulus).cast(pl.Int64).alias("expected"),
+        ).filter(pl.col("delta").is_not_null())
+        part = part.join(gap_keys, on=["run", "bus", "id", "ext", "t_ns"], how="left")
+        explained = (((pl.col("missing").cast(pl.Int128) + 1) * step) % modulus
+                     == pl.col("delta")).fill_null(False)
+        odd = part.with_columns(explained.alias("explained")).filter(
+            (pl.col("delta") != step) | pl.col("explained"))
         if odd.is_empty():
             continue
         odd = odd.with_columns(
-            pl.when(pl.col("delta") % step == 0).then(pl.col("delta") // step - 1)
-            .alias("count"))
+            pl.when(pl.col("explained")).then(pl.col("missing"))
+            .when((pl.col("delta") % step == 0) & (pl.col("delta") > 0))
+            .then(pl.col("delta") // step - 1).alias("count"))
         found.append(odd.select("run", "bus", "id", "ext", "message", "signal", "t_ns",
-                                "prev_ns", "raw", "expected", "delta", "count", "file",
-                                "line"))
+                                "prev_ns", "raw", "expected", "delta", "count", "missing",
+                                "gap_in_loss", "explained", "file", "line"))
     if not found:
         return CHECK_SCHEMA.to_frame()
-    odd = pl.concat(found)
-    gap_keys = gaps.select("run", "bus", "id", "ext", pl.col("to_ns").alias("t_ns"),
-                           "missing", pl.col("in_loss").alias("gap_in_loss"))
-    odd = odd.join(gap_keys, on=["run", "bus", "id", "ext", "t_ns"], how="left")
-    odd = _join_losses(odd.sort("t_ns"), losses)
-    kind = (pl.when(pl.col("delta") == 0).then(pl.lit("counter-repeat"))
+    odd = _join_losses(pl.concat(found).sort("t_ns"), losses)
+    gap = pl.col("missing").is_not_null()
+    kind = (pl.when((pl.col("delta") == 0) & ~pl.col("explained"))
+            .then(pl.lit("counter-repeat"))
             .when(pl.col("gap_in_loss").fill_null(False) | pl.col("loss_overlap"))
             .then(pl.lit("counter-in-loss"))
-            .when(pl.col("missing").is_not_null()).then(pl.lit("counter-lost"))
+            .when(gap).then(pl.lit("counter-lost"))
             .otherwise(pl.lit("counter-skip")))
-    odd = odd.with_columns(kind.alias("kind"))
     return odd.with_columns(
-        pl.col("prev_ns").alias("until_ns"),
-        pl.when(pl.col("kind") == "counter-repeat").then(pl.lit(None, pl.Int64))
-        .otherwise(pl.col("count")).alias("count"),
+        kind.alias("kind"), pl.col("prev_ns").alias("until_ns"),
+    ).with_columns(
         pl.col("kind").replace_strict(CAUSES, default="").alias("cause"),
     ).select(CHECK_COLUMNS).cast(dict(CHECK_SCHEMA))  # type: ignore[arg-type]
 

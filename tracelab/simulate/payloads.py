@@ -8,6 +8,7 @@ Everything is vectorised over the releases of one message (tracelab.network.payl
     profile = { kind = "constant", value = 3 }
     profile = { kind = "ramp", from = 20.0, to = 90.0, start = "0s", end = "10m" }
     profile = { kind = "steps", at = ["0s", "2m"], values = [0, 60] }
+    profile = { kind = "curve", at = ["0s", "3m", "6m"], values = [40, 45, 98] }  # linear
     profile = { kind = "sine", mean = 50.0, amplitude = 10.0, period = "60s" }
     profile = { kind = "counter", skip_every = 500 }   # counters: the sender skips a value
     noise = 0.5                                       # any kind but counter: Gaussian sigma
@@ -29,6 +30,7 @@ PROFILE_KEYS: dict[str, tuple[str, ...]] = {
     "constant": ("value", "noise"),
     "ramp": ("from", "to", "start", "end", "noise"),
     "steps": ("at", "values", "noise"),
+    "curve": ("at", "values", "noise"),
     "sine": ("mean", "amplitude", "period", "noise"),
     "counter": ("skip_every",),
 }
@@ -100,15 +102,15 @@ def load_profile(path: str, where: str, spec: SignalSpec) -> Profile:
                        end=_num(path, where, raw, "to", None),
                        start_ns=duration_field(path, where, raw, "start") or 0,
                        end_ns=duration_field(path, where, raw, "end"), noise=noise)
-    if kind == "steps":
+    if kind in ("steps", "curve"):
         at, values = raw.get("at"), raw.get("values")
         if not isinstance(at, list) or not isinstance(values, list) or not at \
                 or len(at) != len(values):
-            raise CatalogError(path, where, "steps need at = [times] and values = [numbers] "
+            raise CatalogError(path, where, f"{kind} needs at = [times] and values = [numbers] "
                                "of the same length")
         times = [duration_field(path, where, {"at": a}, "at") or 0 for a in at]
         if times != sorted(times):
-            raise CatalogError(path, where, "steps: times in at must increase")
+            raise CatalogError(path, where, f"{kind}: times in at must increase")
         numbers = [_num(path, where, {"v": v}, "v", None) for v in values]
         return Profile(kind, at_ns=tuple(times), values=tuple(numbers), noise=noise)
     if kind == "sine":
@@ -139,6 +141,9 @@ def profile_values(profile: Profile, t_ns: np.ndarray, rng: np.random.Generator
         span = max(1.0, end - profile.start_ns)
         share = np.clip((t - profile.start_ns) / span, 0.0, 1.0)
         values = profile.start + share * (profile.end - profile.start)
+    elif profile.kind == "curve":  # piecewise linear, flat before the first / after the last
+        values = np.interp(t, np.asarray(profile.at_ns, dtype=np.float64),
+                           np.asarray(profile.values, dtype=np.float64))
     elif profile.kind == "steps":
         where = np.searchsorted(np.asarray(profile.at_ns), t_ns, side="right") - 1
         values = np.asarray(profile.values)[np.clip(where, 0, None)]
