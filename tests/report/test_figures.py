@@ -139,7 +139,7 @@ def test_counters_figure_draws_levels_state_bands_and_node_states() -> None:
     assert list(tec.y) == [8, 136, 264] and list(rec.y) == [0, 1, 2]
     assert tec.line.shape == "hv"
     levels = sorted({s.y0 for s in fig.layout.shapes if s.type == "line" and s.y0 == s.y1})
-    # source: ISO 11898-1 fault confinement: error-passive when a counter exceeds 127, bus-off
+    # from memory: ISO 11898-1 fault confinement: error-passive when a counter exceeds 127, bus-off
     # when TEC exceeds 255; the warning limit of 96 is the common controller choice
     # (common practice, no source).
     assert levels == [96, 128, 256]

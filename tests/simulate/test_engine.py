@@ -50,8 +50,8 @@ def tec_values(truth: NodeTruth) -> list[int]:
 
 
 def test_arbitration_key_facts() -> None:
-    # source: ISO 11898-1:2015 clause 10.4 / Bosch CAN 2.0 Part B section 3 (bitwise
-    # arbitration over ID, SRR, IDE, RTR; dominant 0 wins)
+    # from memory: ISO 11898-1 / Bosch CAN 2.0 Part B bitwise arbitration over ID, SRR,
+    # IDE, RTR, dominant 0 wins (clause and section numbers not checked here)
     assert arbitration_key(0x100, False, False) < arbitration_key(0x101, False, False)
     # base frame beats an extended frame with the same 11-bit prefix (IDE recessive)
     assert arbitration_key(0x123, False, False) < arbitration_key(0x123 << 18, True, False)
@@ -70,7 +70,7 @@ def test_lower_identifier_wins_simultaneous_release(tmp_path: Path) -> None:
     res = run(scenario(tmp_path, body, duration="5ms"))
     s = res.schedule
     sent = [(s.messages[r].id, s.messages[r].ext) for r in s.rank[res.release]]
-    # source: ISO 11898-1 arbitration (see test above). Extended 100 and 101 have the
+    # from memory: ISO 11898-1 arbitration (see test above). Extended 100 and 101 have the
     # 11-bit prefix 0; extended 04000000 has prefix 100 and loses to base 100.
     assert sent == [(0x100, True), (0x101, True), (0x100, False), (0x4000000, True),
                     (0x300, False)]

@@ -42,8 +42,9 @@ def test_frames_have_the_schema_and_exact_timing(tmp_path: Path) -> None:
     frames = open_dataset(tmp_path / "ds").table("frames").collect()
     assert frames.schema == schema.FRAMES
     p, s, c = frames.sort("line").to_dicts()
-    # source: issue 2 worked example (base id 0x000, DLC 0: 6 stuff bits, 53 bits with
-    # intermission; base id 0x7FF remote DLC 0: 50 bits); bit time = 1 / bit rate
+    # derived: the worked examples of docs/frame-physics.md (base id 0x000, DLC 0: 6 stuff
+    # bits, 53 bits with intermission; base id 0x7FF remote DLC 0: 50 bits), checked bit for
+    # bit in tests/physics/test_bitlength.py; bit time = 1 / bit rate
     assert (p["bits"], p["duration_ns"]) == (53, 53 * 2000)
     assert (s["bits"], s["duration_ns"]) == (50, 50 * 4000)
     # stamp=end: t_ns is the end of EOF, 3 intermission bits follow (DEVELOPERS.md)
