@@ -142,12 +142,16 @@ def test_fd_within_bounds(f: Frame) -> None:
 
 
 def test_fd_64_byte_bound_value() -> None:
-    # from memory of the Linux kernel's CAN FD length macros; derived: 712 bits for a base
-    # frame with 64 bytes at a single bit rate, an upper bound the worst payload approaches.
-    assert _fd_bounds(False, 64)[1] == 712
-    worst = max(bl.frame_bits_reference(0x7FF, False, False, True, False, False, 15, bytes([b]) * 64)[0]
-                for b in (0x00, 0xFF, 0x0F, 0xF0, 0x3C, 0x78, 0x1E))
-    assert 640 < worst <= 712
+    # from memory of the Linux kernel's CAN FD length macros; derived: a base frame with 64
+    # bytes at one bit rate has at most 22 + 512 + floor(533 / 4) + 33 + 12 = 712 bits
+    assert 22 + 512 + (22 + 512 - 1) // 4 + 33 + 12 == 712
+    from tests.oracles import frame_oracle as fo
+
+    for b in (0x00, 0xFF, 0x0F, 0xF0, 0x3C, 0x78, 0x1E, 0x83):
+        f = (0x7FF, False, False, True, False, False, 15, bytes([b]) * 64)
+        oracle = fo.build(*f).bits  # the independent builder, not the package
+        assert 640 < oracle <= 712
+        assert bl.frame_bits_reference(*f)[0] == oracle
 
 
 def test_fd_fixed_stuff_bits_and_crc_choice() -> None:
