@@ -272,6 +272,64 @@ def scenarios() -> list[Scenario]:
     return out
 
 
+def held_out(count: int = 30, seed: int = 2026) -> list[Scenario]:
+    """Scenarios drawn at random (fixed seed) after the verdict was tuned on scenarios():
+    kinds, nodes, rates, onsets, losses and conditions mixed. Their accuracy is reported
+    apart (condition ``held-out``)."""
+    import random
+
+    rng = random.Random(seed)
+    kinds = ("rx-noise", "tx-noise", "bus-noise", "isolated", "silent", "rx-burst", "loss-rx",
+             "loss-tx", "two")
+    out = []
+    for k in range(count):
+        kind = kinds[k % len(kinds)]
+        node = rng.choice(NODES)
+        other = rng.choice([n for n in NODES if n != node])
+        start_ms = rng.randrange(200, 1200, 10)
+        rate = round(rng.uniform(0.08, 0.45), 2)
+        fd, status = rng.random() < 0.35, rng.random() < 0.35
+        conds = ["held-out"] + (["fd"] if fd else []) + (["status"] if status else [])
+        faults: list[dict[str, Any]]
+        group = kind
+        if kind in ("rx-noise", "tx-noise"):
+            faults = [{"kind": kind, "node": node, "start": f"{start_ms}ms", "rate": rate}]
+            if rng.random() < 0.4:
+                faults[0]["rate"] = round(rate / 10, 3)
+                faults[0]["rate_end"] = rate
+                conds.append("ramp")
+        elif kind == "bus-noise":
+            faults = [{"kind": kind, "start": f"{start_ms}ms", "rate": round(rate / 2, 3)}]
+        elif kind in ("isolated", "silent"):
+            faults = [{"kind": kind, "node": node, "start": f"{start_ms}ms"}]
+            if rng.random() < 0.5:
+                faults[0]["end"] = f"{start_ms + rng.randrange(300, 1200, 10)}ms"
+        elif kind == "rx-burst":
+            group = "rx-noise"
+            conds.append("burst")
+            faults = [{"kind": "rx-noise", "node": node, "start": f"{start_ms}ms",
+                       "end": f"{start_ms + rng.randrange(60, 300, 10)}ms",
+                       "rate": round(rng.uniform(0.3, 0.8), 2)}]
+        elif kind in ("loss-rx", "loss-tx"):
+            group = "rx-noise" if kind == "loss-rx" else "tx-noise"
+            conds.append("loss")
+            lo = start_ms - rng.randrange(0, 100, 10)
+            faults = [{"kind": group, "node": node, "start": f"{start_ms}ms", "rate": rate},
+                      {"kind": "logger-loss", "start": f"{lo}ms",
+                       "end": f"{lo + rng.randrange(50, 400, 10)}ms",
+                       "rate": rng.choice([1.0, 0.5])}]
+        else:
+            group = "two-faults"
+            conds.append("two-faults")
+            first = rng.choice(["rx-noise", "tx-noise"])
+            faults = [{"kind": first, "node": node, "start": f"{start_ms}ms", "rate": rate},
+                      {"kind": "tx-noise", "node": other, "start": f"{start_ms + 1000}ms",
+                       "rate": min(0.6, rate * 2)}]
+        out.append(Scenario(f"ho{k:02d}-{kind}-{node}", group, faults, tuple(conds), fd=fd,
+                            status=status, seed=1000 + k, duration="3s"))
+    return out
+
+
 # --- running and scoring -------------------------------------------------------------------
 
 
@@ -462,7 +520,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--json", type=Path, help="write the per-verdict rows here")
     ap.add_argument("--keep", type=Path, help="keep the generated files in this directory")
     args = ap.parse_args(argv)
-    chosen = [s for s in scenarios() if (not args.fast or s.fast)
+    chosen = [s for s in scenarios() + held_out() if (not args.fast or s.fast)
               and (args.only is None or args.only in s.name)]
     work = args.keep or Path(tempfile.mkdtemp(prefix="tl-sweep-"))
     rows: list[dict[str, Any]] = []

@@ -224,6 +224,9 @@ def faults(
 
     with workflow.limits(memory, temp_dir):
         result = workflow.faults(dataset, catalog=catalog, run=run)
+    warning = result.catalog_warning()
+    if warning:
+        typer.echo(f"tracelab: warning: {warning}", err=True)
     _print_json(result.as_json()) if as_json else typer.echo(result.describe())
 
 

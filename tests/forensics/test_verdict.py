@@ -162,6 +162,9 @@ def test_catalog_that_does_not_know_the_bus_says_so() -> None:
     assert "check --catalog" in v["verdict"]
     assert v["catalog_match"]["logged_known"] == 0.0 and not v["catalog_match"]["ok"]
     assert "does not match" in v["cause"]["reason"]
+    warning = replay_faults(s.connect(), other).catalog_warning()
+    assert warning is not None and "0% of the logged identifiers" in warning
+    assert replay_faults(s.connect(), synth.catalog()).catalog_warning() is None
 
 
 def test_silences_from_the_timing_gaps() -> None:

@@ -53,6 +53,9 @@ ALTERNATIVE_RATIO = 0.2
 WINDOW_MIN_ERRORS = 8
 #: Errors in the run that marks a node's transmit-side onset (at least 60 % on its frames).
 SEGMENT_RUN = 30
+#: A window's receive-fault verdict counts only when its node was error-passive over at least
+#: this many frames there (otherwise it predicts nothing the whole-bus reading does not).
+PASSIVE_MIN_FRAMES = 20
 
 COUNTERS_SCHEMA = {"run": pl.String, "bus": pl.String, "node": pl.String, "t_ns": pl.Int64,
                    "tec": pl.Int32, "rec": pl.Int32, "state": pl.String, "cause": pl.String,
@@ -81,6 +84,20 @@ class FaultsResult:
 
     def describe(self) -> str:
         return describe_results(self.results)
+
+    def catalog_warning(self) -> str | None:
+        """One line when the catalog does not match the log on some bus (both figures)."""
+        bad = [r for r in self.results if not (r.get("catalog_match") or {}).get("ok", True)]
+        if not bad:
+            return None
+        worst = min(bad, key=lambda r: r["catalog_match"]["logged_known"])
+        m = worst["catalog_match"]
+        where = ", ".join(f"{r['run']}/{r['bus']}" for r in bad[:3]) + (
+            f" and {len(bad) - 3} more" if len(bad) > 3 else "")
+        return (f"the catalog does not match the log on {where}: it knows "
+                f"{m['logged_known']:.0%} of the logged identifiers and "
+                f"{m['catalog_seen']:.0%} of its identifiers were logged; no node is named "
+                "(check --catalog)")
 
 
 def _origin(con: duckdb.DuckDBPyConnection, run: str) -> str | None:
@@ -393,18 +410,27 @@ def _segment(ev: BusEvidence, cat: CatalogView, config: ConfinementConfig,
         return winner, winner, findings
     bounds: list[int | None] = [None, *cuts, None]
     windows: list[tuple[Hypothesis, int | None, int | None]] = []
+    pending: int | None = None  # start of windows nothing decided yet
+    open_start = False
     for lo, hi in zip(bounds[:-1], bounds[1:], strict=True):  # loop over a few windows
         w = analyse(evidence_window(ev, lo, hi), None, cat, config).hyps[0]
-        if w.score < MIN_CONFIDENCE:
+        start = pending if open_start and w.kind == "receive-fault" else lo
+        if w.score < MIN_CONFIDENCE or (w.kind == "receive-fault" and
+                                        w.facts.get("passive_frames", 0) < PASSIVE_MIN_FRAMES):
+            # undecided (a receive fault that never went passive here predicts nothing the
+            # whole-bus reading does not): the next window starts where this one did
+            if not open_start:
+                pending, open_start = lo, True
             continue
+        open_start = False
         if windows and windows[-1][0].name == w.name:
             windows[-1] = (windows[-1][0], windows[-1][1], hi)
             continue
-        windows.append((w, lo, hi))
-    if len(windows) < 2:
+        windows.append((w, start, hi))
+    if not windows or (len(windows) == 1 and windows[0][0].name == winner.name):
         return winner, winner, findings
     first_w = windows[0][0]
-    if first_w.kind == "receive-fault" and first_w.node is not None and \
+    if first_w.kind == "receive-fault" and first_w.node is not None and len(windows) > 1 and \
             windows[1][0].kind == "transmit-fault" and windows[1][0].node == first_w.node:
         full = next((h for h in hyps if h.name == first_w.name), None)
         if full is not None and full.node is not None and math.isfinite(full.loglik):
