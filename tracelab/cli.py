@@ -163,6 +163,7 @@ def sql(
     query: str | None = typer.Argument(None, help="SQL; omit for an interactive prompt."),
     fmt: str = typer.Option("table", "--format", help="table | csv | json | parquet"),
     out: Path | None = typer.Option(None, "--out", help="Write the result to this file."),
+    timeout: float | None = typer.Option(None, "--timeout", help="Stop a query after this many seconds (exit 3)."),
     memory: str | None = MEMORY_OPTION,
     temp_dir: Path | None = TEMP_DIR_OPTION,
 ) -> None:
@@ -175,7 +176,9 @@ def sql(
     from tracelab import workflow
 
     with workflow.limits(memory, temp_dir):
-        workflow.sql(dataset, query, fmt=fmt, out=out)
+        code = workflow.sql(dataset, query, fmt=fmt, out=out, timeout_s=timeout)
+    if code:
+        raise typer.Exit(code)
 
 
 @app.command()

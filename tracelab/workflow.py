@@ -127,10 +127,11 @@ def load(dataset: Path, window: str = "100ms", run: str | None = None) -> Any:
     return result
 
 
-def sql(dataset: Path, query: str | None, fmt: str = "table", out: Path | None = None) -> None:
+def sql(dataset: Path, query: str | None, fmt: str = "table", out: Path | None = None,
+        timeout_s: float | None = None) -> int:
     from tracelab.query import sql_command
 
-    sql_command(dataset, query, fmt=fmt, out=out)
+    return sql_command(dataset, query, fmt=fmt, out=out, timeout_s=timeout_s)
 
 
 # --- signals ------------------------------------------------------------------------------

@@ -90,7 +90,7 @@ def _locked(fleet: Path) -> Iterator[None]:
 def _read(path: Path, schema: pl.Schema) -> pl.DataFrame:
     if not path.is_file():
         return pl.DataFrame(schema=schema)
-    frame = pl.read_parquet(path)
+    frame = pl.read_parquet(path, glob=False)
     return frame.select(pl.col(c).cast(t) if c in frame.columns else pl.lit(None, t).alias(c)
                         for c, t in schema.items())
 
@@ -141,7 +141,7 @@ def run_batch(root: Path, fleet: Path, steps: PipelineSteps, catalog: Path | Non
         shutil.rmtree(fleet / layout.STAGING_DIR, ignore_errors=True)  # an interrupted batch
         old_manifest = _read(fleet / layout.MANIFEST_FILE, MANIFEST)
         old_runs = runs_frame([]) if not (fleet / layout.RUNS_FILE).is_file() else \
-            pl.read_parquet(fleet / layout.RUNS_FILE)
+            pl.read_parquet(fleet / layout.RUNS_FILE, glob=False)
         known = _known_logs(old_manifest)
         logs = [describe_log(p, known) for p in find_logs(root, exclude=fleet)]
         specs = group_runs(logs, root, catalog)

@@ -17,6 +17,7 @@ from tracelab.errors import StoreError
 from tracelab.fleet import layout
 from tracelab.fleet.regressions import REGRESSIONS
 from tracelab.store import schema
+from tracelab.store.dataset import glob_escape
 from tracelab.store.limits import configure
 
 _HIVE = "hive_partitioning = true, union_by_name = true, " \
@@ -35,16 +36,16 @@ def connect_fleet(path: str | Path) -> duckdb.DuckDBPyConnection:
                          "create one with 'tracelab batch ROOT -o FLEET')")
     runs_path = fleet / layout.RUNS_FILE
     try:
-        runs = pl.read_parquet(runs_path)
+        runs = pl.read_parquet(runs_path, glob=False)
     except Exception as error:  # pyarrow / polars I/O errors become ours, with the path
         raise StoreError(f"{runs_path}: cannot read the fleet summary ({error})") from error
     regressions_path = fleet / layout.REGRESSIONS_FILE
-    regressions = (pl.read_parquet(regressions_path) if regressions_path.is_file()
+    regressions = (pl.read_parquet(regressions_path, glob=False) if regressions_path.is_file()
                    else pl.DataFrame(schema=REGRESSIONS))
     con = connect_runs(fleet, runs, regressions)
     try:
         con.execute("CREATE VIEW manifest AS SELECT * FROM read_parquet("
-                    f"{_sql_str(str(fleet / layout.MANIFEST_FILE))})")
+                    f"{_sql_str(glob_escape((fleet / layout.MANIFEST_FILE).absolute()))})")
     except duckdb.Error as error:
         raise StoreError(f"{fleet}: cannot open the fleet manifest ({error})") from error
     return con
@@ -78,7 +79,7 @@ def connect_runs(fleet: Path, runs: pl.DataFrame,
         ok = runs.filter(pl.col("status") == "ok")["key"].str.slice(0, 16).to_list()
         made = set()
         for table, files in table_files(fleet, set(ok)).items():
-            listing = ", ".join(_sql_str(str(f)) for f in files)
+            listing = ", ".join(_sql_str(glob_escape(f.absolute())) for f in files)
             con.execute(f'CREATE VIEW "{table}" AS SELECT * FROM read_parquet([{listing}], '
                         f"{_HIVE})")
             made.add(table)

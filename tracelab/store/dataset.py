@@ -190,7 +190,7 @@ class Dataset:
             raise StorageError(f"{self.manifest_path}: damaged manifest (truncated or "
                                "overwritten); the dataset cannot be read")
         try:
-            frame = pl.read_parquet(self.manifest_path)
+            frame = pl.read_parquet(self.manifest_path, glob=False)
         except Exception as error:  # pyarrow / polars I/O errors become ours, with the path
             raise storage_error(self.manifest_path, error, "cannot read the manifest") from error
         missing = [name for name in schema.MANIFEST if name not in frame.columns]
@@ -301,7 +301,7 @@ class Dataset:
         if not path.exists() or not parquet_intact(path):
             return None
         try:
-            return pl.read_parquet(path)
+            return pl.read_parquet(path, glob=False)
         except Exception:  # noqa: BLE001 - damaged inside: stale, recomputed by its analysis
             return None
 
