@@ -49,7 +49,7 @@ def test_attributed_replay_equals_frame_by_frame_reference(fault: str, p: float,
 
 
 def test_lone_node_without_ack_stays_error_passive_at_128() -> None:
-    # source: ISO 11898-1 rule c exception 1: TEC stops at 128, the node never goes bus-off
+    # from memory: ISO 11898-1 rule c exception 1: TEC stops at 128, the node never goes bus-off
     s = synth.generate(2000, fault="ack", culprit="delta", seed=1)
     result = replay_faults(s.connect(), synth.catalog()).as_json()["results"][0]
     delta = next(n for n in result["nodes"] if n["node"] == "delta")
@@ -60,7 +60,7 @@ def test_lone_node_without_ack_stays_error_passive_at_128() -> None:
 
 
 def test_persistent_transmit_error_bus_off_at_32nd_and_recovery_takes_1408_bits() -> None:
-    # source: ISO 11898-1 rules c, j, l: bus-off after 32 errors, then 128 x 11 recessive bits
+    # from memory: ISO 11898-1 rules c, j, l: bus-off after 32 errors, then 128 x 11 recessive bits
     s = synth.generate(1000, fault="tx", culprit="alpha", p=1.0, seed=1)
     con = s.connect()
     ev = load_bus_evidence(con, synth.catalog(), "r1", "can0")
@@ -76,7 +76,7 @@ def test_persistent_transmit_error_bus_off_at_32nd_and_recovery_takes_1408_bits(
 
 
 def test_recovery_on_an_idle_bus_is_128_x_11_bits() -> None:
-    # source: ISO 11898-1 rule l; 1408 bits at 500 kbit/s = 2.816 ms
+    # from memory: ISO 11898-1 rule l; 1408 bits at 500 kbit/s = 2.816 ms
     s = synth.generate(50, seed=1)
     ev = load_bus_evidence(s.connect(), synth.catalog(), "r1", "can0")
     t_end = int(s.frames[-1]["end_ns"])

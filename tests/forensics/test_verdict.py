@@ -99,7 +99,7 @@ def test_node_that_stops_without_errors_is_named_cut_off_or_silent() -> None:
 
 
 def test_return_with_esi_clear_means_it_just_stopped() -> None:
-    # source: ISO 11898-1 ESI bit: an error-passive transmitter sends ESI recessive (set)
+    # from memory: ISO 11898-1 ESI bit: an error-passive transmitter sends ESI recessive (set)
     v, cut = _silence_delta(fd=True, back=True, esi_on_return=False)
     assert v["cause"] == {"kind": "silence", "node": "delta"}
     assert v["first_degraded"]["state"] == "silent"
