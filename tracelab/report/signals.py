@@ -87,9 +87,9 @@ def signals_figure(section: SignalSection, envelopes: pl.DataFrame, t0_ns: int, 
             title={"text": esc(panel["signal"]) + (f" [{esc(panel['unit'])}]"
                                                     if panel.get("unit") else ""),
                    "font": {"size": 11}}, gridcolor=style.GRID)
-        notes.append({"xref": f"x{axis} domain", "yref": f"y{axis} domain", "x": 0, "y": 1,
-                      "xanchor": "left", "yanchor": "bottom", "showarrow": False,
-                      "text": name, "font": {"size": 10, "color": style.MUTED}})
+        notes.append({"xref": f"x{axis} domain", "yref": f"y{axis} domain", "x": 1, "y": 1,
+                      "xanchor": "right", "yanchor": "top", "showarrow": False,
+                      "text": esc(panel["message"]), "font": {"size": 9, "color": style.MUTED}})
     for a, b in losses.select("from_ns", "to_ns").iter_rows() if not losses.is_empty() else []:
         shapes.append({"type": "rect", "xref": "x", "yref": "paper", "x0": a / NS_PER_S,
                        "x1": b / NS_PER_S, "y0": 0, "y1": 1, "fillcolor": style.LOGGER_SHADE,
@@ -98,7 +98,7 @@ def signals_figure(section: SignalSection, envelopes: pl.DataFrame, t0_ns: int, 
         at_s = section.degraded_ns / NS_PER_S
         shapes.append({"type": "line", "xref": "x", "yref": "paper", "x0": at_s, "x1": at_s,
                        "y0": 0, "y1": 1, "line": {"color": DEGRADED, "width": 2}})
-        notes.append({"x": at_s, "xref": "x", "y": 0, "yref": "paper", "yanchor": "top",
+        notes.append({"x": at_s, "xref": "x", "y": 0, "yref": "paper", "yanchor": "bottom",
                       "xanchor": "left", "showarrow": False,
                       "text": esc(f"first degraded: {section.degraded_node or '?'}"),
                       "font": {"size": 10, "color": DEGRADED}})
