@@ -15,6 +15,8 @@ from tracelab.errors import LogFormatError
 from tracelab.format.compression import CORRUPT_ERRORS, compression_name
 
 MAX_LINE_BYTES = 64 * 1024 * 1024
+#: How far past a fault blame_damage() reads to find damage of a compressed stream.
+DAMAGE_PROBE_BYTES = 8 * 1024 * 1024
 
 
 @dataclass(frozen=True)
@@ -32,6 +34,27 @@ def corrupt(path: Path, error: BaseException) -> LogFormatError:
     """The one-line error for a compressed stream that cannot be read to its end."""
     kind = compression_name(path) or "file"
     return LogFormatError(str(path), None, f"corrupt or truncated {kind} data ({error})")
+
+
+def blame_damage(path: Path, stream: BinaryIO, error: LogFormatError) -> LogFormatError:
+    """A fault met in a compressed log may come from damage further on (gzip checks its CRC
+    only at the end of a member): read on, at most DAMAGE_PROBE_BYTES, and when the stream is
+    damaged name that, with the fault it caused; else ``error`` itself."""
+    if error.reason.startswith("corrupt or truncated") or not compression_name(path):
+        return error
+    read = 0
+    try:
+        while read < DAMAGE_PROBE_BYTES:
+            piece = stream.read(1 << 20)
+            if not piece:
+                return error
+            read += len(piece)
+    except CORRUPT_ERRORS as damage:
+        where = f"line {error.line}: " if error.line is not None else ""
+        found = corrupt(path, damage)
+        return LogFormatError(str(path), None, f"{found.reason}; it shows first as {where}"
+                              f"{error.reason}")
+    return error
 
 
 def split_blocks(path: Path, stream: BinaryIO, raw: BinaryIO, first: bytes, last_line: int,

@@ -17,7 +17,8 @@ from pathlib import Path
 
 import polars as pl
 
-from tracelab.format.blocks import MAX_LINE_BYTES, Block, corrupt, split_blocks
+from tracelab.errors import LogFormatError
+from tracelab.format.blocks import MAX_LINE_BYTES, Block, blame_damage, corrupt, split_blocks
 from tracelab.format.chunk import FRAME_COLUMNS, Chunk
 from tracelab.format.compression import CORRUPT_ERRORS, open_log
 from tracelab.format.exact import parse_exact, record_reasons
@@ -58,6 +59,12 @@ class LogReader:
         except CORRUPT_ERRORS as error:
             self.close()
             raise corrupt(self.path, error) from error
+        except LogFormatError as error:
+            better = self.explain(error)
+            self.close()
+            if better is error:
+                raise
+            raise better from error
         except BaseException:
             self.close()
             raise
@@ -72,8 +79,21 @@ class LogReader:
     def __enter__(self) -> LogReader:
         return self
 
-    def __exit__(self, *exc: object) -> None:
-        self.close()
+    def __exit__(self, exc_type: object, exc: BaseException | None, tb: object) -> None:
+        """Close; a LogFormatError leaving the block becomes the stream's damage when a
+        compressed log is damaged further on (explain())."""
+        try:
+            if isinstance(exc, LogFormatError):
+                better = self.explain(exc)
+                if better is not exc:
+                    raise better from exc
+        finally:
+            self.close()
+
+    def explain(self, error: LogFormatError) -> LogFormatError:
+        """The error to show for ``error`` met while reading: the damage of a compressed
+        stream when there is some further on (see blame_damage), else ``error``."""
+        return blame_damage(self.path, self._stream, error)
 
     def blocks(self) -> Iterator[Block]:
         """Split the stream into blocks of whole lines, numbered (sequential, cheap)."""
