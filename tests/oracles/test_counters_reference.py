@@ -200,6 +200,13 @@ SIM_FAULTS = {
     "tx-noise-bus-off": 'kind = "tx-noise"\nnode = "b"\nstart = "100ms"\nend = "900ms"\n'
                         'rate = 0.7',
     "bus-noise": 'kind = "bus-noise"\nstart = "100ms"\nrate = 0.1\nrate_end = 0.3',
+    "bus-noise-ber": 'kind = "bus-noise"\nstart = "100ms"\nber = 5e-4\nber_end = 2e-3',
+    "local-noise-ber": 'kind = "local-noise"\nnodes = ["b", "c"]\nstart = "100ms"\n'
+                       'ber = 2e-3',
+    "rx-noise-ber-detector": 'kind = "rx-noise"\nnode = "a"\nstart = "100ms"\nber = 3e-3'
+                             '\n\n[logger]\nview = "detector"',
+    "tx-noise-ack": 'kind = "tx-noise"\nnode = "c"\nstart = "100ms"\nrate = 0.4'
+                    '\n\n[logger]\nack = true',
     # a and b cut off: c is left alone on the wire and gets ACK errors too
     "isolated": 'kind = "isolated"\nnode = "a"\nstart = "100ms"\nend = "600ms"\n\n'
                 '[[fault]]\nkind = "isolated"\nnode = "b"\nstart = "100ms"\nend = "600ms"',
@@ -228,6 +235,8 @@ def test_reference_equals_simulator_truth(tmp_path: Path, fault: str, seed: int)
     assert changed >= 2  # the scenario does move counters
     if fault == "isolated":
         assert any(e[2] == "tx_ack_error" and e[1] == "c" for e in res.trace)
+    if fault == "rx-noise":  # flags over recessive identifier bits: lost arbitrations
+        assert any(e["arbitration_lost"] for e in res.errors)
     if fault == "tx-noise-bus-off":
         assert any(n.bus_off for n in res.nodes)  # rule j and rule l both exercised
         assert any(e[2] == "recessive_11" for e in res.trace)

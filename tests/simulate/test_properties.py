@@ -16,7 +16,7 @@ from tracelab.simulate import load_scenario, simulate, truth_path
 from tracelab.simulate.engine import BusEngine
 from tracelab.simulate.schedule import build_schedule
 
-KINDS = ("rx-noise", "tx-noise", "bus-noise", "isolated", "silent")
+KINDS = ("rx-noise", "tx-noise", "bus-noise", "local-noise", "isolated", "silent")
 
 
 @st.composite
@@ -35,8 +35,17 @@ def scenarios(draw: st.DrawFn) -> str:
     for _ in range(draw(st.integers(0, 2))):
         kind = draw(st.sampled_from(KINDS))
         start = draw(st.integers(0, 200))
-        extra = f"rate = {draw(st.floats(0.05, 1.0)):.3f}\n" if "noise" in kind else ""
-        target = 'bus = "P"\n' if kind == "bus-noise" else f'node = "{draw(st.sampled_from(nodes))}"\n'
+        extra = ""
+        if "noise" in kind:
+            extra = (f"rate = {draw(st.floats(0.05, 1.0)):.3f}\n" if draw(st.booleans())
+                     else f"ber = {draw(st.floats(1e-4, 1e-2)):.5f}\n")
+        if kind == "bus-noise":
+            target = 'bus = "P"\n'
+        elif kind == "local-noise":
+            chosen = draw(st.lists(st.sampled_from(nodes), min_size=1, unique=True))
+            target = "nodes = [" + ", ".join(f'"{n}"' for n in chosen) + "]\n"
+        else:
+            target = f'node = "{draw(st.sampled_from(nodes))}"\n'
         lines.append(f'[[fault]]\nkind = "{kind}"\n{target}start = "{start}ms"\n'
                      f'end = "{start + draw(st.integers(1, 100))}ms"\n{extra}')
     return "\n".join(lines)

@@ -77,6 +77,21 @@ def test_good_scenario(tmp_path: Path) -> None:
     assert sc.catalog.sender_of("P", 0xC0, False) == "vcu"
 
 
+def test_per_bit_local_noise_and_logger_view(tmp_path: Path) -> None:
+    text = BASE.replace('node = "inv"\nkind = "rx-noise"', 'nodes = ["inv", "vcu"]\n'
+                        'kind = "local-noise"').replace("rate = 0.02", "ber = 1e-4\nber_end = 1e-3")
+    sc = load(tmp_path, text)
+    fault = sc.faults[0]
+    assert (fault.kind, fault.nodes, fault.ber, fault.ber_end, fault.rate) == (
+        "local-noise", ("inv", "vcu"), 1e-4, 1e-3, None)
+    assert fault.as_json()["nodes"] == ["inv", "vcu"] and fault.as_json()["ber"] == 1e-4
+    assert sc.run.logger_view == "own"
+    detector = load(tmp_path, '[logger]\nview = "detector"\n' + BASE)
+    assert detector.run.logger_view == "detector"
+    with pytest.raises(CatalogError, match="view 'detectr' is unknown; did you mean"):
+        load(tmp_path, '[logger]\nview = "detectr"\n' + BASE)
+
+
 def test_defaults_without_run_section(tmp_path: Path) -> None:
     text = BASE.split("[bus.P]")[1]
     sc = load(tmp_path, "[bus.P]" + text.split("[[fault]]")[0])
@@ -98,6 +113,18 @@ BABBLE = '\n[[fault]]\nnode = "vcu"\nkind = "babble"\nrate = 500\nid = "{id}"\n'
     ('end = "7s"', 'end = "3s"', "[fault 1] end must come after start"),
     ('rate = 0.02', 'ppm = 3', "[fault 1] unknown key 'ppm'"),
     ('rate = 0.02', 'every = 0', "[fault 1] every must be a positive integer"),
+    ('rate = 0.02', 'ber = 0.5', "[fault 1] ber = 0.5 must lie in 0..0.01"),
+    ('rate = 0.02', 'rate = 0.02\nber = 0.001', "[fault 1] rx-noise needs one of rate"),
+    ('rate = 0.02', 'ber_end = 0.001', "[fault 1] rx-noise needs one of rate"),
+    ('rate = 0.02', 'every = 3\nber_end = 0.001', "[fault 1] ber_end needs ber"),
+    ('node = "inv"\nkind = "rx-noise"', 'nodes = ["inv", "tmx"]\nkind = "local-noise"',
+     "[fault 1] node 'tmx' is not a declared node"),
+    ('node = "inv"\nkind = "rx-noise"', 'nodes = []\nkind = "local-noise"',
+     "[fault 1] local-noise needs nodes = "),
+    ('node = "inv"\nkind = "rx-noise"', 'nodes = ["inv", "inv"]\nkind = "local-noise"',
+     "[fault 1] nodes lists a node twice"),
+    ('node = "inv"\nkind = "rx-noise"', 'node = "inv"\nkind = "local-noise"',
+     "[fault 1] unknown key 'node'"),
     ('rate = 0.02', '', "[fault 1] rx-noise needs one of rate"),
     ('constant:0102030405060708', 'constant:0102', "[message 1] payload constant has 2 bytes, DLC 8 needs 8"),
     ('payload = "constant', 'payload = "counterr', "[message 1] payload 'counterr"),
