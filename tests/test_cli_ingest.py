@@ -198,3 +198,13 @@ def test_control_characters_are_escaped_on_the_terminal(tmp_path: Path,
     assert "odd\\nname.frames:5: unknown bus '\\x1b[2JP\\x07'" in line
     assert main(["ingest", str(tmp_path / "no\rsuch.frames"), "-o", str(tmp_path / "ds3")]) == 2
     assert "no\\rsuch.frames: no such file" in _one_line_error(capsys.readouterr().err)
+
+
+def test_names_from_a_log_are_escaped_in_command_output(tmp_path: Path,
+                                                        capsys: pytest.CaptureFixture[str]) -> None:
+    log = _write(tmp_path / "a.frames", HEADER.replace("%bus P", "%meta run=r\x1b[2J7\x07\n%bus P")
+                 + GOOD)
+    assert main(["ingest", str(log), "-o", str(tmp_path / "ds"), "-q"]) == 0
+    assert main(["info", str(tmp_path / "ds")]) == 0
+    out = capsys.readouterr().out
+    assert "\x1b" not in out and "\x07" not in out and "run r\\x1b[2J7\\x07" in out

@@ -16,7 +16,7 @@ from typing import Any
 import typer
 
 import tracelab
-from tracelab.errors import EXIT_INTERNAL, EXIT_USAGE, TracelabError, printable
+from tracelab.errors import EXIT_INTERNAL, EXIT_USAGE, TracelabError, printable, printable_lines
 
 # Plain help (rich_markup_mode=None): flags show no "<bool>" type column and the page reads
 # the same in a pipe; errors are ours (main()), so no rich boxes either.
@@ -51,6 +51,11 @@ TEMP_DIR_OPTION: Any = typer.Option(
     None, "--temp-dir", help="Folder to spill to (default $TRACELAB_TEMP_DIR, else DATASET/.tmp).")
 
 
+def _echo(text: str, err: bool = False) -> None:
+    """Print command output; control characters from logs and names come out escaped."""
+    typer.echo(printable_lines(text), err=err)
+
+
 def _print_json(payload: Any) -> None:
     typer.echo(json.dumps(payload, indent=2, default=str))
 
@@ -72,7 +77,7 @@ def ingest(
     from tracelab import workflow
 
     summary = workflow.ingest(logs, output, strict=strict, force=force, quiet=quiet)
-    typer.echo(summary.describe())
+    _echo(summary.describe())
 
 
 @app.command()
@@ -89,7 +94,7 @@ def info(
     from tracelab import workflow
 
     result = workflow.info(dataset)
-    _print_json(result.as_dict()) if as_json else typer.echo(result.describe())
+    _print_json(result.as_dict()) if as_json else _echo(result.describe())
 
 
 @app.command()
@@ -109,7 +114,7 @@ def simulate(
     from tracelab import workflow
 
     summary = workflow.simulate(scenario, output, duration=duration, seed=seed, quiet=quiet)
-    typer.echo(summary.describe())
+    _echo(summary.describe())
 
 
 @app.command()
@@ -132,7 +137,7 @@ def timing(
 
     with workflow.limits(memory, temp_dir):
         result = workflow.timing(dataset, catalog=catalog, run=run, gap_factor=gap_factor)
-    _print_json(result.as_json()) if as_json else typer.echo(result.describe())
+    _print_json(result.as_json()) if as_json else _echo(result.describe())
 
 
 @app.command()
@@ -154,7 +159,7 @@ def load(
 
     with workflow.limits(memory, temp_dir):
         result = workflow.load(dataset, window=window, run=run)
-    _print_json(result.as_json()) if as_json else typer.echo(result.describe())
+    _print_json(result.as_json()) if as_json else _echo(result.describe())
 
 
 @app.command()
@@ -205,7 +210,7 @@ def signals(
     with workflow.limits(memory, temp_dir):
         result = workflow.signals(dataset, catalog=catalog, run=run, names=signal, from_=from_,
                                   to=to, stuck=stuck)
-    _print_json(result.as_json()) if as_json else typer.echo(result.describe())
+    _print_json(result.as_json()) if as_json else _echo(result.describe())
 
 
 @app.command()
@@ -229,8 +234,8 @@ def faults(
         result = workflow.faults(dataset, catalog=catalog, run=run)
     warning = result.catalog_warning()
     if warning:
-        typer.echo(f"tracelab: warning: {warning}", err=True)
-    _print_json(result.as_json()) if as_json else typer.echo(result.describe())
+        _echo(f"tracelab: warning: {warning}", err=True)
+    _print_json(result.as_json()) if as_json else _echo(result.describe())
 
 
 @app.command()
@@ -257,7 +262,7 @@ def report(
         paths = workflow.report(dataset, output, catalog=catalog, run=run,
                                 shared_plotly=shared_plotly, load_limit=load_limit)
     for path in paths:
-        typer.echo(f"report: {path}")
+        _echo(f"report: {path}")
 
 
 @app.command()
@@ -276,7 +281,7 @@ def demo(
     from tracelab import workflow
 
     with workflow.limits(memory, temp_dir):
-        typer.echo(workflow.demo(output, quiet=quiet))
+        _echo(workflow.demo(output, quiet=quiet))
 
 
 @app.command()
@@ -300,7 +305,7 @@ def batch(
 
     summary = workflow.batch(root, output, catalog=catalog, executor=executor,
                              scheduler=scheduler, workers=workers, previous=previous, quiet=quiet)
-    typer.echo(summary.describe())
+    _echo(summary.describe())
     if summary.failed:
         raise typer.Exit(3)
 
@@ -329,7 +334,7 @@ def capture(
     summary = workflow.capture(ifaces, output, rotate=rotate, duration=duration, meta=meta,
                                bus=bus, node=node, hardware_timestamps=hardware_timestamps,
                                reorder=reorder, quiet=quiet)
-    typer.echo(summary.describe())
+    _echo(summary.describe())
 
 
 @app.command()
@@ -358,7 +363,7 @@ def convert(
     summary = workflow.convert(tables, output, bus=bus, columns=columns, time_unit=time_unit,
                                origin=origin, delimiter=delimiter, id_base=id_base,
                                header=not no_header, meta=meta, strict=strict, quiet=quiet)
-    typer.echo(summary.describe())
+    _echo(summary.describe())
 
 
 def _usage_line(error: typer.TyperException) -> str:

@@ -51,6 +51,13 @@ def printable(text: str) -> str:
     return _UNPRINTABLE.sub(_escape, text)
 
 
+def printable_lines(text: str) -> str:
+    """Multi-line output (a summary, a table) made safe for a terminal: each line as
+    printable(), but TABs kept."""
+    return "\n".join(_UNPRINTABLE.sub(lambda m: "\t" if m.group() == "\t" else _escape(m), line)
+                     for line in text.split("\n"))
+
+
 class TracelabError(Exception):
     exit_code = EXIT_INTERNAL
 
