@@ -9,6 +9,7 @@ import pytest
 
 from tests.format.cases import BAD_LINE, FATAL_CASES, GOOD, HEADER, RECORD_CASES, record_log
 from tracelab.cli import main
+from tracelab.wording import counted
 
 
 def _write(path: Path, content: str | bytes) -> Path:
@@ -59,7 +60,7 @@ def test_collect_mode_stores_the_reject_and_names_it(
     assert main(["ingest", str(log), "-o", str(dataset), "-q"]) == 0
     out = capsys.readouterr().out
     assert f"{log}: 6 lines = 3 header/comment/blank + 2 records" in out
-    assert f"1 line(s) rejected (see the rejects table); first: {log}:{BAD_LINE}: " in out
+    assert f"1 line rejected (see the rejects table); first: {log}:{BAD_LINE}: " in out
     assert reason in out
     rows = open_dataset(dataset).connect().execute(
         "select line, raw, reason from rejects where file = ?", [str(log)]).fetchall()
@@ -117,12 +118,12 @@ def test_info_prints_runs_counts_rejects_and_backward_steps(
                  + "100\tP\tmark\ta\n50\tP\tmark\tb\n7\tP\tbogus\n")
     assert main(["ingest", str(log), "-o", str(tmp_path / "ds"), "-q"]) == 0
     out = capsys.readouterr().out
-    assert f"{log}: 1 backward time step(s), first at line 6" in out
+    assert f"{log}: 1 backward time step, first at line 6" in out
     assert main(["info", str(tmp_path / "ds")]) == 0
     out = capsys.readouterr().out
-    assert "1 run(s), 1 file(s), 7 lines" in out
+    assert "1 run, 1 file, 7 lines" in out
     assert "rejects: 1; backward time steps: 1" in out
-    assert "run r7: 1 file, " in out and "vehicle utv-07" in out
+    assert "run r7: 1 file," in out and "vehicle utv-07" in out
     assert "bus C: nominal 500,000 bit/s, data 2,000,000 bit/s, stamp=end" in out
     assert f"  file {log} (run r7): 7 lines, 1 reject, first backward step at line 6" in out
     assert main(["info", str(tmp_path / "ds"), "--json"]) == 0
@@ -169,7 +170,7 @@ def test_raw_byte_faults_in_both_modes(tmp_path: Path, dataset: Path,
     assert _snapshot(dataset) == before
     assert main(["ingest", str(log), "-o", str(dataset), "-q"]) == 0
     out = capsys.readouterr().out
-    assert f"+ {records} record" in out and f"first: {log}:{BAD_LINE}: " in out
+    assert f"+ {counted(records, 'record')}" in out and f"first: {log}:{BAD_LINE}: " in out
     assert reason in out
 
 

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 #: Nouns whose plural is not the noun + "s".
-_IRREGULAR = {"status": "status", "loss": "losses", "entry": "entries", "backward step": "backward steps"}
+_IRREGULAR = {"status": "status", "loss": "losses", "backward time step": "backward time steps", "entry": "entries", "backward step": "backward steps"}
 
 
 def counted(n: int, noun: str) -> str:

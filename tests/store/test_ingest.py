@@ -74,7 +74,7 @@ def test_manifest_reconciles_every_line(tmp_path: Path) -> None:
     assert [b["stamp"] for b in json.loads(row["buses"])] == ["end", "start", "end"]
     assert row["origin"] == "2026-11-30T21:04:05Z" and row["vehicle"] == "utv-07"
     assert "16 lines = 8 header/comment/blank + 6 records" in summary.describe()
-    assert "2 line(s) rejected" in summary.describe()
+    assert "2 lines rejected" in summary.describe()
 
 
 def test_run_defaults_to_the_file_name(tmp_path: Path) -> None:

@@ -31,8 +31,8 @@ class DatasetInfo:
 
     def describe(self) -> str:
         t = self.totals
-        out = [f"dataset {self.path}: {len(self.runs)} run(s), {t['files']} file(s), "
-               f"{t['lines']:,} lines",
+        out = [f"dataset {self.path}: {counted(len(self.runs), 'run')}, "
+               f"{counted(t['files'], 'file')}, {counted(t['lines'], 'line')}",
                "records: " + ", ".join(f"{t[k]:,} {k}" for k in KINDS),
                f"rejects: {t['rejects']:,}; backward time steps: {t['backward_steps']:,}"]
         for bus in self.buses:

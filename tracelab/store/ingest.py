@@ -147,7 +147,7 @@ class IngestSummary:
         return sum(f.backward_steps for f in self.files)
 
     def describe(self) -> str:
-        out = [f"ingested {len(self.files)} file(s) into {self.dataset}"]
+        out = [f"ingested {counted(len(self.files), 'file')} into {self.dataset}"]
         if self.skipped:
             out[0] += (f"; skipped {len(self.skipped)} already ingested (use --force to "
                        f"replace): {', '.join(self.skipped)}")
@@ -161,12 +161,12 @@ class IngestSummary:
                            f"of the same run {f.run!r} on a common bus (recorded in the "
                            "manifest's overlaps column; a log ingested twice?)")
             if f.backward_steps:
-                out.append(f"{f.file}: {f.backward_steps:,} backward time step(s), first at "
+                out.append(f"{f.file}: {counted(f.backward_steps, 'backward time step')}, first at "
                            f"line {f.first_backward_line} (kept; analyses order by time)")
         if self.rejects:
             first = [f"{f.file}:{line}: {reason}" for f in self.files
                      for line, reason in f.first_rejects][:SHOWN_REJECTS]
-            out.append(f"{self.rejects:,} line(s) rejected (see the rejects table); first: "
+            out.append(f"{counted(self.rejects, 'line')} rejected (see the rejects table); first: "
                        + " | ".join(first))
         return "\n".join(printable(line) for line in out)  # a name or a log's bytes: escaped
 
