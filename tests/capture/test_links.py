@@ -51,13 +51,14 @@ def test_sizes_and_part_names() -> None:
     (["--duration", "0s"], "--duration must be longer than 0"),
     (["--meta", "Run=x"], "--meta Run=x"),
     (["--bus", "can9=P,nominal=500000"], "'can9' is not one of the interfaces"),
+    (["--bus", "tlnone0=P,nominal=500000"], "tlnone0: no such network interface"),
     (["-o", "night.log"], "name the log NAME.frames"),
 ])
 def test_capture_usage_errors(tmp_path: Path, capsys: pytest.CaptureFixture[str],
                               args: list[str], message: str) -> None:
-    base = ["capture", "can0", "-o", str(tmp_path / "n.frames"), "--quiet"]
+    base = ["capture", "tlnone0", "-o", str(tmp_path / "n.frames"), "--quiet"]
     if "-o" in args:
-        base = ["capture", "can0", "--quiet"]
+        base = ["capture", "tlnone0", "--quiet"]
         args = [args[0], str(tmp_path / args[1])]
     assert main([*base, *args]) == 2
     err = capsys.readouterr().err

@@ -408,6 +408,12 @@ def capture_interfaces(ifaces: list[str], output: Path, bus_options: list[BusOpt
             raise UsageError(f"--bus {key}=...: {key!r} is not one of the interfaces "
                              f"({', '.join(ifaces)}){did_you_mean(key, ifaces)}")
         by_iface[key] = option
+    for iface in ifaces:
+        try:
+            socket.if_nametoindex(iface)
+        except OSError:
+            raise UsageError(f"{iface}: no such network interface (see `ip link show`)"
+                             ) from None
     decls, notes = [], []
     for iface in ifaces:
         chosen = by_iface.get(iface)
