@@ -7,7 +7,12 @@ steps and returns polars frames.
 
 from __future__ import annotations
 
+import contextlib
+import shutil
+import uuid
+from collections.abc import Iterator
 from dataclasses import dataclass
+from pathlib import Path
 from typing import Any
 
 import duckdb
@@ -24,6 +29,7 @@ from tracelab.analyses import (
 )
 from tracelab.errors import StoreError, UsageError
 from tracelab.network.catalog import Catalog
+from tracelab.store.limits import memory_limit_bytes
 
 #: Columns of timing.parquet and of each ``tracelab timing --json`` object, in order.
 TIMING_COLUMNS = (
@@ -35,6 +41,9 @@ TIMING_COLUMNS = (
 )
 #: Frames per block of the cycle-index correction (timing_cycles.sql).
 CYCLE_BLOCK = 64
+#: Peak DuckDB memory per frame of a batch (measured with bench/scale.py); a batch holds at
+#: most memory_limit / BYTES_PER_FRAME frames.
+BYTES_PER_FRAME = 200
 GAP_COLUMNS = ("run", "bus", "id", "ext", "from_ns", "to_ns", "missing", "in_loss")
 _CATALOG_SCHEMA = {"bus": pl.String, "id": pl.UInt32, "ext": pl.Boolean, "name": pl.String,
                    "sender": pl.String, "period_ns": pl.Int64}
@@ -92,10 +101,17 @@ def _catalog_frame(catalog: Catalog | None) -> pl.DataFrame:
 
 
 def timing(con: duckdb.DuckDBPyConnection, catalog: Catalog | None = None,
-           run: str | None = None, gap_factor: float = 1.5) -> TimingResult:
+           run: str | None = None, gap_factor: float = 1.5,
+           batch_frames: int | None = None) -> TimingResult:
     """Timing statistics of every (run, bus, id, ext) stream in ``con``'s ``frames`` view.
 
-    ``con`` needs the views frames and losses; temporary tables tl_* are left on it.
+    Every statistic is per stream, so the streams are taken in batches of whole streams of
+    at most ``batch_frames`` frames (default: what the connection's memory_limit holds,
+    ``BYTES_PER_FRAME`` each) and peak memory stays flat however long the log. With more
+    than one batch, one pass first copies each frame's (stream key, t_ns) into a Parquet
+    file per batch under the connection's temp_directory (removed afterwards); a stream
+    larger than a batch is a batch of its own. ``con`` needs the views frames and losses;
+    small temporary tables tl_* are left on it.
     """
     if not gap_factor > 1.0:
         raise UsageError(f"--gap-factor {gap_factor} must be greater than 1")
@@ -104,15 +120,27 @@ def timing(con: duckdb.DuckDBPyConnection, catalog: Catalog | None = None,
     con.execute("CREATE OR REPLACE TEMP TABLE tl_catalog AS SELECT * FROM _tl_catalog_in")
     con.unregister("_tl_catalog_in")
     params = {"run": run, "gap_factor": float(gap_factor), "block": CYCLE_BLOCK}
-    run_sql(con, "timing_arrivals", params)
+    run_sql(con, "timing_streams", params)
     if query_scalar(con, "SELECT count(DISTINCT g) <> count(*) FROM tl_streams"):
         raise StoreError("timing: two streams share a 64-bit key; please report this dataset")
-    for step in ("timing_periods", "timing_cycles", "gaps"):
-        run_sql(con, step, params)
-    table = run_sql_frame(con, "timing", params)
-    gaps = query_frame(con, "SELECT * FROM tl_gaps ORDER BY run, bus, ext, id, from_ns")
-    for temp in ("tl_arrivals", "tl_cycles"):  # the two frame-sized tables
-        con.execute(f"DROP TABLE IF EXISTS {temp}")
+    if batch_frames is None:
+        batch_frames = max(1, memory_limit_bytes(con) // BYTES_PER_FRAME)
+    streams = query_frame(con, "SELECT g, frames FROM tl_streams ORDER BY run, bus, ext, id")
+    batches = _batches(streams, batch_frames)
+    tables, gap_tables = [], []
+    with _batch_sources(con, run, batches) as sources:
+        for source in sources:
+            con.execute(f"CREATE OR REPLACE TEMP VIEW tl_batch AS {source}")
+            for step in ("timing_arrivals", "timing_periods", "timing_cycles"):
+                run_sql(con, step, params)
+            con.execute("DROP TABLE tl_arrivals")  # frame-sized; tl_cycles holds what is left
+            run_sql(con, "gaps", params)
+            tables.append(run_sql_frame(con, "timing", params))
+            gap_tables.append(query_frame(con, "SELECT * FROM tl_gaps"))
+            con.execute("DROP TABLE tl_cycles")
+    table = pl.concat(tables, how="vertical_relaxed").sort("run", "bus", "ext", "id")
+    gaps = pl.concat(gap_tables, how="vertical_relaxed").sort(
+        "run", "bus", "ext", "id", "from_ns")
     table = table.select(TIMING_COLUMNS).with_columns(
         pl.col("id").cast(pl.UInt32), pl.col("count").cast(pl.Int64),
         *(pl.col(c).cast(pl.Int64) for c in ("period_ns", "min_ns", "max_ns", "cycle_max_abs_ns",
@@ -123,6 +151,56 @@ def timing(con: duckdb.DuckDBPyConnection, catalog: Catalog | None = None,
     )
     gaps = gaps.select(GAP_COLUMNS).with_columns(pl.col("id").cast(pl.UInt32))
     return TimingResult(table, gaps, node_drift(table), *_coverage(table, catalog))
+
+
+def _batches(streams: pl.DataFrame, batch_frames: int) -> list[list[int]]:
+    """The stream keys cut into consecutive batches of at most ``batch_frames`` frames (a
+    larger stream alone); one batch (all) when everything fits. Loops over streams: few."""
+    if int(streams["frames"].sum() or 0) <= batch_frames:
+        return [streams["g"].to_list()]
+    batches: list[list[int]] = [[]]
+    held = 0
+    for g, frames in streams.iter_rows():
+        if batches[-1] and held + frames > batch_frames:
+            batches.append([])
+            held = 0
+        batches[-1].append(g)
+        held += frames
+    return batches
+
+
+@contextlib.contextmanager
+def _batch_sources(con: duckdb.DuckDBPyConnection, run: str | None,
+                   batches: list[list[int]]) -> Iterator[list[str]]:
+    """Per batch, the SELECT of its frames' (g, t_ns). One batch reads the frames view;
+    several are first copied in one pass into a Parquet file each (PARTITION_BY batch)."""
+    where = "" if run is None else f"WHERE run = '{run.replace(chr(39), chr(39) * 2)}'"
+    keyed = f"SELECT hash(run, bus, id, ext) AS g, t_ns FROM frames {where}"
+    if len(batches) == 1:
+        yield [keyed]
+        return
+    temp = Path(str(query_scalar(con, "SELECT current_setting('temp_directory')")))
+    folder = temp / f"timing-{uuid.uuid4().hex}"
+    made_temp = not temp.exists()
+    try:
+        folder.mkdir(parents=True)
+        con.register("_tl_batch_in", pl.DataFrame(
+            {"g": [g for batch in batches for g in batch],
+             "b": [b for b, batch in enumerate(batches) for _ in batch]},
+            schema={"g": pl.UInt64, "b": pl.Int32}).to_arrow())
+        con.execute("CREATE OR REPLACE TEMP TABLE tl_batches AS SELECT * FROM _tl_batch_in")
+        con.unregister("_tl_batch_in")
+        con.execute(f"COPY (SELECT k.b, f.g, f.t_ns FROM ({keyed}) f JOIN tl_batches k "
+                    f"ON k.g = f.g) TO '{folder}' (FORMAT parquet, PARTITION_BY (b))")
+        yield [f"SELECT g, t_ns FROM read_parquet('{folder}/b={b}/*.parquet', "
+               "hive_partitioning = false)" for b in range(len(batches))]
+    except (OSError, duckdb.Error) as error:
+        raise StoreError(f"timing: cannot stage the batches in {folder} ({error})") from error
+    finally:
+        shutil.rmtree(folder, ignore_errors=True)
+        if made_temp:
+            with contextlib.suppress(OSError):
+                temp.rmdir()  # only when empty: DuckDB may be spilling there
 
 
 def node_drift(table: pl.DataFrame) -> pl.DataFrame:

@@ -145,3 +145,9 @@ def configure(con: duckdb.DuckDBPyConnection, folder: Path) -> Limits:
     if threads := os.environ.get(ENV_THREADS):
         con.execute(f"SET threads = {int(threads)}")
     return limits
+
+
+def memory_limit_bytes(con: duckdb.DuckDBPyConnection) -> int:
+    """The memory_limit a connection runs under, in bytes (DuckDB prints it ``1.0 GiB``)."""
+    text = con.sql("SELECT current_setting('memory_limit')").fetchall()[0][0]
+    return parse_size(str(text))
