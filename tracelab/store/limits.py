@@ -136,12 +136,14 @@ def use_limits(memory: str | int | None = None,
 
 def configure(con: duckdb.DuckDBPyConnection, folder: Path) -> Limits:
     """Apply the current limits to a fresh connection over ``folder``: memory_limit, spilling
-    to the scratch folder, and the batch worker's share of threads (``TRACELAB_THREADS``).
+    to the scratch folder, no DuckDB progress bar (it writes to stdout on long queries),
+    and the batch worker's share of threads (``TRACELAB_THREADS``).
     Insertion order stays preserved here (``tracelab sql`` users see frames in file order);
     analyses that order their own output turn it off on their connection."""
     limits = current_limits()
     con.execute(f"SET memory_limit = '{limits.duckdb_bytes // KIB}KiB'")
     con.execute("SET temp_directory = $dir", {"dir": str(limits.scratch(Path(folder)))})
+    con.execute("SET enable_progress_bar = false")  # it would print into --json output
     if threads := os.environ.get(ENV_THREADS):
         con.execute(f"SET threads = {int(threads)}")
     return limits
