@@ -228,7 +228,7 @@ def load_bus_evidence(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run:
             busy[code] += float(ns or 0)
     total = float(by_id["busy_ns"].sum() or 0.0)
     share = busy / total if total > 0 else np.full(len(nodes), 1.0 / max(1, len(nodes)))
-    events = _events(con, where, codes, nodes)
+    events = _retransmitted(_events(con, where, codes, nodes), frame_t, frame_node)
     losses = con.execute(
         f"SELECT t_ns, until_ns, count FROM losses WHERE {where} ORDER BY t_ns").fetchnumpy()
     loss_arr = np.column_stack([np.asarray(losses["t_ns"], dtype=np.int64),
@@ -336,6 +336,23 @@ def _events(con: duckdb.DuckDBPyConnection, where: str, codes: pl.DataFrame,
     return pl.concat([errors, status]).sort(["t_ns", "file", "line"], nulls_last=True)
 
 
+def _retransmitted(events: pl.DataFrame, frame_t: np.ndarray,
+                   frame_node: np.ndarray) -> pl.DataFrame:
+    """Errors whose frame the logger could not tell (``id`` ``-``: the flag came inside the
+    identifier) get as transmitter the sender of the next frame on the bus: a transmitter
+    retransmits a destroyed frame at the next bus idle (ISO 11898-1, automatic
+    retransmission) and, having won arbitration once, normally wins it again."""
+    blind = ((events["kind"] == KIND_ERROR) & events["id"].is_null()).to_numpy()
+    if not blind.any() or frame_t.size == 0:
+        return events.with_columns(pl.lit(False).alias("tx_inferred"))
+    t = events["t_ns"].to_numpy().astype(np.int64)
+    i = np.searchsorted(frame_t, t, side="right")
+    nxt = np.where(i < frame_t.size, frame_node[np.minimum(i, frame_t.size - 1)], -1)
+    tx = np.where(blind, nxt, events["tx"].to_numpy()).astype(np.int16)
+    return events.with_columns(pl.Series("tx", tx, dtype=pl.Int16),
+                               pl.Series("tx_inferred", blind & (nxt >= 0)))
+
+
 def prepare_counts(ev: BusEvidence) -> None:
     """Cumulative frame counts (all, and per sender) before every event: the vectorised part."""
     t = ev.events["t_ns"].to_numpy().astype(np.int64)
@@ -365,7 +382,8 @@ def with_extra_errors(ev: BusEvidence, t_ns: list[int], tx: int | list[int], err
         "ext": [False] * len(t_ns), "tx": txs, "by_node": [-1] * len(t_ns),
         "by": [None] * len(t_ns), "node": [-1] * len(t_ns), "tec": [None] * len(t_ns),
         "rec": [None] * len(t_ns), "file": [PREDICTED] * len(t_ns),
-        "line": [None] * len(t_ns)}, schema=ev.events.schema)
+        "line": [None] * len(t_ns), "tx_inferred": [False] * len(t_ns)},
+        schema=ev.events.schema)
     events = pl.concat([ev.events, extra]).sort(["t_ns", "file", "line"], nulls_last=True)
     copy = dataclasses.replace(ev, events=events, _recovery_cache={})
     prepare_counts(copy)

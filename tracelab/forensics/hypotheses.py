@@ -65,7 +65,7 @@ FLAG_CAP = 40.0
 #: A listen-only logger records a CRC error only when corrupted bits were on the wire: the
 #: whole-bus reading expects at least this share of CRC errors among its errors.
 P_CRC_BUS = 0.3
-CRC_MIN_ERRORS = 10
+CRC_MIN_ERRORS = 5
 #: ACK errors a lone transmitter needs to go from TEC 0 to error-passive (16 x 8 = 128).
 PASSIVE_ATTEMPTS = 16
 
@@ -392,12 +392,18 @@ def score(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Silence]) -> N
     if long_ + short >= 3 and long_ >= LONG_FLAG_SHARE * (long_ + short):
         flags_bus = max(-FLAG_CAP, long_ * math.log(P_LONG_FLAG_BUS)
                         + short * math.log(1 - P_LONG_FLAG_BUS))
+    # CRC errors: a receive-side fault puts corrupted bits on the wire only on its own frames
+    # once it is error-passive; a whole-bus disturbance on every sender's frames. So the
+    # errors on frames of every sender but the one with most CRC errors should show some.
     types = errors["type"].fill_null("").to_numpy()
-    crc = int(np.sum(types == "crc"))
-    no_ack = int(np.sum(~ack))
+    is_crc = types == "crc"
+    crc_top = int(np.bincount(tx[is_crc & known], minlength=1).argmax()) \
+        if bool((is_crc & known).any()) else -1
+    rest = ~ack & (tx != crc_top)
+    crc_rest = int(np.sum(is_crc & rest))
     crc_bus = 0.0
-    if crc == 0 and no_ack >= CRC_MIN_ERRORS and not bool(np.any(types == "bit")):
-        crc_bus = max(-FLAG_CAP, no_ack * math.log(1 - P_CRC_BUS))
+    if crc_rest == 0 and int(rest.sum()) >= CRC_MIN_ERRORS and not bool(np.any(types == "bit")):
+        crc_bus = max(-FLAG_CAP, int(rest.sum()) * math.log(1 - P_CRC_BUS))
     for h in hyps:  # loop over hypotheses (a few per node)
         n = h.node
         if h.kind in ("bus-disturbance", "silence", "flood") or n is None \
@@ -438,8 +444,9 @@ def score(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Silence]) -> N
             pown_exp = (own_in + k_pown) * node_mean[n]
             poth_exp = (f_in - own_in + k_poth) * mean_ns
             act_exp = max(exposure - pown_exp - poth_exp, 1.0)
+            groups = 1 + int(pown_exp > 0) + int(poth_exp > 0)  # a rate per group it has
             rate = (_poisson(k_act, act_exp) + _poisson(k_pown, pown_exp)
-                    + _poisson(k_poth, poth_exp) - 3 * penalty)
+                    + _poisson(k_poth, poth_exp) - groups * penalty)
             leak = max(0, k_poth - PASSIVE_BOUNDARY_ERRORS)
             by_says = int(np.sum(attributed & (by == n))) > 0.5 * int(attributed.sum()) > 0
             h.facts["share"] = 1.0 - k_poth / max(1, n_err)

@@ -6,6 +6,7 @@ object ``tracelab faults --json`` prints (the shape is spec: issue 5, section 2)
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from dataclasses import dataclass
 from typing import Any
@@ -21,6 +22,7 @@ from tracelab.forensics.evidence import (
     evidence_window,
     frames_by_id,
     load_bus_evidence,
+    prepare_counts,
     run_buses,
     single_pair,
 )
@@ -497,12 +499,13 @@ def _bound_first(ev: BusEvidence, h: Hypothesis, first: dict[str, Any],
     the reading with as many errors as each loss can hold, and the one with none."""
     t = int(first["t_ns"])
     first["earliest_ns"] = first["latest_ns"] = t
-    if loss_before(ev, t + 1) is None:
-        return
     n = ev.node_index(first["node"])
     if n < 0:
         return
     bonus = h.kind == "receive-fault" and h.node == n
+    _bound_guessed(ev, n, bonus, first, config)
+    if loss_before(ev, t + 1) is None:
+        return
     tx = h.node if h.kind in ("transmit-fault", "isolation") else None
     up = filled_evidence(ev, "upper", tx, t)
     readings = [t]
@@ -514,9 +517,35 @@ def _bound_first(ev: BusEvidence, h: Hypothesis, first: dict[str, Any],
         if tr is not None:
             readings.append(int(tr["t_ns"]))
     lo = loss_before(ev, t + 1)
-    first["earliest_ns"] = max(min(readings), lo[0]) if lo and min(readings) < t else min(readings)
-    first["latest_ns"] = max(readings)
+    earliest = max(min(readings), lo[0]) if lo and min(readings) < t else min(readings)
+    first["earliest_ns"] = min(earliest, int(first["earliest_ns"]))
+    first["latest_ns"] = max(max(readings), int(first["latest_ns"]))
     first["uncertain"] = first["earliest_ns"] != first["latest_ns"]
+
+
+def _bound_guessed(ev: BusEvidence, n: int, bonus: bool, first: dict[str, Any],
+                   config: ConfinementConfig) -> None:
+    """Errors whose transmitter was guessed (flag inside the identifier): the first
+    degradation of node n with all of them charged to n, and with none of them."""
+    t = int(first["t_ns"])
+    if "tx_inferred" not in ev.events.columns:
+        return
+    guessed = (pl.col("tx_inferred") & (pl.col("t_ns") <= t))
+    if not ev.events.select(guessed.any()).item():
+        return
+    times = []
+    for tx in (n, -1):  # charged to n / to nobody (every node a receiver)
+        alt = ev.events.with_columns(
+            pl.when(guessed).then(pl.lit(tx, pl.Int16)).otherwise(pl.col("tx")).alias("tx"))
+        src = dataclasses.replace(ev, events=alt, _recovery_cache={})
+        prepare_counts(src)
+        tr = replay_node(src, n, bonus, config, keep_rows=False).first_degradation()
+        if tr is not None:
+            times.append(int(tr["t_ns"]))
+    if times:
+        first["earliest_ns"] = min(times + [t])
+        first["latest_ns"] = max(times + [t])
+        first["uncertain"] = first["earliest_ns"] != first["latest_ns"]
 
 
 def _calibrated(ev: BusEvidence, h: Hypothesis, hyps: list[Hypothesis],
