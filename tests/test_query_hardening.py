@@ -195,11 +195,20 @@ def test_timeout_stops_a_long_query(dataset: Path, capsys: pytest.CaptureFixture
     assert "--timeout 0.5 s" in capsys.readouterr().err
 
 
+def _cpu_s(pid: int) -> float:
+    """User + system CPU seconds of a process (Linux /proc)."""
+    fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
+    return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+
+
 def test_ctrl_c_interrupts_a_long_query_at_once(dataset: Path) -> None:
     proc = subprocess.Popen([sys.executable, "-c", CLI, "sql", str(dataset), LONG_QUERY],
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
-    time.sleep(3.0)  # start-up and the query under way
-    assert proc.poll() is None
+    # wait until the query is under way: start-up costs about 1 s of CPU, the query burns more
+    waited = time.monotonic()
+    while _cpu_s(proc.pid) < 2.5 and time.monotonic() - waited < 60:
+        assert proc.poll() is None
+        time.sleep(0.1)
     sent = time.monotonic()
     os.kill(proc.pid, signal.SIGINT)
     _, err = proc.communicate(timeout=60)
