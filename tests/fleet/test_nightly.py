@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import pytest
+
 from pipelines.nightly import arguments
 
 
@@ -15,4 +17,15 @@ def test_arguments_from_the_environment() -> None:
 def test_command_line_wins_and_help_without_config() -> None:
     assert arguments(["/r", "-o", "/f"], {"TRACELAB_ROOT": "/x"}) == [
         "batch", "/r", "-o", "/f", "--quiet"]
-    assert arguments([], {}) == ["batch", "--help"]
+    assert arguments([], {}) == []
+
+
+def test_no_arguments_and_no_configuration_is_a_usage_error(
+        monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]) -> None:
+    from pipelines.nightly import main
+
+    for name in ("TRACELAB_ROOT", "TRACELAB_FLEET"):
+        monkeypatch.delenv(name, raising=False)
+    assert main([]) == 2  # a misconfigured scheduled job must not look green
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "TRACELAB_ROOT and TRACELAB_FLEET" in err[0]

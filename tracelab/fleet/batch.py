@@ -10,8 +10,8 @@ whose log now has other content is replaced. The manifest is replaced last: it i
 
 from __future__ import annotations
 
+import contextlib
 import datetime as dt
-import fcntl
 import shutil
 import time
 from collections.abc import Callable, Iterator
@@ -28,7 +28,8 @@ from tracelab.fleet.discover import LogFile, RunSpec, describe_log, find_logs, g
 from tracelab.fleet.executors import EXECUTORS, DaskExecutor, LocalExecutor, make_executor
 from tracelab.fleet.index import ensure_plotly
 from tracelab.fleet.job import PipelineSteps, RunResult, failed_result, process_run
-from tracelab.fleet.summary import runs_frame
+from tracelab.fleet.summary import PUBLISHED, runs_frame
+from tracelab.store.lock import write_lock
 from tracelab.wording import counted
 
 MANIFEST = pl.Schema({
@@ -51,6 +52,8 @@ class BatchSummary:
     seconds: float = 0.0
     flags: int = 0
     executor: str = "local"
+    suspects: list[tuple[str, str]] = field(default_factory=list)
+    ignored: list[str] = field(default_factory=list)  # entries under ROOT that are no logs
 
     @property
     def failed(self) -> int:
@@ -60,6 +63,8 @@ class BatchSummary:
         lines = [f"batch: {counted(self.processed, 'run')} processed, {self.skipped} skipped, "
                  f"{self.failed} failed in {self.seconds:.1f} s"]
         lines += [f"  failed {run}: {reason}" for run, reason in self.failures]
+        lines += [f"  suspect {run}: {reason}" for run, reason in self.suspects]
+        lines += [f"  skipped {reason}" for reason in self.ignored]
         lines.append(f"fleet: {self.fleet} ({counted(self.runs, 'run')}, "
                      f"{counted(self.flags, 'regression flag')}; "
                      f"{self.fleet / layout.INDEX_FILE})")
@@ -69,22 +74,39 @@ class BatchSummary:
         return {"fleet": str(self.fleet), "runs": self.runs, "processed": self.processed,
                 "skipped": self.skipped, "failed": self.failed,
                 "failures": [{"run": r, "reason": why} for r, why in self.failures],
+                "suspects": [{"run": r, "reason": why} for r, why in self.suspects],
+                "ignored": self.ignored,
                 "seconds": round(self.seconds, 3), "regression_flags": self.flags}
 
 
 @contextmanager
 def _locked(fleet: Path) -> Iterator[None]:
-    """One batch per fleet at a time (a slow night must not overlap the next)."""
-    fleet.mkdir(parents=True, exist_ok=True)
-    with open(fleet / layout.LOCK_FILE, "w") as handle:
-        try:
-            fcntl.flock(handle, fcntl.LOCK_EX | fcntl.LOCK_NB)
-        except BlockingIOError as error:
-            raise UsageError(f"{fleet}: another batch is writing this fleet") from error
-        try:
-            yield
-        finally:
-            fcntl.flock(handle, fcntl.LOCK_UN)
+    """One batch per fleet at a time (a slow night must not overlap the next): a second
+    batch exits 2 at once with the holder (pid, host, command, since). A batch that fails
+    before its first commit leaves nothing behind (no lock file, no plotly.js), so the
+    folder stays usable."""
+    from tracelab.store.dataset import make_output_dir
+
+    created = not fleet.exists()
+    make_output_dir(fleet, "fleet")
+    locked = False
+    try:
+        with write_lock(fleet, "batch", timeout=0):
+            locked = True
+            try:
+                yield
+            finally:
+                if not layout.is_fleet(fleet):  # nothing was committed: remove what we made
+                    from tracelab.fleet.index import PLOTLY_FILE
+
+                    for name in (PLOTLY_FILE, layout.LOCK_FILE):
+                        with contextlib.suppress(OSError):
+                            (fleet / name).unlink(missing_ok=True)
+                    shutil.rmtree(fleet / layout.STAGING_DIR, ignore_errors=True)
+    finally:
+        if created and (locked or not any(fleet.iterdir())):
+            with contextlib.suppress(OSError):
+                fleet.rmdir()  # only when empty
 
 
 def _read(path: Path, schema: pl.Schema) -> pl.DataFrame:
@@ -98,6 +120,8 @@ def _read(path: Path, schema: pl.Schema) -> pl.DataFrame:
 def _known_logs(manifest: pl.DataFrame) -> dict[str, LogFile]:
     known: dict[str, LogFile] = {}
     for row in manifest.iter_rows(named=True):  # one row per log file
+        if row["status"] == "skipped" or row["run"] is None:  # no log: described afresh
+            continue
         known[row["file"]] = LogFile(row["file"], row["sha256"], row["bytes"], row["mtime_ns"],
                                      row["run"], row["origin"], row["vehicle"], row["date"],
                                      row["header_error"])
@@ -117,13 +141,21 @@ def _check_inputs(root: Path, fleet: Path, catalog: Path | None, previous: int,
         raise UsageError(f"{root}: not a folder of frame logs")
     if catalog is not None and not catalog.is_file():
         raise UsageError(f"{catalog}: catalog not found")
+    if catalog is not None:  # a bad catalog fails once, here, not once per run (exit 3)
+        from tracelab.network.catalog import load_catalog
+
+        load_catalog(catalog)
     if previous < 1:
         raise UsageError(f"--previous must be at least 1, not {previous}")
     if fleet.exists() and not fleet.is_dir():
         raise UsageError(f"{fleet}: exists and is not a folder")
-    if (fleet.is_dir() and not layout.is_fleet(fleet)
-            and any(p.name != layout.LOCK_FILE for p in fleet.iterdir())):
-        raise UsageError(f"{fleet}: exists and is not a tracelab fleet; choose another -o")
+    if fleet.is_dir() and not layout.is_fleet(fleet):
+        from tracelab.fleet.index import PLOTLY_FILE
+
+        # what a batch makes before its first commit (another batch may be at work in it)
+        ours = {layout.LOCK_FILE, layout.LEGACY_LOCK_FILE, PLOTLY_FILE, layout.STAGING_DIR}
+        if any(p.name not in ours for p in fleet.iterdir()):
+            raise UsageError(f"{fleet}: exists and is not a tracelab fleet; choose another -o")
 
 
 def run_batch(root: Path, fleet: Path, steps: PipelineSteps, catalog: Path | None = None,
@@ -143,8 +175,9 @@ def run_batch(root: Path, fleet: Path, steps: PipelineSteps, catalog: Path | Non
         old_runs = runs_frame([]) if not (fleet / layout.RUNS_FILE).is_file() else \
             pl.read_parquet(fleet / layout.RUNS_FILE, glob=False)
         known = _known_logs(old_manifest)
-        logs = [describe_log(p, known) for p in find_logs(root, exclude=fleet)]
+        logs = [describe_log(p, known, root) for p in find_logs(root, exclude=fleet)]
         specs = group_runs(logs, root, catalog)
+        ignored = [log for log in logs if log.skipped]
         done = {r["key"]: r for r in old_runs.iter_rows(named=True) if not r["retry"]}
         todo = [s for s in specs if s.key not in done]
         results: dict[str, RunResult] = {}
@@ -167,19 +200,22 @@ def run_batch(root: Path, fleet: Path, steps: PipelineSteps, catalog: Path | Non
                 if isinstance(executor, str):
                     pool.close()
         flags = _commit(fleet, specs, {log.path: log for log in logs}, results, done,
-                        old_runs, old_manifest, previous)
+                        old_runs, old_manifest, previous, ignored)
     failures = [(f"{s.vehicle}/{s.date}/{s.run}", results[s.key].reason or "")
-                for s in todo if results[s.key].status != "ok"]
+                for s in todo if results[s.key].status == "failed"]
+    suspects = [(f"{s.vehicle}/{s.date}/{s.run}", results[s.key].reason or "")
+                for s in todo if results[s.key].status == "suspect"]
     total = len(specs)
     name = executor if isinstance(executor, str) else executor.name
     return BatchSummary(fleet, total, len(todo) - len(failures), len(specs) - len(todo),
-                        failures, time.perf_counter() - start, flags, name)
+                        failures, time.perf_counter() - start, flags, name, suspects,
+                        [log.skipped or "" for log in ignored])
 
 
 def _commit(fleet: Path, specs: list[RunSpec], logs: dict[str, LogFile],
             results: dict[str, RunResult],
             done: dict[str, dict[str, Any]], old_runs: pl.DataFrame,
-            old_manifest: pl.DataFrame, previous: int) -> int:
+            old_manifest: pl.DataFrame, previous: int, ignored: list[LogFile]) -> int:
     """Write regressions, runs, index, then the manifest (the commit); drop stale outputs."""
     from tracelab.fleet.index import write_index
     from tracelab.fleet.regressions import regression_flags, with_flags
@@ -220,6 +256,11 @@ def _commit(fleet: Path, specs: list[RunSpec], logs: dict[str, LogFile],
         if row["key"] in archived:
             rows.append(row)
     manifest_rows.extend(kept.filter(pl.col("key").is_in(list(archived))).to_dicts())
+    for entry in ignored:  # not logs (FIFO, outside ROOT): listed with the reason, never a run
+        manifest_rows.append({"file": entry.path, "sha256": entry.sha256, "run": None,
+                              "origin": None, "vehicle": None, "date": None, "key": None,
+                              "status": "skipped", "reason": entry.skipped, "retry": False,
+                              "processed_at": now, "elapsed_s": None})
     for item in manifest_rows:  # size, mtime and header error from discovery (kept for archived)
         log = logs.get(item["file"])
         if log is not None:
@@ -238,7 +279,7 @@ def _commit(fleet: Path, specs: list[RunSpec], logs: dict[str, LogFile],
     manifest = pl.DataFrame(manifest_rows, schema=MANIFEST, strict=False)
     layout.replace_atomically(fleet / layout.MANIFEST_FILE,
                               lambda tmp: manifest.write_parquet(tmp))
-    _collect_garbage(fleet, set(runs.filter(pl.col("status") == "ok")["key"].to_list()))
+    _collect_garbage(fleet, set(runs.filter(pl.col("status").is_in(PUBLISHED))["key"].to_list()))
     return flags.height
 
 

@@ -3,6 +3,13 @@
 A run is the set of logs sharing ``%meta run`` (else the file name) and ``%origin``; its vehicle
 is ``%meta vehicle`` and its date the origin's date. The content key of a run (sha256 over its
 files' hashes, its catalog's hash and the pipeline version) decides whether it must be redone.
+
+Odd entries under the root never stop the batch: anything that is not a regular file (a FIFO,
+a socket, a device) and any symlink whose target lies outside the root is skipped with its
+reason (``LogFile.skipped``); a dangling symlink or a file that cannot be read (I/O error,
+permission) is a run of its own that fails with its reason. Vehicle names are reduced to
+``[A-Za-z0-9_.-]`` once, here (``safe_name``), so ``runs``, the manifest and the hive
+partitions of the data views all show the same name.
 """
 
 from __future__ import annotations
@@ -12,6 +19,7 @@ import hashlib
 import json
 import os
 import re
+import stat as stat_module
 from collections.abc import Mapping
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -41,6 +49,7 @@ class LogFile:
     vehicle: str
     date: str
     error: str | None = None
+    skipped: str | None = None  # not a log to process at all (FIFO, outside ROOT): why
 
 
 @dataclass(frozen=True)
@@ -107,16 +116,67 @@ def _date_of(origin: str | None, mtime_ns: int) -> str:
     return dt.datetime.fromtimestamp(mtime_ns / 1e9, tz=dt.UTC).date().isoformat()
 
 
-def describe_log(path: Path, known: Mapping[str, LogFile] | None = None) -> LogFile:
-    """Hash and read the header of one log; reuse ``known[path]`` when size and mtime match."""
+_KINDS = ((stat_module.S_ISFIFO, "a FIFO"), (stat_module.S_ISSOCK, "a socket"),
+          (stat_module.S_ISCHR, "a character device"), (stat_module.S_ISBLK, "a block device"),
+          (stat_module.S_ISDIR, "a folder"))
+
+
+def _problem(path: Path, root: Path | None) -> tuple[str | None, str | None]:
+    """(skip reason, failure reason) of an entry before it is opened; (None, None) for a
+    regular file that may be read. Never opens the file (a FIFO would block)."""
+    try:
+        mode = os.stat(path).st_mode
+    except FileNotFoundError:
+        target = os.readlink(path) if path.is_symlink() else "?"
+        return None, f"{path}: dangling symlink (points to {target}, which does not exist)"
+    except OSError as error:
+        return None, f"{path}: cannot read ({error.strerror or error})"
+    if root is not None and path.is_symlink():
+        resolved, base = path.resolve(), root.resolve()
+        if resolved != base and base not in resolved.parents:
+            return (f"{path}: symlink to {resolved}, outside the root {root}; not followed "
+                    "(link or copy the log into the root)"), None
+    for test, kind in _KINDS:
+        if test(mode):
+            return f"{path}: not a regular file ({kind}); skipped", None
+    if not os.access(path, os.R_OK):
+        return None, f"{path}: cannot read ({os.strerror(13)})"
+    return None, None
+
+
+def _unreadable(path: Path, reason: str, skipped: bool = False) -> LogFile:
+    """A LogFile for an entry that is never opened: identified by its path and reason."""
+    try:
+        st = os.lstat(path)
+        size, mtime = st.st_size, st.st_mtime_ns
+    except OSError:
+        size, mtime = 0, 0
+    sha = hashlib.sha256(f"unreadable:{path}:{reason}".encode()).hexdigest()
+    return LogFile(str(path), sha, size, mtime, stem(path.name), None, UNKNOWN_VEHICLE,
+                   _date_of(None, mtime), error=None if skipped else reason,
+                   skipped=reason if skipped else None)
+
+
+def describe_log(path: Path, known: Mapping[str, LogFile] | None = None,
+                 root: Path | None = None) -> LogFile:
+    """Hash and read the header of one log; reuse ``known[path]`` when size and mtime match.
+    Entries that are not regular readable files under ``root`` are described, not opened."""
     from tracelab.format.reader import read_header
 
+    skip, failure = _problem(path, root)
+    if skip is not None:
+        return _unreadable(path, skip, skipped=True)
+    if failure is not None:
+        return _unreadable(path, failure)
     stat = path.stat()
     previous = (known or {}).get(str(path))
     if (previous is not None and previous.bytes == stat.st_size
             and previous.mtime_ns == stat.st_mtime_ns):
         return previous
-    sha = file_sha256(path)
+    try:
+        sha = file_sha256(path)
+    except OSError as error:  # an I/O error part-way: this log fails alone
+        return _unreadable(path, f"{path}: cannot read ({error.strerror or error})")
     try:
         header = read_header(path)
     except TracelabError as error:
@@ -127,7 +187,7 @@ def describe_log(path: Path, known: Mapping[str, LogFile] | None = None) -> LogF
                        UNKNOWN_VEHICLE, _date_of(None, stat.st_mtime_ns),
                        error=f"{path}: cannot read ({error.strerror or error})")
     run = header.meta.get("run") or stem(path.name)
-    vehicle = header.meta.get("vehicle") or UNKNOWN_VEHICLE
+    vehicle = safe_name(header.meta.get("vehicle") or UNKNOWN_VEHICLE)  # one name everywhere
     return LogFile(str(path), sha, stat.st_size, stat.st_mtime_ns, run, header.origin, vehicle,
                    _date_of(header.origin, stat.st_mtime_ns))
 
@@ -160,6 +220,8 @@ def group_runs(logs: list[LogFile], root: Path, catalog: Path | None = None) -> 
     """
     groups: dict[tuple[str, str | None, str | None], list[LogFile]] = {}
     for log in logs:
+        if log.skipped:  # not a log: listed in the manifest with its reason, never a run
+            continue
         broken = log.path if log.error else None
         groups.setdefault((log.run, log.origin, broken), []).append(log)
     catalog_shas: dict[Path, str] = {}

@@ -26,6 +26,7 @@ td.reason { white-space: normal; max-width: 36em; overflow-wrap: anywhere; color
 th { background: #f1f0ec; font-weight: 600; }
 td.num { text-align: right; font-variant-numeric: tabular-nums; }
 tr.failed td { background: #fbf1ee; }
+tr.suspect td { background: #fbf7e4; }
 .flag { color: #8a4b14; font-weight: 600; }
 .chart { background: #fff; border: 1px solid #dedcd5; margin: 8px 0 18px; }
 a { color: #2f5d7c; }
@@ -65,13 +66,13 @@ def _runs_table(runs: pl.DataFrame) -> str:
     head = "".join(f"<th>{html.escape(c)}</th>" for c in (*lead, "report / reason", *rest))
     rows = []
     for row in runs.iter_rows(named=True):  # one row per run, not per frame
-        if row["status"] == "ok" and row.get("report"):
+        if row["status"] in ("ok", "suspect") and row.get("report"):
             link = f'<td><a href="{html.escape(row["report"], quote=True)}">report</a></td>'
         else:
             link = f'<td class="reason">{html.escape(row.get("reason") or "")}</td>'
         cells = ("".join(_cell(c, row.get(c)) for c in lead) + link
                  + "".join(_cell(c, row.get(c)) for c in rest))
-        css = ' class="failed"' if row["status"] != "ok" else ""
+        css = f' class="{row["status"]}"' if row["status"] in ("failed", "suspect") else ""
         rows.append(f"<tr{css}>{cells}</tr>")
     return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(rows)}</tbody></table>"
 

@@ -19,6 +19,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+import polars as pl
+
 from tracelab.errors import CatalogError, LogFormatError
 from tracelab.fleet import layout
 from tracelab.fleet.discover import RunSpec
@@ -40,7 +42,7 @@ class RunResult:
     """What a worker hands back: the summary row (``runs`` table) and how it went."""
 
     key: str
-    status: str  # "ok" | "failed"
+    status: str  # "ok" | "suspect" | "failed"
     reason: str | None
     retry: bool  # failed for a reason other than a bad log or catalog: retried next batch
     row: dict[str, Any] = field(default_factory=dict)
@@ -69,15 +71,16 @@ def process_run(spec: RunSpec, fleet: str, steps: PipelineSteps) -> RunResult:
     record = _record_path(fleet_path, spec.key)
     if record.is_file():  # the same content was finished before (retried or duplicated task)
         row = json.loads(record.read_text(encoding="utf-8"))
-        return RunResult(spec.key, "ok", None, False, row, time.perf_counter() - start,
-                         reused=True)
+        return RunResult(spec.key, row.get("status") or "ok", row.get("reason"), False, row,
+                         time.perf_counter() - start, reused=True)
     staging = fleet_path / layout.STAGING_DIR / f"{spec.key[:16]}-{uuid.uuid4().hex[:8]}"
     try:
         staging.mkdir(parents=True)
         row = _run_pipeline(spec, fleet_path, staging, steps)
         layout.write_json(record, row)
-        return RunResult(spec.key, "ok", None, False, row, time.perf_counter() - start)
-    except (LogFormatError, CatalogError) as error:  # the input: final until a file changes
+        return RunResult(spec.key, row["status"], row["reason"], False, row,
+                         time.perf_counter() - start)
+    except (LogFormatError, CatalogError, NoRecords) as error:  # the input: final until it changes
         return failed_result(spec, str(error), retry=False,
                              elapsed_s=time.perf_counter() - start)
     except Exception as error:  # noqa: BLE001 - isolation: any bug fails this run only
@@ -87,13 +90,45 @@ def process_run(spec: RunSpec, fleet: str, steps: PipelineSteps) -> RunResult:
         shutil.rmtree(staging, ignore_errors=True)
 
 
+class NoRecords(Exception):
+    """The run's logs hold no valid record at all: it fails (not ``ok`` with only rejects)."""
+
+
+def suspicion(dataset: Path, ingested: Any) -> str | None:
+    """Why a run that was ingested looks wrong (None when it does not): more than
+    SUSPECT_REJECT_SHARE of its record lines rejected, or a file-level problem (parts that
+    overlap in time, a part that is another part in other compression). NoRecords when no
+    record line was valid."""
+    from tracelab.fleet.summary import SUSPECT_REJECT_SHARE
+    from tracelab.store.dataset import open_dataset
+
+    manifest = open_dataset(dataset).manifest()
+    records = int(sum(manifest[c].fill_null(0).sum()
+                      for c in ("frames", "errors", "status", "marks", "losses")))
+    rejects = int(manifest["rejects"].fill_null(0).sum())
+    if records == 0:
+        raise NoRecords(f"no valid record in the run's logs ({rejects} line(s) rejected)")
+    reasons = []
+    share = rejects / (records + rejects)
+    if share > SUSPECT_REJECT_SHARE:
+        reasons.append(f"{share:.0%} of the record lines were rejected ({rejects} of "
+                       f"{records + rejects}; more than {SUSPECT_REJECT_SHARE:.0%})")
+    overlapping = manifest.filter(pl.col("overlaps").is_not_null())["file"].to_list()
+    if overlapping:
+        reasons.append(f"parts overlap in time: {', '.join(overlapping)}")
+    for file, twin in getattr(ingested, "same_content", []) or []:
+        reasons.append(f"{file} is the same log as {twin}")
+    return "; ".join(reasons) or None
+
+
 def _run_pipeline(spec: RunSpec, fleet: Path, staging: Path, steps: PipelineSteps) -> dict[str, Any]:
     from tracelab.fleet import summary
     from tracelab.store.dataset import open_dataset
 
     dataset = staging / "dataset"
     catalog = Path(spec.catalog) if spec.catalog else None
-    steps.ingest([Path(f) for f in spec.files], dataset, quiet=True)
+    ingested = steps.ingest([Path(f) for f in spec.files], dataset, quiet=True)
+    suspect = suspicion(dataset, ingested)
     steps.timing(dataset, catalog=catalog)
     steps.load(dataset)
     faults_json = None
@@ -107,6 +142,8 @@ def _run_pipeline(spec: RunSpec, fleet: Path, staging: Path, steps: PipelineStep
     con = open_dataset(dataset).connect()
     try:
         row = summary.run_row(con, spec, faults_json)
+        if suspect is not None:
+            row.update(status="suspect", reason=suspect)
         stats = summary.message_stats(con, spec)
         out = staging / "out"
         tables = summary.export_tables(con, out, stats)

@@ -8,6 +8,7 @@
     FLEET/reports/vehicle=V/date=D/<part>.html    per-run dashboards (+ <part>.faults.json)
     FLEET/records/<key>.json                      a finished run's summary row (retry shortcut)
     FLEET/.staging/                               work in progress; never read
+    FLEET/.tracelab.lock                          one batch at a time (pid, host, command)
 
 ``<part>`` is ``<run>-<key16>``: the content key makes every per-run write idempotent.
 """
@@ -30,7 +31,8 @@ DATA_DIR = "data"
 REPORTS_DIR = "reports"
 RECORDS_DIR = "records"
 STAGING_DIR = ".staging"
-LOCK_FILE = ".batch.lock"
+LOCK_FILE = ".tracelab.lock"  # the store's write lock (store/lock.py), one batch at a time
+LEGACY_LOCK_FILE = ".batch.lock"  # left by batches of older versions
 _KEY16 = re.compile(r"^[0-9a-f]{16}$")
 
 

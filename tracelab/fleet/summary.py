@@ -18,7 +18,14 @@ from tracelab.format.grammar import ERROR_TYPES
 BUS_LOAD = pl.List(pl.Struct({"bus": pl.String, "max_load_ratio": pl.Float64,
                               "p99_load_ratio": pl.Float64}))
 
-#: The fleet summary, one row per run; ``status`` is ``ok`` or ``failed`` (then ``reason``).
+#: Statuses whose outputs are published (data views, reports): ``suspect`` runs are complete
+#: but their input looks wrong (reason says why).
+PUBLISHED = ("ok", "suspect")
+#: A run is ``suspect`` when more than this share of its record lines was rejected.
+SUSPECT_REJECT_SHARE = 0.05
+
+#: The fleet summary, one row per run; ``status`` is ``ok``, ``suspect`` or ``failed`` (the
+#: last two with a ``reason``).
 _RUNS_COLUMNS: dict[str, Any] = {
     "run": pl.String, "vehicle": pl.String, "date": pl.Date, "origin": pl.String,
     "key": pl.String, "status": pl.String, "reason": pl.String, "retry": pl.Boolean,

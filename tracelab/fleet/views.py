@@ -16,6 +16,7 @@ import polars as pl
 from tracelab.errors import StoreError
 from tracelab.fleet import layout
 from tracelab.fleet.regressions import REGRESSIONS
+from tracelab.fleet.summary import PUBLISHED
 from tracelab.store import schema
 from tracelab.store.dataset import glob_escape
 from tracelab.store.limits import configure
@@ -76,7 +77,7 @@ def connect_runs(fleet: Path, runs: pl.DataFrame,
         flags = regressions if regressions is not None else pl.DataFrame(schema=REGRESSIONS)
         con.register("_regressions", flags.to_arrow())
         con.execute("CREATE VIEW regressions AS SELECT * FROM _regressions")
-        ok = runs.filter(pl.col("status") == "ok")["key"].str.slice(0, 16).to_list()
+        ok = runs.filter(pl.col("status").is_in(PUBLISHED))["key"].str.slice(0, 16).to_list()
         made = set()
         for table, files in table_files(fleet, set(ok)).items():
             listing = ", ".join(_sql_str(glob_escape(f.absolute())) for f in files)
