@@ -237,3 +237,15 @@ def test_storage_error_is_a_store_error_with_its_own_exit_code() -> None:
 
     assert issubclass(StorageError, StoreError)
     assert StorageError.exit_code == 5 != EXIT_INTERNAL
+
+
+def test_simulate_follows_the_same_output_rule(tmp_path: Path,
+                                               capsys: pytest.CaptureFixture[str]) -> None:
+    scenario = Path(__file__).resolve().parents[2] / "demo_logs" / "endurance-night.toml"
+    log = tmp_path / "made" / "here" / "s.frames"
+    assert main(["simulate", str(scenario), "-o", str(log), "--duration", "200ms", "-q"]) == 0
+    assert log.is_file()
+    capsys.readouterr()
+    assert main(["simulate", str(scenario), "-o", "/proc/nope/s.frames",
+                 "--duration", "200ms", "-q"]) == 2
+    assert "cannot create" in _one_line(capsys.readouterr().err)
