@@ -416,6 +416,10 @@ def interactive(con: duckdb.DuckDBPyConnection, lines: Iterable[str] | None = No
             except (QueryError, UsageError) as error:
                 stdout.write(f"error: {error}\n")
                 failed = True
+            except KeyboardInterrupt:
+                if piped:  # a script: stop it (exit 130)
+                    raise
+                stdout.write("interrupted\n")  # at the prompt: the query stops, the prompt stays
     finally:
         save_history()
     return EXIT_INPUT if failed and piped else 0
