@@ -175,3 +175,24 @@ def test_logger_that_acknowledges_also_flags(tmp_path: Path) -> None:
     res = _run(tmp_path, "rx-noise", ack=True, duration="300ms")
     assert {e[3] for e in _errors(res)} <= {"stuff", "form"}
     assert all(e["flag_bits"] >= 7 for e in res.errors if e["kind"] == "rx")
+
+
+def test_fd_logger_detects_within_six_nominal_bits_of_the_flag(tmp_path: Path) -> None:
+    # after an error the flag is sent at the nominal bit rate, also in a CAN FD data phase
+    body = (message("100", "a", "2ms", form="sfb", dlc=12) + message("200", "b", "3ms",
+                                                                     form="sfb", dlc=15)
+            + '[[fault]]\nkind = "rx-noise"\nnode = "c"\nrate = 0.3\n')
+    path = tmp_path / "fd.toml"
+    path.write_text('[run]\nname = "fd"\nduration = "300ms"\nseed = 3\n\n'
+                    '[bus.P]\nnominal = 500000\ndata = 2000000\n\n'
+                    + "".join(f'[node.{n}]\nbuses = ["P"]\n' for n in "abc") + "\n" + body,
+                    encoding="utf-8")
+    from tracelab.simulate import load_scenario
+
+    sc = load_scenario(path)
+    res = run_buses(sc, sc.run.duration_ns, sc.run.seed)[0]
+    logged = [e for e in res.errors if e["logged"] and not e["passive_flag"] and e["kind"] == "rx"]
+    assert len(logged) > 20
+    for e in logged:
+        lag = e["logged"]["t_ns"] - e["t_ns"]
+        assert lag % BIT_NS == 0 and BIT_NS <= lag <= 6 * BIT_NS  # derived: bits d..d+5

@@ -755,7 +755,8 @@ class BusEngine:
         logged: dict[str, Any] | None = None
         if not seen_whole:
             if self.own_view:
-                t_rec = start + self._time_to_bit(log[0] + 1, bits, dpb)
+                # the flag and everything after it go at the nominal bit rate
+                t_rec = t_flag + int(round((log[0] + 1 - d) * self.bit_ns))
                 etype, efield = log[1], log[2]
                 unknown_id = lay is not None and (d - (kind in ("bus", "tx"))) <= lay.id_done
             else:
