@@ -27,6 +27,13 @@ from tracelab.store.schema import manifest_buses
 LOAD_WINDOWS_NS = (10_000_000, 100_000_000, 1_000_000_000, 10_000_000_000, 60_000_000_000)
 #: A window is offered only when the run holds at least this many of it.
 MIN_WINDOWS_PER_RUN = 5
+#: A message "deviates" (drawn by default in the per-message charts) when its median interval
+#: is off the period by at least this share, or a 1st / 99th percentile cycle lies this far
+#: from the period; the others are counted in words ("N others within tolerance").
+DEVIATION_TOLERANCE_PCT = 0.01  # 100 ppm: beyond any crystal's tolerance
+JITTER_TOLERANCE_PCT = 10.0
+#: A node's clock "drifts" beyond this (crystal tolerances are tens of ppm; common practice).
+DRIFT_TOLERANCE_PPM = 5.0
 
 
 @cache
@@ -51,6 +58,9 @@ class ReportData:
     drift: pl.DataFrame = field(default_factory=pl.DataFrame)
     gaps: pl.DataFrame = field(default_factory=pl.DataFrame)
     gap_bucket_ns: int = 1
+    #: messages whose every gap lies inside a logger loss (not drawn in the raster)
+    gaps_logger_only: int = 0
+    top_ids: pl.DataFrame = field(default_factory=pl.DataFrame)
     losses: pl.DataFrame = field(default_factory=pl.DataFrame)
     loss_summary: pl.DataFrame = field(default_factory=pl.DataFrame)
     errors: pl.DataFrame = field(default_factory=pl.DataFrame)
@@ -237,7 +247,10 @@ def timing_table(con: duckdb.DuckDBPyConnection, run: str, limit: int = 500) -> 
         )
         SELECT * EXCLUDE (p01_pct, p99_pct),
                greatest(p99_pct - deviation_pct, 0) AS err_plus_pct,
-               greatest(deviation_pct - p01_pct, 0) AS err_minus_pct
+               greatest(deviation_pct - p01_pct, 0) AS err_minus_pct,
+               coalesce(abs(deviation_pct) >= {DEVIATION_TOLERANCE_PCT}
+                        OR p99_pct >= {JITTER_TOLERANCE_PCT}
+                        OR p01_pct <= -{JITTER_TOLERANCE_PCT}, false) AS deviates
         FROM pct
         ORDER BY coalesce(missing, 0) DESC,
                  coalesce(phase_std_ns / nullif(period_ns, 0), 0) DESC,
@@ -259,7 +272,8 @@ def drift_table(con: duckdb.DuckDBPyConnection, run: str) -> pl.DataFrame:
     run_filter = "WHERE run = $run" if "run" in cols else ""
     sql = (f'SELECT {bus} AS bus, node, "{drift}" AS drift_ppm, {lo} AS min_drift_ppm, '
            f"{hi} AS max_drift_ppm, {hi} - \"{drift}\" AS spread_plus_ppm, "
-           f"\"{drift}\" - {lo} AS spread_minus_ppm, {messages} AS messages "
+           f"\"{drift}\" - {lo} AS spread_minus_ppm, {messages} AS messages, "
+           f"coalesce(abs(\"{drift}\") >= {DRIFT_TOLERANCE_PPM}, false) AS deviates "
            f"FROM node_drift {run_filter} ORDER BY abs(drift_ppm) DESC NULLS LAST, node")
     return _frame(con, sql, {"run": run} if run_filter else {})
 
@@ -279,11 +293,37 @@ def gap_cells(con: duckdb.DuckDBPyConnection, run: str, bucket_ns: int) -> pl.Da
     return _frame(con, envelope_sql("gaps"), {"run": run, "bucket_ns": bucket_ns})
 
 
+def split_logger_only(cells: pl.DataFrame) -> tuple[pl.DataFrame, int]:
+    """The raster cells of messages with at least one gap on the bus, and the number of
+    messages whose gaps all lie inside logger losses (said in words instead of drawn)."""
+    if cells.is_empty():
+        return cells, 0
+    keys = ["bus", "id", "ext"]
+    on_bus = cells.group_by(keys).agg((~pl.col("logger")).any().alias("on_bus"))
+    shown = on_bus.filter(pl.col("on_bus")).select(keys)
+    kept = cells.join(shown, on=keys, how="semi", maintain_order="left")
+    return kept, on_bus.height - shown.height
+
+
+def top_identifiers(con: duckdb.DuckDBPyConnection, run: str, top: int = 10) -> pl.DataFrame:
+    """The identifiers with the largest share of each bus's busy time (from `load`), with the
+    catalog name when the timing analysis knows it."""
+    names = "LEFT JOIN (SELECT DISTINCT run, bus, id, ext, name FROM timing) n USING (run, bus, " \
+            "id, ext)" if "timing" in _views(con) else ""
+    name = "n.name" if names else "NULL"
+    return _frame(con, f"SELECT t.bus, t.id, t.ext, {name} AS name, t.frames, t.busy_ns, "
+                       f"t.share, t.rank FROM load_top_ids t {names} WHERE t.run = $run "
+                       "AND t.rank <= $top ORDER BY t.bus, t.rank", {"run": run, "top": top})
+
+
 def counter_envelopes(con: duckdb.DuckDBPyConnection, run: str, bucket_ns: int,
                       views: set[str]) -> pl.DataFrame:
     source = "counters" if "counters" in views else "status"
-    con.execute(f"CREATE OR REPLACE TEMP VIEW counter_source AS "
-                f"SELECT run, bus, node, t_ns, tec, rec FROM {source}")
+    # seq: the source's own row order (the replay writes rows in time order; at one instant
+    # the last row is the value after it), taken before any parallel operator can reorder.
+    con.execute(f"CREATE OR REPLACE TEMP TABLE counter_source AS "
+                f"SELECT run, bus, node, t_ns, tec, rec, row_number() OVER () AS seq "
+                f"FROM (SELECT * FROM {source} WHERE run = $run)", {"run": run})
     return _frame(con, envelope_sql("counters"), {"run": run, "bucket_ns": bucket_ns})
 
 
@@ -317,7 +357,10 @@ def report_data(con: duckdb.DuckDBPyConnection, run: str, faults: dict[str, Any]
         data.drift = drift_table(con, run)
     if "gaps" in views:
         data.gap_bucket_ns = _nice_bucket_ns(span, raster_buckets)
-        data.gaps = gap_cells(con, run, data.gap_bucket_ns)
+        data.gaps, data.gaps_logger_only = split_logger_only(
+            gap_cells(con, run, data.gap_bucket_ns))
+    if "load_top_ids" in views:
+        data.top_ids = top_identifiers(con, run)
     data.losses = _frame(con, "SELECT bus, t_ns AS from_ns, until_ns AS to_ns, count FROM losses "
                               "WHERE run = $run ORDER BY t_ns", {"run": run})
     data.loss_summary = _frame(

@@ -93,8 +93,50 @@ def add_marks(fig: go.Figure, marks: pl.DataFrame) -> None:
     extend_layout(fig, shapes, notes)
 
 
+LOSS_NAME = "logger-loss interval (no data)"
+
+
+def loss_intervals(losses: pl.DataFrame | None, bus: str | None = None) -> list[tuple[int, int]]:
+    """The logger-loss intervals of one bus (those declared for every bus, `*`, included);
+    all of them when ``bus`` is None."""
+    if losses is None or losses.is_empty():
+        return []
+    part = losses if bus is None else losses.filter(pl.col("bus").is_in([bus, "*"]))
+    return [(int(a), int(b)) for a, b in part.select("from_ns", "to_ns").iter_rows()
+            if a is not None and b is not None]
+
+
+def add_loss_shading(fig: go.Figure, losses: pl.DataFrame | None, y_top: float,
+                     rows: Sequence[int] = (), bus: str | None = None) -> None:
+    """Hatched violet spans where the logger recorded nothing: a dip or a flat line there is
+    missing data, not a bus level. One trace per subplot row (``rows``; none: a plain
+    figure); logger losses are rare events."""
+    spans = loss_intervals(losses, bus)
+    if not spans:
+        return
+    xs: list[float | None] = []
+    ys: list[float | None] = []
+    for a, b in spans:
+        x0, x1 = a / NS_PER_S, b / NS_PER_S
+        xs += [x0, x1, x1, x0, x0, None]
+        ys += [0, 0, y_top, y_top, 0, None]
+    for i, row in enumerate(rows or (None,)):
+        trace = go.Scatter(
+            x=xs, y=ys, mode="lines", fill="toself", name=LOSS_NAME, legendgroup="loss",
+            showlegend=i == 0, fillcolor=_alpha(style.LOGGER_SHADE, 0.10),
+            fillpattern={"shape": style.LOGGER_PATTERN, "fgcolor": style.LOGGER_SHADE,
+                         "fgopacity": 0.55, "size": 8},
+            line={"width": 0.8, "color": style.LOGGER_SHADE, "dash": "dot"},
+            hoverinfo="text", text=LOSS_NAME)
+        if row is None:
+            fig.add_trace(trace)
+        else:
+            fig.add_trace(trace, row=row, col=1)
+
+
 def load_figure(load: pl.DataFrame, stats: pl.DataFrame, buses: Sequence[str], t0_ns: int,
-                t1_ns: int, load_limit: float, marks: pl.DataFrame) -> go.Figure:
+                t1_ns: int, load_limit: float, marks: pl.DataFrame,
+                losses: pl.DataFrame | None = None) -> go.Figure:
     """Bus load per bus; one button per window size; mean (dashed) and peak (dot) marked;
     a reference line at the recommended maximum."""
     fig = go.Figure()
@@ -141,13 +183,17 @@ def load_figure(load: pl.DataFrame, stats: pl.DataFrame, buses: Sequence[str], t
                     visible=visible, showlegend=False, legendgroup=name,
                     hovertemplate=f"{name} peak {peak:.1%} at %{{x:.3f}} s<extra></extra>"))
                 owners += [window_ns, window_ns]
-    buttons = [{"label": window_label(w), "method": "restyle",
-                "args": [{"visible": [o == w for o in owners]}]} for w in windows]
     peak_all = float(load["load_max"].max()) if not load.is_empty() else 0.0  # type: ignore[arg-type]
+    y_top = max(load_limit, peak_all) * 1.15 or 1
+    if loss_intervals(losses):  # the shading is visible under every window choice
+        add_loss_shading(fig, losses, y_top)
+        owners.append(-1)
+    buttons = [{"label": window_label(w), "method": "restyle",
+                "args": [{"visible": [o in (w, -1) for o in owners]}]} for w in windows]
     layout = style.base_layout(
         340, xaxis=_time_axis(t0_ns, t1_ns),
         yaxis={"title": {"text": "bus load"}, "tickformat": ".0%", "gridcolor": style.GRID,
-               "rangemode": "tozero", "range": [0, max(load_limit, peak_all) * 1.15 or 1]})
+               "rangemode": "tozero", "range": [0, y_top]})
     if len(buttons) > 1:
         layout["updatemenus"] = [{
             "type": "buttons", "direction": "right", "x": 1, "xanchor": "right", "y": 1.16,
@@ -174,24 +220,41 @@ def _alpha(hex_colour: str, alpha: float) -> str:
 
 def deviation_figure(timing: pl.DataFrame, buses: Sequence[str], limit: int = 60) -> go.Figure:
     """Median interval minus the period (percent of the period) per message, the bar from
-    the 1st to the 99th percentile of the cycle deviation; messages in worst-first order."""
+    the 1st to the 99th percentile of the cycle deviation; worst first. Only the messages that
+    deviate are drawn at first (column ``deviates``); a button switches to all of them."""
     fig = go.Figure()
     rows = timing.filter(pl.col("deviation_pct").is_not_null()).head(limit) \
         if "deviation_pct" in timing.columns else pl.DataFrame()
+    groups: list[tuple[str, pl.DataFrame]] = []
     if not rows.is_empty():
+        flagged = rows.filter(pl.col("deviates")) if "deviates" in rows.columns else rows
+        groups = [("deviating", flagged), ("all", rows)]
+    for index, (group, part) in enumerate(groups):
         labels = [esc(message_label(b, i, e, n)) for b, i, e, n in
-                  rows.select("bus", "id", "ext", "name").iter_rows()]
+                  part.select("bus", "id", "ext", "name").iter_rows()]
         colours = [style.bus_colour(list(buses).index(b)) if b in buses else style.MUTED
-                   for b in rows["bus"].to_list()]
+                   for b in part["bus"].to_list()]
         fig.add_trace(go.Scatter(
-            x=labels, y=rows["deviation_pct"].to_numpy(), mode="markers",
-            name="period deviation", marker={"size": 8, "color": colours},
+            x=labels, y=part["deviation_pct"].to_numpy(), mode="markers", name=group,
+            visible=index == 0, marker={"size": 8, "color": colours},
             error_y={"type": "data", "symmetric": False,
-                     "array": rows["err_plus_pct"].fill_null(0).to_numpy(),
-                     "arrayminus": rows["err_minus_pct"].fill_null(0).to_numpy(),
+                     "array": part["err_plus_pct"].fill_null(0).to_numpy(),
+                     "arrayminus": part["err_minus_pct"].fill_null(0).to_numpy(),
                      "color": style.MUTED, "thickness": 1.2, "width": 4},
             hovertemplate="%{x}<br>median interval %{y:+.3f}% of the period"
                           "<extra></extra>"))
+    extra: dict[str, Any] = {}
+    if groups:
+        n_dev, n_all = len(groups[0][1]), len(groups[1][1])
+        extra["updatemenus"] = [{
+            "type": "buttons", "direction": "right", "x": 1, "xanchor": "right", "y": 1.02,
+            "yanchor": "bottom", "showactive": True, "active": 0, "bgcolor": style.PAGE,
+            "bordercolor": style.GRID, "font": {"size": 11},
+            "buttons": [{"label": f"deviating ({n_dev})", "method": "restyle",
+                         "args": [{"visible": [True, False]}]},
+                        {"label": f"all ({n_all})", "method": "restyle",
+                         "args": [{"visible": [False, True]}]}]}]
+        extra["margin"] = {"l": 64, "r": 24, "t": 48, "b": 44}
     fig.update_layout(**style.base_layout(
         320, showlegend=False,
         xaxis={"title": {"text": "message (worst first)"}, "tickangle": -40,
@@ -199,7 +262,7 @@ def deviation_figure(timing: pl.DataFrame, buses: Sequence[str], limit: int = 60
         yaxis={"title": {"text": "deviation [% of period]"}, "gridcolor": style.GRID,
                "zeroline": True, "zerolinecolor": style.RULE, "exponentformat": "none",
                "range": _symmetric_range(rows, ("deviation_pct",), MIN_DEVIATION_RANGE_PCT,
-                                         ("err_plus_pct", "err_minus_pct"))}))
+                                         ("err_plus_pct", "err_minus_pct"))}, **extra))
     return fig
 
 
@@ -219,25 +282,32 @@ def _symmetric_range(frame: pl.DataFrame, columns: Sequence[str], floor: float,
 
 
 def drift_figure(drift: pl.DataFrame) -> go.Figure:
-    """Clock drift per node in ppm (from its messages' period drift)."""
+    """Clock drift per node in ppm (from its messages' period drift), one horizontal bar per
+    node that drifts beyond tolerance (column ``deviates``); the others are said in words."""
     fig = go.Figure()
+    if "deviates" in drift.columns:
+        drift = drift.filter(pl.col("deviates"))
     if not drift.is_empty():
         labels = [esc(n if b is None else f"{b} {n}") for b, n in
                   drift.select("bus", "node").iter_rows()]
         spread = {}
         if drift["min_drift_ppm"].null_count() < len(drift):
-            spread = {"error_y": {"type": "data", "symmetric": False,
+            spread = {"error_x": {"type": "data", "symmetric": False,
                                   "array": drift["spread_plus_ppm"].fill_null(0).to_numpy(),
                                   "arrayminus": drift["spread_minus_ppm"].fill_null(0)
                                   .to_numpy(), "color": style.MUTED, "thickness": 1.2}}
-        fig.add_trace(go.Bar(x=labels, y=drift["drift_ppm"].to_numpy(), name="clock drift",
-                             marker={"color": style.BUS_ACCENTS[1]}, width=0.5, **spread,
-                             hovertemplate="%{x}: %{y:+.1f} ppm (median over its messages)"
+        fig.add_trace(go.Bar(y=labels, x=drift["drift_ppm"].to_numpy(), name="clock drift",
+                             orientation="h", marker={"color": style.BUS_ACCENTS[1]},
+                             width=0.6, **spread,
+                             hovertemplate="%{y}: %{x:+.1f} ppm (median over its messages)"
                                            "<extra></extra>"))
     fig.update_layout(**style.base_layout(
-        260, showlegend=False, xaxis={"title": {"text": "node"}, "gridcolor": style.GRID},
-        yaxis={"title": {"text": "clock drift [ppm]"}, "gridcolor": style.GRID,
-               "zeroline": True, "zerolinecolor": style.RULE, "exponentformat": "none",
+        100 + 30 * max(1, len(drift)), showlegend=False,
+        yaxis={"title": {"text": ""}, "gridcolor": style.GRID, "automargin": True,
+               "type": "category"},
+        xaxis={"title": {"text": "clock drift [ppm] (+ = slow clock, longer periods)"},
+               "gridcolor": style.GRID, "zeroline": True, "zerolinecolor": style.RULE,
+               "exponentformat": "none",
                "range": _symmetric_range(drift, ("max_drift_ppm", "min_drift_ppm",
                                                  "drift_ppm"), MIN_DRIFT_RANGE_PPM)}))
     return fig
@@ -250,6 +320,7 @@ def gaps_figure(cells: pl.DataFrame, bucket_ns: int, losses: pl.DataFrame, t0_ns
     where the logger lost it; logger-loss intervals shaded over the whole raster."""
     fig = go.Figure()
     names = names or {}
+    keys: list[tuple[Any, Any, Any]] = []
     n_buckets = max(1, -(-(t1_ns - t0_ns) // bucket_ns) + 1)
     first_bucket = (t0_ns // bucket_ns) * bucket_ns
     height = 240
@@ -275,16 +346,24 @@ def gaps_figure(cells: pl.DataFrame, bucket_ns: int, losses: pl.DataFrame, t0_ns
                          ("lost by the logger", style.GAP_LOGGER)):
         fig.add_trace(go.Scatter(x=[None], y=[None], mode="markers", name=name,
                                  marker={"symbol": "square", "size": 10, "color": colour}))
-    if not losses.is_empty():
-        fig.add_trace(go.Scatter(x=[None], y=[None], mode="markers", name="logger-loss interval",
-                                 marker={"symbol": "square", "size": 10,
-                                         "color": _alpha(style.LOGGER_SHADE, 0.35)}))
-        extend_layout(fig, [  # logger losses are rare events
-            {"type": "rect", "xref": "x", "yref": "paper", "x0": a / NS_PER_S,
-             "x1": b / NS_PER_S, "y0": 0, "y1": 1, "fillcolor": style.LOGGER_SHADE,
-             "opacity": 0.45, "line": {"width": 1, "color": style.LOGGER_SHADE},
-             "layer": "below"}
-            for a, b in losses.select("from_ns", "to_ns").iter_rows()])
+    if loss_intervals(losses) and not cells.is_empty():
+        fig.add_trace(go.Scatter(x=[None], y=[None], mode="markers", name=LOSS_NAME,
+                                 marker={"symbol": "square-open", "size": 10,
+                                         "color": style.LOGGER_SHADE,
+                                         "line": {"width": 2}}))
+        # each bus's losses over that bus's rows only (rows are grouped by bus)
+        shapes = []
+        bus_rows: dict[Any, list[int]] = {}
+        for i, (bus, _, _) in enumerate(keys):
+            bus_rows.setdefault(bus, []).append(i)
+        for bus, idx in bus_rows.items():
+            for a, b in loss_intervals(losses, bus):  # logger losses are rare events
+                shapes.append({
+                    "type": "rect", "xref": "x", "yref": "y", "x0": a / NS_PER_S,
+                    "x1": b / NS_PER_S, "y0": min(idx) - 0.5, "y1": max(idx) + 0.5,
+                    "fillcolor": _alpha(style.LOGGER_SHADE, 0.18), "layer": "above",
+                    "line": {"width": 1.5, "color": style.LOGGER_SHADE, "dash": "dot"}})
+        extend_layout(fig, shapes)
     fig.update_layout(**style.base_layout(
         height, xaxis=_time_axis(t0_ns, t1_ns),
         yaxis={"title": {"text": ""}, "automargin": True, "autorange": "reversed",
@@ -297,8 +376,9 @@ def gaps_figure(cells: pl.DataFrame, bucket_ns: int, losses: pl.DataFrame, t0_ns
 
 
 def errors_figure(errors: pl.DataFrame, bucket_ns: int, t0_ns: int, t1_ns: int,
-                  marks: pl.DataFrame) -> go.Figure:
-    """Error events per time bucket, stacked by error type (shades of red)."""
+                  marks: pl.DataFrame, losses: pl.DataFrame | None = None) -> go.Figure:
+    """Error events per time bucket, stacked by error type (shades of red, each type with a
+    pattern of its own)."""
     fig = go.Figure()
     if not errors.is_empty():
         several = errors["bus"].n_unique() > 1
@@ -309,19 +389,27 @@ def errors_figure(errors: pl.DataFrame, bucket_ns: int, t0_ns: int, t1_ns: int,
                 x=seconds(part["t_ns"] + bucket_ns // 2), y=part["errors"].to_numpy(),
                 width=bucket_ns / NS_PER_S, name=name,
                 marker={"color": style.ERROR_TYPE_COLOURS.get(kind, style.ERROR_RED),
+                        "pattern": {"shape": style.ERROR_TYPE_PATTERNS.get(kind, "-"),
+                                    "fgcolor": "#ffffff", "fgopacity": 0.7, "size": 6},
                         "line": {"width": 0}},
                 hovertemplate=f"{name} errors: %{{y}} around %{{x:.2f}} s<extra></extra>"))
+    peak = 1.0
+    if not errors.is_empty():
+        per_bucket = errors.group_by("t_ns").agg(pl.col("errors").sum())["errors"].max()
+        peak = float(per_bucket) if isinstance(per_bucket, int | float) else 1.0  # type: ignore[arg-type]
+    add_loss_shading(fig, losses, peak * 1.1)
     fig.update_layout(**style.base_layout(
         260, barmode="stack", bargap=0, xaxis=_time_axis(t0_ns, t1_ns),
         yaxis={"title": {"text": f"errors per {window_label(bucket_ns)}"},
-               "gridcolor": style.GRID, "rangemode": "tozero"}))
+               "gridcolor": style.GRID, "rangemode": "tozero", "range": [0, peak * 1.1]}))
     add_marks(fig, marks)
     return fig
 
 
 def counters_figure(counters: pl.DataFrame, states: pl.DataFrame, t0_ns: int, t1_ns: int,
-                    marks: pl.DataFrame) -> go.Figure:
-    """TEC and REC per node (bucket peaks, step lines) with the 96 / 128 / 256 levels and
+                    marks: pl.DataFrame, losses: pl.DataFrame | None = None) -> go.Figure:
+    """TEC and REC per node as step functions through real counter values (every change, or
+    each bucket's first, lowest, highest and last value), with the 96 / 128 / 256 levels and
     state bands behind them, and a per-node state timeline below; one shared time axis."""
     nodes = (counters.select("bus", "node").unique(maintain_order=True).rows()
              if not counters.is_empty() else [])
@@ -335,10 +423,9 @@ def counters_figure(counters: pl.DataFrame, states: pl.DataFrame, t0_ns: int, t1
     labels = {k: esc(k[1] if len({b for b, _ in nodes}) <= 1 else f"{k[0]} {k[1]}")
               for k in nodes}
     top = 300
-    for prefix in ("tec", "rec"):
-        if not counters.is_empty():
-            peak = counters[f"{prefix}_max"].max()
-            top = max(top, int(peak) + 20 if isinstance(peak, int | float) else top)
+    if not counters.is_empty():
+        peak = counters["value"].max()
+        top = max(top, int(peak) + 20 if isinstance(peak, int | float) else top)
     for row_index in (1, 2):
         yref = "y" if row_index == 1 else f"y{row_index}"
         xref = "x domain" if row_index == 1 else f"x{row_index} domain"
@@ -362,13 +449,14 @@ def counters_figure(counters: pl.DataFrame, states: pl.DataFrame, t0_ns: int, t1
         if part.is_empty():
             continue
         colour = style.node_colour(index)
-        x = seconds(part["t_ns"])
+        dash = style.NODE_DASHES[index % len(style.NODE_DASHES)]
         for row_index, prefix in ((1, "tec"), (2, "rec")):
+            series = part.filter(pl.col("counter") == prefix)
             fig.add_trace(go.Scatter(
-                x=x, y=part[f"{prefix}_max"].to_numpy(), mode="lines", name=labels[key],
-                line={"color": colour, "width": 1.6, "shape": "hv"}, legendgroup=labels[key],
-                showlegend=row_index == 1,
-                hovertemplate=f"{labels[key]} {prefix.upper()} %{{y}} at %{{x:.3f}} s"
+                x=seconds(series["t_ns"]), y=series["value"].to_numpy(), mode="lines",
+                name=labels[key], legendgroup=labels[key], showlegend=row_index == 1,
+                line={"color": colour, "width": 1.6, "shape": "hv", "dash": dash},
+                hovertemplate=f"{labels[key]} {prefix.upper()} %{{y}} from %{{x:.6f}} s"
                               "<extra></extra>"), row=row_index, col=1)
     if not states.is_empty():
         for state in states["state"].unique(maintain_order=True).to_list():  # four at most
@@ -378,12 +466,14 @@ def counters_figure(counters: pl.DataFrame, states: pl.DataFrame, t0_ns: int, t1
                 y=[labels.get(k, esc(k[1])) for k in part.select("bus", "node").iter_rows()],
                 orientation="h", showlegend=False, name=esc(state),
                 marker={"color": style.STATE_COLOURS.get(state, style.MUTED),
+                        "pattern": {"shape": style.STATE_PATTERNS.get(state, "")},
                         "line": {"width": 0}},
                 hovertemplate=f"%{{y}} {esc(state)}<br>from %{{base:.3f}} s for "
                               "%{x:.3f} s<extra></extra>"), row=3, col=1)
         for state in STATE_ORDER:  # a legend for the state colours
             fig.add_trace(go.Bar(x=[None], y=[None], name=state, orientation="h",
-                                 marker={"color": style.STATE_COLOURS[state]},
+                                 marker={"color": style.STATE_COLOURS[state],
+                                         "pattern": {"shape": style.STATE_PATTERNS[state]}},
                                  legendgroup="states"), row=3, col=1)
     height = 2 * COUNTER_PANEL_PX + state_px + 150
     fig.update_layout(**style.base_layout(height, barmode="overlay", bargap=0.3))
@@ -396,6 +486,8 @@ def counters_figure(counters: pl.DataFrame, states: pl.DataFrame, t0_ns: int, t1
     fig.layout["yaxis2"].update(title={"text": "REC (receive)"}, range=[0, top], gridcolor=style.GRID)
     fig.layout["yaxis3"].update(type="category", automargin=True, autorange="reversed",
                                 title={"text": "state"})
+    if losses is not None:
+        add_loss_shading(fig, losses, top, rows=(1, 2))
     add_marks(fig, marks)
     return fig
 

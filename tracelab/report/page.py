@@ -21,6 +21,7 @@ from tracelab.report.figures import NS_PER_S, esc, message_label
 from tracelab.wording import counted
 
 PLOTLY_FILE = "plotly.min.js"
+PAGE_ROWS = 25  # rows per page of a long table
 LOSS_ROWS = 10
 CAUTION = ("Findings support, and do not replace, the engineer's judgement and the applicable "
            "functional-safety process and regulations.")
@@ -82,11 +83,43 @@ def verdict_sentence(faults: dict[str, Any] | None, errors: int = 0) -> tuple[st
     state = fd.get("state")
     reached = "fell silent" if state == "silent" else \
         f"reached {STATE_WORDS.get(state, state)}"
-    text = (f"{fd.get('node')} on bus {first.get('bus')} degraded first: {reached} at "
-            f"{when}, confidence {_confidence(fd.get('confidence'))}")
+    lo, hi = fd.get("earliest_ns"), fd.get("latest_ns")
+    if isinstance(lo, int | float) and isinstance(hi, int | float) and hi > lo:
+        when = (f"between {_secs(lo)} and {_secs(hi)} (a logger loss hides the exact moment; "
+                f"best estimate {when})")
+    else:
+        when = f"at {when}"
+    text = (f"{fd.get('node')} on bus {first.get('bus')} degraded first: {reached} {when}, "
+            f"score {_score(fd.get('confidence'))}")
     cause = cause_words(first.get("cause"))
     known = (first.get("cause") or {}).get("kind") not in (None, "none", "unknown")
-    return text + f"; {'most likely cause: ' if known else ''}{cause}.", "bad"
+    text += f"; {'most likely cause: ' if known else ''}{cause}."
+    readings = [a for a in fd.get("alternatives") or first.get("alternatives") or []
+                if isinstance(a, dict)]
+    if readings:
+        text += " The log cannot decide between " + "; ".join(
+            _reading(a) for a in readings) + "."
+    return text, "bad"
+
+
+def _score(value: Any) -> str:
+    """A verdict score as a number out of 1 (two decimals): "1.00" against "0.00" reads as
+    the calibrated score it is, not as a certainty in percent."""
+    if isinstance(value, int | float):
+        return f"{float(value):.2f} of 1"
+    return "-" if value is None else str(value)
+
+
+def _reading(alt: dict[str, Any]) -> str:
+    """One reading of an ambiguous log in words: 'if cut off: warning at 1.200 s, ...'."""
+    name = alt.get("reading") or alt.get("if") or alt.get("kind") or alt.get("name") or "?"
+    steps = alt.get("transitions") or alt.get("predicted") or []
+    said = []
+    for t in steps:  # a few predicted transitions
+        if isinstance(t, dict):
+            state = str(t.get("state") or t.get("to") or "")
+            said.append(f"{STATE_WORDS.get(state, state)} at {_secs(t.get('t_ns'))}")
+    return f"if {str(name).replace('-', ' ')}: {', '.join(said) or 'no transition predicted'}"
 
 
 def cause_words(cause: dict[str, Any] | None) -> str:
@@ -135,11 +168,9 @@ def header_section(data: ReportData) -> str:
         value = int(h.get(key, 0) or 0)
         cls = ' class="bad-cell"' if key == "errors" and value else ""
         items.append((key, f"<span{cls}>{value:,}</span>"))
-    text, tone = verdict(data)
     files = ", ".join(esc(Path(f).name) for f in h.get("files") or [])
     return (f'<section id="header"><h1>Run {esc(data.run)}</h1>'
-            f'<p class="sub">{files}</p>{_facts(items)}'
-            f'<p id="verdict-line" class="verdict {tone}">{text}</p></section>')
+            f'<p class="sub">{files}</p>{_facts(items)}</section>')
 
 
 def _evidence_item(item: Any) -> str:
@@ -156,71 +187,112 @@ def _evidence_item(item: Any) -> str:
 
 
 def verdict_section(data: ReportData) -> str:
+    """The verdict stated once, in words to paste into an incident report; the facts per bus;
+    the technical detail (hypotheses, scores, evidence) behind a disclosure element."""
     text, tone = verdict(data)
-    parts = ['<section id="verdict"><h2>Verdict</h2>']
-    if tone == "unknown" or not _results(data):
-        parts.append(f'<p class="muted">{text}</p>')
+    parts = ['<section id="verdict"><h2>Verdict</h2>',
+             f'<p id="verdict-line" class="statement {tone}">{text}</p>']
     # degraded buses first (earliest first), clean ones after in one line each
     results = sorted(_results(data), key=lambda r: (
         r.get("first_degraded") is None, (r.get("first_degraded") or {}).get("t_ns") or 0))
+    detail: list[str] = []
     for result in results:  # one result per bus: a handful
         fd = result.get("first_degraded")
-        parts.append(f"<h3>bus {esc(result.get('bus'))}</h3>")
-        if result.get("verdict"):
-            parts.append(f"<p>{esc(result['verdict'])}</p>")
+        bus = esc(result.get("bus"))
         if not fd:
-            if not result.get("verdict"):
-                parts.append('<p class="muted">No node left error-active on this bus.</p>')
-            continue
-        when = _secs(fd.get("t_ns")) + (f" ({esc(fd['wall_time'])})"
-                                         if fd.get("wall_time") else "")
-        facts = [
-            ("first degraded node", f"<b>{esc(fd.get('node'))}</b>"),
-            ("state reached first", esc(fd.get("state"))), ("when", when),
-            ("confidence", esc(_confidence(fd.get("confidence")))),
-            ("most likely cause", esc(cause_words(result.get("cause")))),
-        ]
-        if fd.get("worst_state") and fd.get("worst_state") != fd.get("state"):
-            facts.insert(3, ("worst state", f"{esc(fd['worst_state'])} at "
-                                            f"{_secs(fd.get('worst_t_ns'))}"))
-        parts.append(_facts(facts))
-        hypotheses = sorted(result.get("hypotheses") or [],
-                            key=lambda h: -(h.get("score") or 0))
-        if len(hypotheses) > 1:
-            runner = hypotheses[1]
-            parts.append(f"<p>Runner-up hypothesis: <b>{esc(runner.get('name'))}</b> (score "
-                         f"{esc(_confidence(runner.get('score')))}): {esc(runner.get('why'))}</p>")
-        if hypotheses:
-            rows = "".join(
-                f"<tr><td>{'best' if i == 0 else 'runner-up' if i == 1 else ''}</td>"
-                f"<td class='msg'>{esc(h.get('name'))}</td><td class='num'>{esc(_confidence(h.get('score')))}</td>"
-                f"<td>{esc(h.get('why'))}</td></tr>" for i, h in enumerate(hypotheses[:4]))
-            parts.append("<h3>hypotheses</h3><table><thead><tr><th></th><th>hypothesis</th>"
-                         f"<th class='num'>score</th><th>why</th></tr></thead>{rows}</table>")
-        evidence = result.get("evidence") or {}
-        decisive = evidence.get("decisive", []) if isinstance(evidence, dict) else evidence
-        if isinstance(evidence, dict) and evidence.get("errors") is not None:
-            by_type = ", ".join(f"{esc(k)} {esc(v)}" for k, v in
-                                (evidence.get("by_type") or {}).items()) or "none"
-            by_sender = ", ".join(f"{esc(k)} {esc(v)}" for k, v in
-                                  (evidence.get("by_sender") or {}).items()) or "none"
-            parts.append(f"<p class='note'>{esc(_int(evidence['errors']))} error frames "
-                         f"({by_type}); on the frames of: {by_sender}.</p>")
-        if decisive:
-            items = "".join(_evidence_item(e) for e in list(decisive)[:12])
-            parts.append(f'<h3>decisive evidence</h3><ul class="evidence">{items}</ul>')
-        nodes = result.get("nodes") or []
-        if nodes:
-            rows = "".join(
-                f"<tr><td>{esc(n.get('node'))}</td><td class='num'>{esc(n.get('max_tec'))}</td>"
-                f"<td class='num'>{esc(n.get('max_rec'))}</td>"
-                f"<td class='num'>{esc(_count(n.get('transitions')))}</td>"
-                f"<td class='num'>{esc(_count(n.get('bus_off')))}</td></tr>" for n in nodes)
-            parts.append("<h3>nodes</h3><table><thead><tr><th>node</th><th class='num'>max TEC"
-                         "</th><th class='num'>max REC</th><th class='num'>transitions</th>"
-                         f"<th class='num'>bus-off</th></tr></thead>{rows}</table>")
+            parts.append(f'<p class="muted">bus {bus}: no node left error-active.</p>')
+        else:
+            when = _secs(fd.get("t_ns")) + (f" ({esc(fd['wall_time'])})"
+                                             if fd.get("wall_time") else "")
+            facts = [
+                ("bus", bus), ("first degraded node", f"<b>{esc(fd.get('node'))}</b>"),
+                ("first state out of error-active", esc(fd.get("state"))), ("when", when),
+                ("score (calibrated)", esc(_score(fd.get("confidence")))),
+                ("most likely cause", esc(cause_words(result.get("cause")))),
+            ]
+            lo, hi = fd.get("earliest_ns"), fd.get("latest_ns")
+            if isinstance(lo, int | float) and isinstance(hi, int | float) and hi > lo:
+                facts.insert(4, ("could be as early / late as",
+                                 f"{_secs(lo)} / {_secs(hi)}"))
+            if fd.get("worst_state") and fd.get("worst_state") != fd.get("state"):
+                facts.insert(4, ("worst state", f"{esc(fd['worst_state'])} at "
+                                                f"{_secs(fd.get('worst_t_ns'))}"))
+            parts.append(_facts(facts))
+        detail.append(_technical_detail(result))
+    if detail:
+        parts.append('<details class="tech" id="verdict-detail"><summary>Technical detail: '
+                     "hypotheses, scores, findings and decisive evidence</summary>"
+                     + "".join(detail) + "</details>")
     parts.append("</section>")
     return "".join(parts)
+
+
+def _technical_detail(result: dict[str, Any]) -> str:
+    """Hypotheses with their scores and reasons, findings, evidence and nodes of one bus."""
+    bus = esc(result.get("bus"))
+    parts = [f"<h3>bus {bus}</h3>"]
+    if result.get("verdict"):
+        parts.append(f"<p>{esc(result['verdict'])}</p>")
+    hypotheses = sorted(result.get("hypotheses") or [], key=lambda h: -(h.get("score") or 0))
+    if hypotheses:
+        rows = "".join(
+            f"<tr><td>{'best' if i == 0 else 'runner-up' if i == 1 else ''}</td>"
+            f"<td class='msg'>{esc(h.get('name'))}</td>"
+            f"<td class='num'>{esc(_score(h.get('score')))}</td>"
+            f"<td>{esc(h.get('why'))}</td></tr>" for i, h in enumerate(hypotheses[:6]))
+        parts.append(_table(f"hypotheses-{bus}", "<th></th><th>hypothesis</th>"
+                            "<th class='num'>score</th><th>why</th>", rows))
+    findings = result.get("findings") or []
+    if findings:
+        rows = "".join(
+            f"<tr><td>{esc(f.get('kind'))}</td><td>{esc(f.get('node') or '')}</td>"
+            f"<td class='num'>{_secs(f.get('from_ns'))}</td>"
+            f"<td class='num'>{_secs(f.get('to_ns'))}</td>"
+            f"<td class='num'>{esc(_int(f.get('errors_explained')))}</td>"
+            f"<td class='num'>{esc(_pct(f.get('share')))}</td></tr>"
+            for f in findings if isinstance(f, dict))
+        parts.append("<h3>findings, in time order</h3>" + _table(
+            f"findings-{bus}", "<th>kind</th><th>node</th><th class='num'>from</th>"
+            "<th class='num'>to</th><th class='num'>errors explained</th>"
+            "<th class='num'>share</th>", rows))
+    evidence = result.get("evidence") or {}
+    decisive = evidence.get("decisive", []) if isinstance(evidence, dict) else evidence
+    if isinstance(evidence, dict) and evidence.get("errors") is not None:
+        by_type = ", ".join(f"{esc(k)} {esc(v)}" for k, v in
+                            (evidence.get("by_type") or {}).items()) or "none"
+        by_sender = ", ".join(f"{esc(k)} {esc(v)}" for k, v in
+                              (evidence.get("by_sender") or {}).items()) or "none"
+        parts.append(f"<p class='note'>{esc(_int(evidence['errors']))} error frames "
+                     f"({by_type}); on the frames of: {by_sender}.</p>")
+    if decisive:
+        items = "".join(_evidence_item(e) for e in list(decisive)[:12])
+        parts.append(f'<h3>decisive evidence</h3><ul class="evidence">{items}</ul>')
+    nodes = result.get("nodes") or []
+    if nodes:
+        rows = "".join(
+            f"<tr><td>{esc(n.get('node'))}</td><td class='num'>{esc(n.get('max_tec'))}</td>"
+            f"<td class='num'>{esc(n.get('max_rec'))}</td>"
+            f"<td class='num'>{esc(_count(n.get('transitions')))}</td>"
+            f"<td class='num'>{esc(_count(n.get('bus_off')))}</td></tr>" for n in nodes)
+        parts.append("<h3>nodes</h3>" + _table(
+            f"nodes-{bus}", "<th>node</th><th class='num'>max TEC</th><th class='num'>max REC"
+            "</th><th class='num'>transitions</th><th class='num'>bus-off</th>", rows))
+    return "".join(parts)
+
+
+def _pct(value: Any) -> str:
+    return f"{float(value):.0%}" if isinstance(value, int | float) else ""
+
+
+def _table(table_id: str, head: str, rows: str, pager: bool = False) -> str:
+    """A table with a CSV download button; long ones (``pager``) paginate in the page script,
+    the header sticks to the top of the window while scrolling (no inner scroll box)."""
+    tid = esc(table_id)
+    attrs = ' data-pager="25"' if pager else ""
+    return (f'<div class="tools"><button type="button" class="csv" data-table="{tid}">'
+            "download CSV</button></div>"
+            f'<div class="wide"><table id="{tid}"{attrs}><thead><tr>{head}</tr></thead>'
+            f"<tbody>{rows}</tbody></table></div>")
 
 
 def _int(value: Any) -> str:
@@ -282,12 +354,29 @@ def timing_table(timing: pl.DataFrame) -> str:
                 cls += " bad-cell"
             cells.append(f"<td class='{cls}' data-v='{key}'>{text}</td>")
         body.append("<tr>" + "".join(cells) + "</tr>")
-    return (f'<div class="scroll"><table id="timing-table"><thead><tr>{head}</tr></thead>'
-            f'<tbody>{"".join(body)}</tbody></table></div>'
+    return (_table("timing-table", head, "".join(body), pager=len(body) > PAGE_ROWS) +
             '<p class="note">Worst first: missing frames, then phase jitter relative to the '
             "period, then drift. Click a heading to sort. median: median interval; cycle σ / "
             "phase σ: standard deviation of the interval and of the arrival phase; "
             '"logger lost": frames missing inside logger-loss intervals (not a bus fault).</p>')
+
+
+def top_ids_table(top: pl.DataFrame) -> str:
+    if top.is_empty():
+        return '<p class="muted">No load analysis for this run.</p>'
+    rows = "".join(
+        f"<tr><td class='msg'>{esc(message_label(r['bus'], r['id'], r['ext'], r['name']))}</td>"
+        f"<td class='num'>{int(r['rank'])}</td><td class='num'>{_pct1(r['share'])}</td>"
+        f"<td class='num'>{_duration(float(r['busy_ns'] or 0))}</td>"
+        f"<td class='num'>{_int(r['frames'])}</td></tr>"
+        for r in top.iter_rows(named=True))  # ten per bus
+    return _table("top-ids-table", "<th>message</th><th class='num'>rank</th>"
+                  "<th class='num'>share of busy time</th><th class='num'>busy time</th>"
+                  "<th class='num'>frames</th>", rows)
+
+
+def _pct1(value: Any) -> str:
+    return f"{100 * float(value):.1f} %" if isinstance(value, int | float) else ""
 
 
 def quality_section(data: ReportData) -> str:
@@ -303,8 +392,8 @@ def quality_section(data: ReportData) -> str:
         more = (f'<p class="note">first {len(data.rejects)} of {total:,} shown; '
                 "query the rest with <code>tracelab sql DATASET \"select * from rejects\"</code>"
                 "</p>") if total > len(data.rejects) else ""
-        parts.append("<table><thead><tr><th>where</th><th>reason</th><th>line</th></tr>"
-                     f"</thead>{rows}</table>{more}")
+        parts.append(_table("rejects-table", "<th>where</th><th>reason</th><th>line</th>",
+                            rows) + more)
     parts.append(f"<h3>logger losses: {len(data.losses):,}</h3>")
     if not data.loss_summary.is_empty():
         rows = "".join(
@@ -313,10 +402,10 @@ def quality_section(data: ReportData) -> str:
             f"<td class='num'>{_duration(float(r['lost_ns'] or 0))}</td>"
             f"<td class='num'>{_int(r['frames'])}</td></tr>"
             for r in data.loss_summary.iter_rows(named=True))
-        parts.append("<table><thead><tr><th>bus</th><th class='num'>records</th>"
-                     "<th class='num'>first</th><th class='num'>last until</th>"
-                     "<th class='num'>time lost</th><th class='num'>frames lost</th></tr>"
-                     f"</thead>{rows}</table><h3>first loss records</h3>")
+        parts.append(_table("loss-summary-table", "<th>bus</th><th class='num'>records</th>"
+                            "<th class='num'>first</th><th class='num'>last until</th>"
+                            "<th class='num'>time lost</th><th class='num'>frames lost</th>",
+                            rows) + "<h3>first loss records</h3>")
     if not data.losses.is_empty():
         rows = "".join(
             f"<tr><td>{esc(r['bus'])}</td><td class='num'>{_secs(r['from_ns'])}</td>"
@@ -326,9 +415,9 @@ def quality_section(data: ReportData) -> str:
         more = (f'<p class="note">first {LOSS_ROWS} of {len(data.losses):,} shown; all are '
                 "in the <code>losses</code> view of <code>tracelab sql</code>.</p>"
                 if len(data.losses) > LOSS_ROWS else "")
-        parts.append("<table><thead><tr><th>bus</th><th class='num'>from</th>"
-                     "<th class='num'>until</th><th class='num'>frames lost</th></tr></thead>"
-                     f"{rows}</table>{more}")
+        parts.append(_table("losses-table", "<th>bus</th><th class='num'>from</th>"
+                            "<th class='num'>until</th><th class='num'>frames lost</th>",
+                            rows) + more)
     steps = int(h.get("backward_steps", 0) or 0)
     parts.append(f"<h3>backward time steps: {steps:,}</h3>")
     if steps:
@@ -357,15 +446,15 @@ def build_figures(data: ReportData, load_limit: float) -> dict[str, tuple[go.Fig
     t0, t1 = data.t0_ns, data.t1_ns
     built = {
         "fig-load": (figures.load_figure(data.load, data.load_stats, buses, t0, t1, load_limit,
-                                         data.marks), True),
+                                         data.marks, data.losses), True),
         "fig-deviation": (figures.deviation_figure(data.timing, buses), False),
         "fig-drift": (figures.drift_figure(data.drift), False),
         "fig-gaps": (figures.gaps_figure(data.gaps, data.gap_bucket_ns, data.losses, t0, t1,
                                          data.marks, names), True),
-        "fig-errors": (figures.errors_figure(data.errors, data.bucket_ns, t0, t1, data.marks),
-                       True),
-        "fig-counters": (figures.counters_figure(data.counters, data.states, t0, t1, data.marks),
-                         True),
+        "fig-errors": (figures.errors_figure(data.errors, data.bucket_ns, t0, t1, data.marks,
+                                             data.losses), True),
+        "fig-counters": (figures.counters_figure(data.counters, data.states, t0, t1, data.marks,
+                                                 data.losses), True),
     }
     built.update(signal_figures.build(data.signals, t0, t1, data.marks, data.losses))
     figures.align_time_axes([fig for fig, time in built.values() if time])
@@ -387,6 +476,7 @@ SCRIPT = """
   var timeIds = [];
   Object.keys(figs).forEach(function (id) {
     var f = figs[id];
+    if (!document.getElementById(id)) { return; }  // a figure the page says in words instead
     Plotly.newPlot(id, f.figure.data, f.figure.layout, config);
     if (f.time) { timeIds.push(id); }
   });
@@ -419,10 +509,52 @@ SCRIPT = """
                                 function () { syncing = false; });
     });
   });
+  // Long tables: pages of N rows (data-pager) with page buttons and "all"; the header sticks.
+  function paginate(table) {
+    var size = parseInt(table.dataset.pager, 10);
+    var body = table.tBodies[0];
+    var pager = document.createElement('div');
+    pager.className = 'pager';
+    table.parentNode.after(pager);
+    table.tlShow = function (page) {
+      var rows = Array.prototype.slice.call(body.rows);
+      var pages = Math.max(1, Math.ceil(rows.length / size));
+      table.dataset.page = page;
+      rows.forEach(function (r, i) {
+        r.style.display = (page === 'all' || Math.floor(i / size) === page) ? '' : 'none';
+      });
+      pager.textContent = '';
+      var label = document.createElement('span');
+      label.textContent = rows.length + ' rows:';
+      pager.appendChild(label);
+      for (var p = 0; p < pages; p++) {
+        var b = document.createElement('button');
+        b.type = 'button';
+        b.textContent = String(p + 1);
+        b.setAttribute('aria-current', String(page === p));
+        b.dataset.page = String(p);
+        pager.appendChild(b);
+      }
+      var all = document.createElement('button');
+      all.type = 'button';
+      all.textContent = 'all';
+      all.dataset.page = 'all';
+      all.setAttribute('aria-current', String(page === 'all'));
+      pager.appendChild(all);
+    };
+    pager.addEventListener('click', function (ev) {
+      var b = ev.target.closest('button');
+      if (!b) { return; }
+      table.tlShow(b.dataset.page === 'all' ? 'all' : parseInt(b.dataset.page, 10));
+    });
+    table.tlShow(0);
+  }
+  document.querySelectorAll('table[data-pager]').forEach(paginate);
   // Sortable table: click a heading; numbers sort worst (largest) first on the first click.
   document.querySelectorAll('table#timing-table th.sort').forEach(function (th, col) {
     th.addEventListener('click', function () {
-      var body = th.closest('table').tBodies[0];
+      var table = th.closest('table');
+      var body = table.tBodies[0];
       var rows = Array.prototype.slice.call(body.rows);
       var desc = th.dataset.dir !== 'desc';
       th.dataset.dir = desc ? 'desc' : 'asc';
@@ -434,10 +566,42 @@ SCRIPT = """
         return desc ? -c : c;
       });
       rows.forEach(function (r) { body.appendChild(r); });
+      if (table.tlShow) { table.tlShow(table.dataset.page === 'all' ? 'all' : 0); }
+    });
+  });
+  // Take a table away: every table's rows (all pages) as CSV.
+  function csvCell(text) {
+    var t = text.replace(/\\s+/g, ' ').trim();
+    return /[",\\n]/.test(t) ? '"' + t.replace(/"/g, '""') + '"' : t;
+  }
+  document.querySelectorAll('button.csv').forEach(function (button) {
+    button.addEventListener('click', function () {
+      var table = document.getElementById(button.dataset.table);
+      var lines = Array.prototype.map.call(table.rows, function (row) {
+        return Array.prototype.map.call(row.cells, function (c) {
+          return csvCell(c.textContent);
+        }).join(',');
+      });
+      var blob = new Blob([lines.join('\\n') + '\\n'], {type: 'text/csv'});
+      var a = document.createElement('a');
+      a.href = URL.createObjectURL(blob);
+      a.download = (document.body.dataset.run || 'run') + '-' + button.dataset.table + '.csv';
+      document.body.appendChild(a);
+      a.click();
+      a.remove();
     });
   });
 })();
 """
+
+
+def _section(sid: str, title: str, body: str) -> str:
+    return f'<section id="{sid}"><h2>{esc(title)}</h2>{body}</section>'
+
+
+def _caption(text: str) -> str:
+    """The one line under a heading that says what to look for."""
+    return f'<p class="caption">{esc(text)}</p>'
 
 
 def render(data: ReportData, load_limit: float = 0.5, plotly_src: str | None = None) -> str:
@@ -451,33 +615,76 @@ def render(data: ReportData, load_limit: float = 0.5, plotly_src: str | None = N
     def div(fid: str) -> str:
         return f'<div id="{fid}" class="fig"></div>'
 
-    counters_note = ("Peak TEC / REC per "
-                     f"{figures.window_label(data.bucket_ns)}; bands show the state a counter "
-                     "value implies, the bottom row the replayed state of each node.")
-    sections = [
-        header_section(data),
-        verdict_section(data),
-        '<section id="load"><h2>Bus load</h2>' + div("fig-load") +
-        f'<p class="note">Pick the window size above the chart; dashed: mean, dot: peak; '
-        f'the long-dashed line is the recommended maximum ({load_limit:.0%}). Zoom any time '
-        'axis to zoom all of them.</p></section>',
-        '<section id="timing"><h2>Message timing</h2>' + timing_table(data.timing) +
-        "<h3>period deviation per message</h3>" + div("fig-deviation") +
-        "<h3>clock drift per node</h3>" + div("fig-drift") + "</section>",
-        '<section id="gaps"><h2>Gaps</h2>' + div("fig-gaps") +
-        f'<p class="note">One cell per message and {figures.window_label(data.gap_bucket_ns)}'
-        "; shaded intervals are logger losses (the logger dropped frames, not the bus).</p>"
-        "</section>",
-        '<section id="errors"><h2>Errors and counters</h2>'
-        "<h3>error events by type</h3>" + div("fig-errors") +
-        "<h3>TEC and REC per node</h3>" + div("fig-counters") +
-        f'<p class="note">{counters_note}</p></section>',
-        (signal_figures.section_html(data.signals, div, figures.window_label)
+    timing = data.timing
+    periodic = timing.filter(pl.col("deviation_pct").is_not_null()) \
+        if "deviation_pct" in timing.columns else timing
+    deviating = int(periodic["deviates"].sum()) if "deviates" in periodic.columns else 0
+    drifting = int(data.drift["deviates"].sum()) if "deviates" in data.drift.columns else 0
+    others = len(data.drift) - drifting
+    gap_rows = data.gaps.select("bus", "id", "ext").n_unique() if not data.gaps.is_empty() else 0
+    parts = [
+        ("header", None, header_section(data)),
+        ("verdict", "Verdict", verdict_section(data)),
+        ("load", "Bus load", _section(
+            "load", "Bus load",
+            _caption("Look for load above the recommended maximum "
+                     f"({load_limit:.0%}, long-dashed line) and for peaks that line up with "
+                     "errors below; hatched violet spans are logger losses (no data, not a "
+                     "quiet bus).") + div("fig-load") +
+            '<p class="note">Pick the window size above the chart; dashed: mean, dot: peak. '
+            "Zoom any time axis to zoom all of them.</p>"
+            "<h3>top identifiers by busy time</h3>" + top_ids_table(data.top_ids))),
+        ("timing", "Message timing", _section(
+            "timing", "Message timing",
+            _caption("Look for messages with missing frames (red), large phase jitter or "
+                     "drift: the worst are at the top.") + timing_table(timing) +
+            "<h3>period deviation per message</h3>" +
+            _caption(f"{counted(deviating, 'message')} deviate"
+                     f"{'s' if deviating == 1 else ''} from the period beyond tolerance "
+                     f"(median off by >= 0.01 % or a 1st / 99th percentile cycle off by "
+                     f">= 10 %); {counted(len(periodic) - deviating, 'other')} within "
+                     "tolerance. The buttons switch between the two sets.") +
+            div("fig-deviation") + "<h3>clock drift per node</h3>" +
+            _caption((f"{counted(drifting, 'node')} beyond ±5 ppm; " if drifting else
+                      "No node's clock drifts beyond ±5 ppm; ") +
+                     f"{counted(others, 'other node')} within it. Positive: the sender's "
+                     "clock is slow (its periods are long).") +
+            (div("fig-drift") if drifting else ""))),
+        ("gaps", "Gaps", _section(
+            "gaps", "Gaps",
+            _caption("Look for dark cells: frames missing on the bus. Sand cells: frames the "
+                     "logger lost; hatched violet boxes: that bus's logger-loss intervals.") +
+            (div("fig-gaps") if gap_rows else
+             '<p class="muted">No message has a gap on the bus.</p>') +
+            f'<p class="note">One cell per message and '
+            f"{figures.window_label(data.gap_bucket_ns)}; only messages with gaps on the bus "
+            "are drawn" + (f"; {counted(data.gaps_logger_only, 'more message')} only had "
+                           "gaps inside logger losses" if data.gaps_logger_only else "") +
+            ".</p>")),
+        ("errors", "Errors and counters", _section(
+            "errors", "Errors and counters",
+            "<h3>error events by type</h3>" +
+            _caption("Look for when errors start and which types dominate (each type has "
+                     "its own pattern); a listen-only logger records stuff and form errors "
+                     "when a receiver's flag destroys a good frame, CRC errors only when the "
+                     "bits on the wire were corrupted.") + div("fig-errors") +
+            "<h3>TEC and REC per node</h3>" +
+            _caption("Look for the first node to cross 96 (warning) and 128 (error-passive); "
+                     "lines are the replayed counters as steps through real values (each "
+                     f"{figures.window_label(data.bucket_ns)} keeps its first, lowest, highest "
+                     "and last value), the bottom row the replayed state of each node.") +
+            div("fig-counters"))),
+        ("signals", "Signals", signal_figures.section_html(data.signals, div,
+                                                           figures.window_label)
          if data.signals is not None else ""),
-        quality_section(data),
-        f'<footer id="caution"><p><b>Caution.</b> {CAUTION}</p>'
-        f"<p>Written by tracelab {esc(__version__)}.</p></footer>",
+        ("quality", "Data quality", quality_section(data)),
     ]
+    toc = "".join(f'<a href="#{sid}">{esc(title)}</a>' for sid, title, body in parts
+                  if title and body)
+    sections = [parts[0][2], f'<nav class="toc" id="toc">{toc}</nav>',
+                *(body for _, _, body in parts[1:]),
+                f'<footer id="caution"><p><b>Caution.</b> {CAUTION}</p>'
+                f"<p>Written by tracelab {esc(__version__)}.</p></footer>"]
     if plotly_src is None:
         plotly_tag = f"<script>{plotly_js()}</script>"
     else:
@@ -486,7 +693,7 @@ def render(data: ReportData, load_limit: float = 0.5, plotly_src: str | None = N
         "<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
         '<meta name="viewport" content="width=device-width, initial-scale=1">'
         f"<title>tracelab run {esc(data.run)}</title><style>{style.CSS}</style>"
-        f"{plotly_tag}</head><body><main>{''.join(sections)}</main>"
+        f"{plotly_tag}</head><body data-run=\"{esc(data.run)}\"><main>{''.join(sections)}</main>"
         f'<script type="application/json" id="tl-figures">{_json_for_script(payload)}</script>'
         f'<script type="application/json" id="tl-span">{json.dumps(span)}</script>'
         f"<script>{SCRIPT}</script></body></html>\n")

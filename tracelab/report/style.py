@@ -18,12 +18,18 @@ BUS_ACCENTS = ("#2d7d8a", "#5a62a8", "#7d8c3c", "#a87a33", "#7f5a86", "#4e6a74",
 NODE_COLOURS = ("#2d7d8a", "#5a62a8", "#a87a33", "#7d8c3c", "#7f5a86", "#4e6a74", "#3f8f6b",
                 "#8c6d4f", "#5f7f9f", "#6b8f3f")
 
-#: Red is reserved for errors: each error type gets a shade of it.
+#: Line dashes per node, so counter lines differ by more than hue (colour-blind readers).
+NODE_DASHES = ("solid", "dash", "dot", "dashdot", "longdash", "longdashdot")
+
+#: Red is reserved for errors: each error type gets a shade of it and, so that the types
+#: differ without colour too, a fill pattern of its own.
 ERROR_RED = "#c0392b"
 ERROR_TYPE_COLOURS = {
-    "bit": "#c0392b", "stuff": "#e0665a", "crc": "#922b21", "form": "#ef9a8f",
-    "ack": "#6e1f18", "other": "#d98880",
+    "bit": "#c0392b", "stuff": "#e0665a", "crc": "#7a1f16", "form": "#f0a096",
+    "ack": "#a8433a", "other": "#d98880",
 }
+ERROR_TYPE_PATTERNS = {"bit": "", "stuff": "/", "crc": "x", "form": ".", "ack": "+",
+                       "other": "-"}
 
 #: Fault-confinement state bands, from calm to alarming (bus-off is an error: red).
 STATE_COLOURS = {
@@ -33,9 +39,15 @@ STATE_COLOURS = {
     "bus-off": "#c0392b",
 }
 
-GAP_BUS = "#36414f"  # frames missing on the bus
-GAP_LOGGER = "#b9c0cb"  # frames the logger lost
-LOGGER_SHADE = "#8f99c4"  # logger-loss intervals: a cool violet-grey, unlike any gap cell
+#: State bands also carry a pattern (the timeline must read in greyscale too).
+STATE_PATTERNS = {"error-active": "", "warning": ".", "error-passive": "/", "bus-off": "x"}
+
+GAP_BUS = "#36414f"  # frames missing on the bus: dark slate
+GAP_LOGGER = "#d6b46a"  # frames the logger lost: warm sand, far from slate and from violet
+#: Logger-loss intervals (the logger recorded nothing): violet, hatched on every time chart,
+#: so "no data here" never reads as a level or as a gap cell.
+LOGGER_SHADE = "#7b6fb0"
+LOGGER_PATTERN = "\\"
 
 
 def bus_colour(index: int) -> str:
@@ -98,8 +110,26 @@ th.sort { cursor: pointer; user-select: none; }
 th.sort::after { content: " \\2195"; color: #b5b8be; }
 td.num, th.num { text-align: right; white-space: nowrap; }
 td.msg { white-space: nowrap; }
-.scroll { max-height: 360px; overflow: auto; border: 1px solid var(--grid); border-radius: 6px; }
-.scroll thead th { position: sticky; top: 0; background: var(--paper); }
+thead th { position: sticky; top: 0; background: var(--paper); z-index: 1;
+           box-shadow: inset 0 -1px 0 var(--grid); }
+.wide { overflow-x: auto; }
+.pager { display: flex; gap: 6px; align-items: center; margin: 8px 0 0; flex-wrap: wrap;
+         color: var(--muted); font-size: 12px; }
+.pager button, .tools button { font: inherit; font-size: 12px; color: var(--ink);
+         background: var(--page); border: 1px solid var(--grid); border-radius: 4px;
+         padding: 2px 8px; cursor: pointer; }
+.pager button[aria-current="true"] { background: var(--ink); color: var(--paper); }
+.tools { display: flex; justify-content: flex-end; margin: 0 0 4px; }
+nav.toc { font-size: 13px; margin: 0 0 18px; }
+nav.toc a { color: var(--ink); margin-right: 14px; text-decoration: none;
+            border-bottom: 1px dotted var(--muted); }
+.caption { color: var(--ink); font-size: 13px; margin: 4px 0 10px; }
+details.tech { margin: 12px 0 0; }
+details.tech > summary { cursor: pointer; color: var(--muted); font-size: 13px; }
+.statement { font-size: 15px; padding: 10px 14px; border-radius: 6px; margin: 0 0 12px;
+             background: #eef3ef; border-left: 4px solid #5f8f6f; }
+.statement.bad { background: #fbefed; border-left-color: var(--red); }
+.statement.unknown { background: #f1f1ef; border-left-color: var(--muted); }
 .bad-cell { color: var(--red); font-weight: 600; }
 .muted { color: var(--muted); }
 code, .raw { font-family: 'JetBrains Mono', Menlo, Consolas, monospace; font-size: 12px; }
