@@ -74,7 +74,7 @@ def test_deviation_figure_plots_each_message_with_percentile_bars() -> None:
         "name": ["VcuStatus", None], "deviation_pct": [0.5, -1.25],
         "err_plus_pct": [1.0, 0.25], "err_minus_pct": [2.0, 0.5]})
     fig = figures.deviation_figure(timing, ["body", "chassis"])
-    (trace,) = fig.data
+    (trace,) = fig.data  # without a `deviates` column every message is drawn
     assert list(trace.x) == ["body 100 VcuStatus", "chassis 18FF0001"]
     assert list(trace.y) == [0.5, -1.25]
     assert list(trace.error_y.array) == [1.0, 0.25]
@@ -82,13 +82,30 @@ def test_deviation_figure_plots_each_message_with_percentile_bars() -> None:
     assert trace.marker.color == (style.bus_colour(0), style.bus_colour(1))
 
 
-def test_drift_figure_has_one_bar_per_node() -> None:
-    drift = pl.DataFrame({"bus": [None, None], "node": ["vcu", "esc"], "drift_ppm": [40.0, -15.0],
-                          "min_drift_ppm": [38.0, -16.0], "max_drift_ppm": [41.0, -14.0],
-                          "spread_plus_ppm": [1.0, 1.0], "spread_minus_ppm": [2.0, 1.0]})
+def test_deviation_figure_draws_the_deviating_and_switches_to_all() -> None:
+    timing = pl.DataFrame({
+        "bus": ["body"] * 3, "id": [0x100, 0x101, 0x102], "ext": [False] * 3,
+        "name": ["a", "b", "c"], "deviation_pct": [0.5, 0.0, 0.001],
+        "err_plus_pct": [1.0, 0.1, 0.1], "err_minus_pct": [2.0, 0.1, 0.1],
+        "deviates": [True, False, False]})
+    fig = figures.deviation_figure(timing, ["body"])
+    shown, every = fig.data
+    assert shown.visible is True and list(shown.x) == ["body 100 a"]
+    assert every.visible is False and len(every.x) == 3
+    labels = [b.label for b in fig.layout.updatemenus[0].buttons]
+    assert labels == ["deviating (1)", "all (3)"]
+
+
+def test_drift_figure_has_one_bar_per_drifting_node() -> None:
+    drift = pl.DataFrame({"bus": [None, None, None], "node": ["vcu", "esc", "bms"],
+                          "drift_ppm": [40.0, -15.0, 0.2],
+                          "min_drift_ppm": [38.0, -16.0, 0.1], "max_drift_ppm": [41.0, -14.0, 0.3],
+                          "spread_plus_ppm": [1.0, 1.0, 0.1], "spread_minus_ppm": [2.0, 1.0, 0.1],
+                          "deviates": [True, True, False]})
     (trace,) = figures.drift_figure(drift).data
-    assert list(trace.x) == ["vcu", "esc"] and list(trace.y) == [40.0, -15.0]
-    assert list(trace.error_y.arrayminus) == [2.0, 1.0]
+    assert list(trace.y) == ["vcu", "esc"] and list(trace.x) == [40.0, -15.0]
+    assert trace.orientation == "h"
+    assert list(trace.error_x.arrayminus) == [2.0, 1.0]
 
 
 def test_gaps_figure_places_bus_and_logger_cells_and_shades_losses() -> None:
@@ -126,9 +143,10 @@ def test_errors_figure_stacks_one_trace_per_type_in_reds() -> None:
 
 
 def test_counters_figure_draws_levels_state_bands_and_node_states() -> None:
-    counters = pl.DataFrame({"bus": ["body"] * 3, "node": ["bcm"] * 3,
-                             "t_ns": [0, 1_000_000_000, 2_000_000_000],
-                             "tec_max": [8, 136, 264], "rec_max": [0, 1, 2]})
+    counters = pl.DataFrame({"bus": ["body"] * 6, "node": ["bcm"] * 6,
+                             "counter": ["tec"] * 3 + ["rec"] * 3,
+                             "t_ns": [0, 1_000_000_000, 2_000_000_000] * 2,
+                             "value": [8, 136, 264, 0, 1, 2]})
     states = pl.DataFrame({"bus": ["body"] * 2, "node": ["bcm"] * 2,
                            "state": ["error-passive", "bus-off"],
                            "from_ns": [1_000_000_000, 2_000_000_000],

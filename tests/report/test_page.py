@@ -97,8 +97,9 @@ def test_report_job_refuses_unknown_runs_and_bad_limits(dataset: Path, tmp_path:
 def test_verdict_sentence() -> None:
     text, tone = verdict_sentence(FAULTS)
     assert tone == "bad"
+    # a score out of 1, not a percentage: "100 %" against "0 %" read as certainty
     assert text == ("bcm on bus body degraded first: reached error-passive at 40.640 s "
-                    "(2026-03-01T08:00:40.640Z), confidence 86%; most likely cause: "
+                    "(2026-03-01T08:00:40.640Z), score 0.86 of 1; most likely cause: "
                     "a transmit-side fault (bcm).")
     assert verdict_sentence({"results": [{"bus": "a", "first_degraded": None}]}) == (
         "Clean run: no node left error-active.", "ok")

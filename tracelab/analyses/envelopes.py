@@ -305,7 +305,7 @@ def split_logger_only(cells: pl.DataFrame) -> tuple[pl.DataFrame, int]:
     return kept, on_bus.height - shown.height
 
 
-def top_identifiers(con: duckdb.DuckDBPyConnection, run: str, top: int = 10) -> pl.DataFrame:
+def top_identifiers(con: duckdb.DuckDBPyConnection, run: str, top: int = 5) -> pl.DataFrame:
     """The identifiers with the largest share of each bus's busy time (from `load`), with the
     catalog name when the timing analysis knows it."""
     names = "LEFT JOIN (SELECT DISTINCT run, bus, id, ext, name FROM timing) n USING (run, bus, " \

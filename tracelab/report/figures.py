@@ -228,7 +228,10 @@ def deviation_figure(timing: pl.DataFrame, buses: Sequence[str], limit: int = 60
     groups: list[tuple[str, pl.DataFrame]] = []
     if not rows.is_empty():
         flagged = rows.filter(pl.col("deviates")) if "deviates" in rows.columns else rows
-        groups = [("deviating", flagged), ("all", rows)]
+        # one set when there is no choice (nothing deviates: the page hides the chart behind
+        # "show all"; or every message deviates)
+        groups = [("deviating", flagged), ("all", rows)] \
+            if 0 < len(flagged) < len(rows) else [("all", rows)]
     for index, (group, part) in enumerate(groups):
         labels = [esc(message_label(b, i, e, n)) for b, i, e, n in
                   part.select("bus", "id", "ext", "name").iter_rows()]
@@ -244,7 +247,7 @@ def deviation_figure(timing: pl.DataFrame, buses: Sequence[str], limit: int = 60
             hovertemplate="%{x}<br>median interval %{y:+.3f}% of the period"
                           "<extra></extra>"))
     extra: dict[str, Any] = {}
-    if groups:
+    if len(groups) == 2:
         n_dev, n_all = len(groups[0][1]), len(groups[1][1])
         extra["updatemenus"] = [{
             "type": "buttons", "direction": "right", "x": 1, "xanchor": "right", "y": 1.02,

@@ -369,7 +369,7 @@ def top_ids_table(top: pl.DataFrame) -> str:
         f"<td class='num'>{int(r['rank'])}</td><td class='num'>{_pct1(r['share'])}</td>"
         f"<td class='num'>{_duration(float(r['busy_ns'] or 0))}</td>"
         f"<td class='num'>{_int(r['frames'])}</td></tr>"
-        for r in top.iter_rows(named=True))  # ten per bus
+        for r in top.iter_rows(named=True))  # five per bus
     return _table("top-ids-table", "<th>message</th><th class='num'>rank</th>"
                   "<th class='num'>share of busy time</th><th class='num'>busy time</th>"
                   "<th class='num'>frames</th>", rows)
@@ -479,6 +479,14 @@ SCRIPT = """
     if (!document.getElementById(id)) { return; }  // a figure the page says in words instead
     Plotly.newPlot(id, f.figure.data, f.figure.layout, config);
     if (f.time) { timeIds.push(id); }
+  });
+  // A chart inside a closed disclosure was drawn at zero width: redraw it when opened.
+  document.querySelectorAll('details').forEach(function (d) {
+    d.addEventListener('toggle', function () {
+      d.querySelectorAll('.fig').forEach(function (el) {
+        if (el._fullLayout) { Plotly.Plots.resize(el); }
+      });
+    });
   });
   // Linked time axes: a zoom or pan on one time axis is applied to every other one.
   var syncing = false;
@@ -644,7 +652,10 @@ def render(data: ReportData, load_limit: float = 0.5, plotly_src: str | None = N
                      f"(median off by >= 0.01 % or a 1st / 99th percentile cycle off by "
                      f">= 10 %); {counted(len(periodic) - deviating, 'other')} within "
                      "tolerance. The buttons switch between the two sets.") +
-            div("fig-deviation") + "<h3>clock drift per node</h3>" +
+            (div("fig-deviation") if deviating or periodic.is_empty() else
+             '<details class="more"><summary>show all '
+             f"{counted(len(periodic), 'periodic message')}</summary>{div('fig-deviation')}"
+             "</details>") + "<h3>clock drift per node</h3>" +
             _caption((f"{counted(drifting, 'node')} beyond ±5 ppm; " if drifting else
                       "No node's clock drifts beyond ±5 ppm; ") +
                      f"{counted(others, 'other node')} within it. Positive: the sender's "

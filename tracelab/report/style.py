@@ -124,7 +124,8 @@ nav.toc { font-size: 13px; margin: 0 0 18px; }
 nav.toc a { color: var(--ink); margin-right: 14px; text-decoration: none;
             border-bottom: 1px dotted var(--muted); }
 .caption { color: var(--ink); font-size: 13px; margin: 4px 0 10px; }
-details.tech { margin: 12px 0 0; }
+details.tech, details.more { margin: 12px 0 0; }
+details.more > summary { cursor: pointer; color: var(--muted); font-size: 13px; }
 details.tech > summary { cursor: pointer; color: var(--muted); font-size: 13px; }
 .statement { font-size: 15px; padding: 10px 14px; border-radius: 6px; margin: 0 0 12px;
              background: #eef3ef; border-left: 4px solid #5f8f6f; }
