@@ -223,9 +223,9 @@ def _has_signals(catalog: Path) -> bool:
 
 def _report_path(output: Path, run: str, several: bool) -> Path:
     """``-o x.html`` is the file for one run (x-<run>.html for several); else a directory."""
-    import re
+    from tracelab.wording import file_stem
 
-    safe = re.sub(r"[^A-Za-z0-9._-]", "_", run)
+    safe = file_stem(run)
     if output.suffix.lower() in (".html", ".htm"):
         return output.with_name(f"{output.stem}-{safe}{output.suffix}") if several else output
     return output / f"{safe}.html"

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import datetime as dt
 import html
 import re
 
@@ -72,7 +73,9 @@ def test_index_links_every_report(small_fleet: Fleet) -> None:
     assert len(links) == 9
     for link in links:
         assert (small_fleet.fleet / html.unescape(link)).is_file()
-    assert page.count('class="chart"') == 4  # three vehicles and the unknown one
+    # three vehicles; the unknown one has no ok run, so no empty axes are drawn for it
+    assert page.count('class="chart"') == 3
+    assert "Vehicle unknown" not in page
     assert (small_fleet.fleet / "plotly.min.js").is_file()
 
 
@@ -83,3 +86,20 @@ def test_index_escapes_strings(tmp_path) -> None:  # type: ignore[no-untyped-def
     page = write_index(tmp_path, runs, pl.DataFrame(schema=REGRESSIONS)).read_text()
     assert "<script>alert" not in page and "&lt;script&gt;alert(1)&lt;/script&gt;" in page
     assert "bad &lt;b&gt;line&lt;/b&gt;" in page and "v&amp;&lt;w&gt;" in page
+
+
+def test_index_trend_chart_escapes_run_names_and_marks_flags_by_metric(tmp_path) -> None:  # type: ignore[no-untyped-def]
+    runs = runs_frame([{"run": f"<b>BOLD</b>{i}\u202e", "vehicle": "v1", "date": f"2026-11-0{i}",
+                        "key": str(i) * 64, "status": "ok", "files": 1, "retry": False,
+                        "frames": 10, "errors": 0, "missing": 0, "max_load_ratio": 0.1}
+                       for i in (1, 2, 3)])
+    flags = pl.DataFrame([{"vehicle": "v1", "date": dt.date(2026, 11, 3), "run": "<b>BOLD</b>3\u202e",
+                           "key": "3" * 64, "bus": "P", "id": 0x100, "ext": False,
+                           "name": "msg", "metric": "jitter_p99_ns", "value": 9e5,
+                           "baseline": 1e5, "history": 2}], schema=REGRESSIONS)
+    page = write_index(tmp_path, runs, flags).read_text()
+    assert "<b>BOLD</b>" not in page  # Plotly renders markup in labels: escaped first
+    assert "\u202e" not in page and "\\u202e" in page  # bidi override shown, not applied
+    # the jitter flag sits on the flags panel with its own symbol, not on "missing frames"
+    assert '"triangle-up"' in page and '"diamond-open"' not in page
+    assert '"rangemode":"nonnegative"' in page.replace(" ", "")

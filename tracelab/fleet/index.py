@@ -10,7 +10,8 @@ from typing import Any
 import polars as pl
 
 from tracelab.fleet import layout
-from tracelab.report.page import PLOTLY_FILE  # the same shared file name as run reports
+from tracelab.report.figures import esc
+from tracelab.report.page import CAUTION, PLOTLY_FILE  # shared with the run reports
 
 _STYLE = """
 body { font: 14px/1.45 system-ui, sans-serif; margin: 0; color: #26292c; background: #f6f6f4; }
@@ -20,8 +21,11 @@ h2 { font-size: 16px; margin: 28px 0 8px; font-weight: 600; }
 main { padding: 4px 28px 40px; }
 .muted { color: #6b6e70; }
 table { border-collapse: collapse; background: #fff; border: 1px solid #dedcd5; }
-th, td { padding: 5px 10px; border-bottom: 1px solid #ebe9e3; text-align: left;
-         white-space: nowrap; }
+th, td { padding: 4px 8px; border-bottom: 1px solid #ebe9e3; text-align: left;
+         vertical-align: top; overflow-wrap: anywhere; }
+td.num, th { white-space: nowrap; }
+.wide { overflow-x: auto; max-width: 100%; }
+table { font-size: 13px; }
 td.reason { white-space: normal; max-width: 36em; overflow-wrap: anywhere; color: #6e3b2a; }
 th { background: #f1f0ec; font-weight: 600; }
 td.num { text-align: right; font-variant-numeric: tabular-nums; }
@@ -58,7 +62,7 @@ def _cell(name: str, value: Any, metric: str | None = None) -> str:
     if isinstance(value, int) and not isinstance(value, bool):
         css = ' class="num flag"' if name == "regressions" and value else ' class="num"'
         return f"<td{css}>{value}</td>"
-    return f"<td>{html.escape(str(value))}</td>"
+    return f"<td>{esc(value)}</td>"
 
 
 def _runs_table(runs: pl.DataFrame) -> str:
@@ -74,7 +78,8 @@ def _runs_table(runs: pl.DataFrame) -> str:
                  + "".join(_cell(c, row.get(c)) for c in rest))
         css = f' class="{row["status"]}"' if row["status"] in ("failed", "suspect") else ""
         rows.append(f"<tr{css}>{cells}</tr>")
-    return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(rows)}</tbody></table>"
+    return (f'<div class="wide"><table id="runs"><thead><tr>{head}</tr></thead>'
+            f"<tbody>{''.join(rows)}</tbody></table></div>")
 
 
 def _flags_table(flags: pl.DataFrame) -> str:
@@ -85,7 +90,21 @@ def _flags_table(flags: pl.DataFrame) -> str:
     body = "".join(
         "<tr>" + "".join(_cell(c, r.get(c), r["metric"]) for c in cols) + "</tr>"
         for r in flags.iter_rows(named=True))  # flags are rare
-    return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
+    return (f'<div class="wide"><table id="flags"><thead><tr>{head}</tr></thead>'
+            f"<tbody>{body}</tbody></table></div>")
+
+
+#: Marker symbol per flagged metric (shape, not only colour, tells them apart).
+_FLAG_SYMBOLS = {"missing": "diamond", "jitter_p99_ns": "triangle-up",
+                 "abs_drift_ppm": "square"}
+_FLAG_WORDS = {"missing": "missing frames", "jitter_p99_ns": "p99 phase jitter",
+               "abs_drift_ppm": "clock drift"}
+
+
+def _labels(frame: pl.DataFrame) -> list[str]:
+    """One x label per run: date and run name, escaped (Plotly renders markup in labels)."""
+    return [esc(f"{d} {r}") for d, r in zip(frame["date"].cast(pl.String).to_list(),
+                                            frame["run"].to_list(), strict=True)]
 
 
 def _trend_chart(vehicle: str, runs: pl.DataFrame, flags: pl.DataFrame) -> str:
@@ -93,26 +112,44 @@ def _trend_chart(vehicle: str, runs: pl.DataFrame, flags: pl.DataFrame) -> str:
     from plotly.subplots import make_subplots
 
     ok = runs.filter(pl.col("status") == "ok").sort("date", "origin", "run", nulls_last=False)
-    labels = [f"{d} {r}" for d, r in zip(ok["date"].cast(pl.String).to_list(),
-                                         ok["run"].to_list(), strict=True)]
-    fig = make_subplots(rows=3, cols=1, shared_xaxes=True, vertical_spacing=0.07,
-                        subplot_titles=("missing frames", "error frames", "max bus load"))
+    labels = _labels(ok)
+    fig = make_subplots(rows=4, cols=1, shared_xaxes=True, vertical_spacing=0.06,
+                        subplot_titles=("missing frames", "error frames", "max bus load",
+                                        "messages flagged as regressions, by metric"))
     fig.add_trace(go.Scatter(x=labels, y=ok["missing"].to_list(), mode="lines+markers",
                              name="missing", line={"color": "#5b7a8c"}), row=1, col=1)
-    flagged = ok.filter(pl.col("regressions") > 0)
-    if not flagged.is_empty():
-        fig.add_trace(go.Scatter(
-            x=[f"{d} {r}" for d, r in zip(flagged["date"].cast(pl.String).to_list(),
-                                          flagged["run"].to_list(), strict=True)],
-            y=flagged["missing"].to_list(), mode="markers", name="regression flagged",
-            marker={"color": "#b5651d", "size": 11, "symbol": "diamond"}), row=1, col=1)
     fig.add_trace(go.Scatter(x=labels, y=ok["errors"].to_list(), mode="lines+markers",
                              name="errors", line={"color": "#8c7b5b"}), row=2, col=1)
     fig.add_trace(go.Scatter(x=labels, y=ok["max_load_ratio"].to_list(), mode="lines+markers",
                              name="max load", line={"color": "#6b8c5b"}), row=3, col=1)
+    mine = flags.filter(pl.col("vehicle") == vehicle) if not flags.is_empty() else flags
+    if not mine.is_empty():
+        per_run = mine.group_by("date", "run", "metric").agg(
+            pl.len().alias("messages"), pl.col("name").fill_null("?").alias("names")
+        ).sort("date", "run", "metric")
+        for metric in per_run["metric"].unique(maintain_order=True).to_list():  # three at most
+            part = per_run.filter(pl.col("metric") == metric)
+            words = _FLAG_WORDS.get(metric, metric)
+            hover = [esc(f"{words}: " + ", ".join(str(n) for n in names[:8]))
+                     for names in part["names"].to_list()]
+            fig.add_trace(go.Scatter(
+                x=_labels(part), y=part["messages"].to_list(), mode="markers",
+                name=esc(words), text=hover, hoverinfo="text+x",
+                marker={"color": "#b5651d", "size": 11,
+                        "symbol": _FLAG_SYMBOLS.get(metric, "circle")}), row=4, col=1)
+            if metric == "missing":  # the flagged runs on the panel of their own metric
+                hit = ok.join(part.select("date", "run"), on=["date", "run"], how="semi")
+                fig.add_trace(go.Scatter(
+                    x=_labels(hit), y=hit["missing"].to_list(), mode="markers",
+                    name="missing frames flagged", hoverinfo="x+y",
+                    marker={"color": "#b5651d", "size": 11, "symbol": "diamond-open",
+                            "line": {"width": 2}}), row=1, col=1)
     fig.update_yaxes(tickformat=".1%", row=3, col=1)
-    fig.update_layout(height=520, margin={"l": 50, "r": 20, "t": 40, "b": 40},
-                      paper_bgcolor="#ffffff", plot_bgcolor="#fafaf8", showlegend=False,
+    # counts and loads are never negative: a single run must not get a -1 .. 1 axis
+    fig.update_yaxes(rangemode="nonnegative")
+    fig.update_layout(height=620, margin={"l": 50, "r": 20, "t": 40, "b": 40},
+                      paper_bgcolor="#ffffff", plot_bgcolor="#fafaf8", showlegend=True,
+                      legend={"orientation": "h", "y": -0.08},
                       font={"family": "system-ui, sans-serif", "size": 12, "color": "#26292c"})
     div_id = "trend-" + "".join(ch if ch.isalnum() else "-" for ch in vehicle)
     return fig.to_html(full_html=False, include_plotlyjs=False, div_id=div_id)
@@ -137,7 +174,9 @@ def write_index(fleet: Path, runs: pl.DataFrame, flags: pl.DataFrame) -> Path:
     charts = []
     for vehicle in ordered["vehicle"].unique(maintain_order=True).to_list():  # a few vehicles
         mine = ordered.filter(pl.col("vehicle") == vehicle)
-        charts.append(f"<h2>Vehicle {html.escape(vehicle)}: trend over runs</h2>"
+        if mine.filter(pl.col("status") == "ok").is_empty():
+            continue  # no run to draw: no empty axes
+        charts.append(f"<h2>Vehicle {esc(vehicle)}: trend over runs</h2>"
                       f'<div class="chart">{_trend_chart(vehicle, mine, flags)}</div>')
     page = f"""<!doctype html>
 <html lang="en"><head><meta charset="utf-8"><title>tracelab fleet</title>
@@ -148,6 +187,7 @@ def write_index(fleet: Path, runs: pl.DataFrame, flags: pl.DataFrame) -> Path:
 <h2>Regression flags</h2>{_flags_table(flags)}
 <h2>Runs</h2>{_runs_table(ordered)}
 {''.join(charts)}
+<footer class="muted"><p><b>Caution.</b> {CAUTION}</p></footer>
 </main></body></html>
 """
     return layout.replace_atomically(fleet / layout.INDEX_FILE,
