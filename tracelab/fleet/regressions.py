@@ -14,19 +14,15 @@ from __future__ import annotations
 import duckdb
 import polars as pl
 
-from tracelab.format.grammar import id_text
-
-MIN_HISTORY = 2
-FACTOR = 2.0
-MISSING_MIN_INCREASE = 3
-JITTER_MIN_INCREASE_NS = 50_000
-DRIFT_MIN_INCREASE_PPM = 100.0
-#: Flagged metrics: (name in the flags, column of ``stats`` below, absolute floor).
-METRICS = (
-    ("missing", "missing", MISSING_MIN_INCREASE),
-    ("jitter_p99_ns", "jitter", JITTER_MIN_INCREASE_NS),
-    ("abs_drift_ppm", "drift", DRIFT_MIN_INCREASE_PPM),
+from tracelab.analyses.regression_rules import (  # noqa: F401  (re-exported)
+    DRIFT_MIN_INCREASE_PPM,
+    FACTOR,
+    JITTER_MIN_INCREASE_NS,
+    METRICS,
+    MIN_HISTORY,
+    MISSING_MIN_INCREASE,
 )
+from tracelab.format.grammar import id_text
 
 REGRESSIONS = pl.Schema({
     "vehicle": pl.String, "date": pl.Date, "run": pl.String, "key": pl.String,

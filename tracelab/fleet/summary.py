@@ -12,6 +12,7 @@ from typing import Any
 import duckdb
 import polars as pl
 
+from tracelab.analyses.regression_rules import phase_jitter_p99  # noqa: F401
 from tracelab.fleet.discover import RunSpec
 from tracelab.format.grammar import ERROR_TYPES
 
@@ -155,42 +156,6 @@ def first_degraded(faults_json: dict[str, Any] | None) -> dict[str, Any]:
                cause_kind=(result.get("cause") or {}).get("kind") or out["cause_kind"],
                confidence=None if confidence is None else float(confidence))
     return out
-
-
-_PHASE_P99_SQL = """
-WITH arrivals AS (
-    SELECT f.run, f.bus, f.id, f.ext, f.t_ns, t.period_ns,
-           f.t_ns - lag(f.t_ns) OVER w AS dt_ns,
-           (f.t_ns - first_value(f.t_ns) OVER w)::DOUBLE AS t_rel_ns
-    FROM frames f
-    JOIN (SELECT DISTINCT run, bus, id, ext, period_ns FROM timing
-          WHERE period_ns IS NOT NULL) t
-      ON f.run = t.run AND f.bus = t.bus AND f.id = t.id AND f.ext = t.ext
-    WINDOW w AS (PARTITION BY f.run, f.bus, f.id, f.ext ORDER BY f.t_ns)
-), cycles AS (
-    SELECT run, bus, id, ext, t_rel_ns,
-           sum(coalesce(round(dt_ns / period_ns), 0)) OVER (
-               PARTITION BY run, bus, id, ext ORDER BY t_ns
-               ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW)::DOUBLE AS cycle
-    FROM arrivals
-), fit AS (
-    SELECT run, bus, id, ext, regr_slope(t_rel_ns, cycle) AS slope_ns,
-           regr_intercept(t_rel_ns, cycle) AS icpt_ns
-    FROM cycles GROUP BY run, bus, id, ext
-)
-SELECT c.run, c.bus, c.id, c.ext,
-       quantile_cont(abs(c.t_rel_ns - (f.icpt_ns + f.slope_ns * c.cycle)), 0.99) AS jitter_p99_ns
-FROM cycles c JOIN fit f ON c.run = f.run AND c.bus = f.bus AND c.id = f.id AND c.ext = f.ext
-GROUP BY c.run, c.bus, c.id, c.ext
-"""
-
-
-def phase_jitter_p99(con: duckdb.DuckDBPyConnection) -> pl.DataFrame:
-    """p99 of |phase jitter| per periodic stream: the arrival's distance from the straight
-    line fitted through (cycle index, arrival time), the cycle index advancing by
-    round(inter-arrival / period) (timing's definition; the slope takes drift out).
-    Needs the views frames and timing (for the periods)."""
-    return con.sql(_PHASE_P99_SQL).pl()
 
 
 def message_stats(con: duckdb.DuckDBPyConnection, spec: RunSpec) -> pl.DataFrame:
