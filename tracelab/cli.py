@@ -266,6 +266,34 @@ def report(
 
 
 @app.command()
+def compare(
+    source: Path = typer.Argument(..., help="Dataset or fleet directory holding both runs."),
+    run: list[str] = typer.Option(..., "--run", help="Give twice: the reference run A, then B."),
+    output: Path | None = typer.Option(None, "-o", "--output", help="Write the comparison page."),
+    as_json: bool = typer.Option(False, "--json", help="Print JSON."),
+    memory: str | None = MEMORY_OPTION,
+    temp_dir: Path | None = TEMP_DIR_OPTION,
+) -> None:
+    """Compare two runs of one network: per message, per bus, errors and verdicts.
+
+    \b
+    Example:
+      tracelab compare fleet/ --run night-06 --run night-07 -o compare.html
+    """
+    from tracelab import workflow
+    from tracelab.errors import UsageError
+
+    if len(run) != 2:
+        raise UsageError(f"--run: give exactly two runs (reference, then the one to review); "
+                         f"got {len(run)}")
+    with workflow.limits(memory, temp_dir):
+        result = workflow.compare(source, run[0], run[1], output=output)
+    _print_json(result.as_json()) if as_json else typer.echo(result.describe())
+    if output is not None and not as_json:
+        typer.echo(f"comparison: {output}")
+
+
+@app.command()
 def demo(
     output: Path = typer.Option(Path("demo_out"), "-o", "--output", help="Working directory."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bars."),

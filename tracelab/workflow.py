@@ -301,6 +301,70 @@ def report(dataset: Path, output: Path, catalog: Path | None = None, run: str | 
     return written
 
 
+def compare(source: Path, run_a: str, run_b: str, output: Path | None = None) -> Any:
+    """Compare run B with reference run A, in one dataset or one fleet (runs by name)."""
+    from tracelab.analyses.compare import compare_runs
+    from tracelab.errors import UsageError, did_you_mean
+    from tracelab.query import FLEET_MANIFEST
+
+    if (source / FLEET_MANIFEST).is_file():
+        from tracelab.fleet.views import connect_fleet
+
+        con = connect_fleet(source)
+        rows = con.sql("SELECT * FROM runs WHERE status = 'ok'").pl()
+        names = rows["run"].to_list()
+        verdicts = {}
+        for side, name in (("a", run_a), ("b", run_b)):
+            hits = rows.filter(rows["run"] == name)
+            if hits.is_empty():
+                con.close()
+                raise UsageError(f"{source}: no ok run {name!r}{did_you_mean(name, names)}")
+            if hits.height > 1:
+                con.close()
+                raise UsageError(f"{source}: run {name!r} is ambiguous (vehicles "
+                                 f"{', '.join(str(v) for v in hits['vehicle'].to_list())})")
+            verdicts[side] = _fleet_verdict(hits.row(0, named=True))
+    else:
+        from tracelab.store.dataset import open_dataset
+
+        ds = open_dataset(source)
+        for name in (run_a, run_b):
+            _check_run(ds, name)
+        if not _covers(ds, "timing", [run_a, run_b]):
+            timing(source)
+        if not _covers(ds, "load", [run_a, run_b]):
+            load(source)
+        results = (ds.read_analysis_json("faults") or {}).get("results", [])
+        verdicts = {side: _run_verdict(results, name)
+                    for side, name in (("a", run_a), ("b", run_b))}
+        con = ds.connect()
+    with con:
+        result = compare_runs(con, run_a, run_b, verdicts)
+    if output is not None:
+        from tracelab.report.compare_page import write_compare
+
+        write_compare(result, output)
+    return result
+
+
+def _run_verdict(results: list[Any], run: str) -> Any:
+    """The run's faults result whose node degraded first (else its first result; None when
+    the replay did not cover the run)."""
+    mine = [r for r in results if r.get("run") == run]
+    degraded = [r for r in mine if r.get("first_degraded")]
+    if degraded:
+        return min(degraded, key=lambda r: r["first_degraded"].get("t_ns") or 0)
+    return mine[0] if mine else None
+
+
+def _fleet_verdict(row: dict[str, Any]) -> Any:
+    """A faults-like verdict from the fleet summary's columns."""
+    first = ({"node": row.get("first_degraded_node"), "bus": row.get("first_degraded_bus"),
+              "state": row.get("first_degraded_state"), "t_ns": row.get("first_degraded_t_ns"),
+              "confidence": row.get("confidence")} if row.get("first_degraded_node") else None)
+    return {"first_degraded": first, "cause": {"kind": row.get("cause_kind"), "node": None}}
+
+
 def _demo_inputs() -> tuple[Path, Path | None]:
     """The bundled demo scenario, and the committed demo log when the checkout has one."""
     from tracelab.errors import UsageError

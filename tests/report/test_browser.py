@@ -6,12 +6,14 @@ visible, the `<script>` mark shown as text and never run, linked time axes, a sc
 
 from __future__ import annotations
 
+import datetime as dt
 import os
 import tempfile
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
+import polars as pl
 import pytest
 
 from tests.report.synthetic import SCRIPT_MARK, build_dataset
@@ -125,4 +127,110 @@ def test_demo_report_renders_in_chromium(browser: Any, tmp_path: Path) -> None:
     check_report(page, problems, "demo-report-top.png")
     labels = page.locator("#fig-errors .annotation-text").all_text_contents()
     assert any("<scr" in label for label in labels)  # drawn as text
+    check_report_v2(page, tmp_path)
+    page.close()
+
+
+def check_report_v2(page: Any, tmp_path: Path) -> None:
+    """Table of contents, the disclosed technical detail, pagination, CSV download, and a
+    greyscale screenshot (the categories must still read without colour)."""
+    toc = page.locator("#toc a").all_text_contents()
+    assert toc[:2] == ["Verdict", "Bus load"] and "Data quality" in toc
+    assert page.locator("#verdict-line").count() == 1  # the verdict is stated once
+    detail = page.locator("#verdict-detail")
+    detail.evaluate("d => { d.open = false; }")
+    assert not page.locator("#verdict-detail table").first.is_visible()
+    detail.locator("summary").click()
+    assert page.locator("#verdict-detail table").first.is_visible()
+    # 54 messages: 25 rows a page, the header sticks, no inner scroll box
+    rows = page.locator("#timing-table tbody tr")
+    total = rows.count()
+    assert total > 25
+
+    def shown() -> int:
+        return int(page.evaluate("""() => Array.from(document.querySelectorAll(
+            '#timing-table tbody tr')).filter(r => r.style.display !== 'none').length"""))
+
+    assert shown() == 25
+    page.locator(".pager button", has_text="2").first.click()
+    assert shown() == min(25, total - 25)
+    page.locator(".pager button", has_text="all").first.click()
+    assert shown() == total
+    sticky = page.evaluate("getComputedStyle(document.querySelector('#timing-table th'))"
+                           ".position")
+    assert sticky == "sticky"
+    with page.expect_download() as info:
+        page.locator("button.csv[data-table='timing-table']").click()
+    target = tmp_path / "timing.csv"
+    info.value.save_as(str(target))
+    lines = target.read_text().splitlines()
+    assert len(lines) == total + 1 and lines[0].startswith("message")
+    # greyscale: each error type keeps a pattern of its own, each node a dash of its own
+    patterns = page.evaluate("""() => document.getElementById('fig-errors')._fullData
+        .filter(t => t.type === 'bar').map(t => t.marker.pattern.shape)""")
+    assert len(set(patterns)) == len(patterns) > 1
+    page.evaluate("document.documentElement.style.filter = 'grayscale(1)'")
+    page.screenshot(path=str(ARTIFACTS / "demo-report-greyscale.png"), full_page=True)
+    page.evaluate("document.documentElement.style.filter = ''")
+    page.screenshot(path=str(ARTIFACTS / "demo-report-full.png"), full_page=True)
+
+
+def test_comparison_page_renders_in_chromium(browser: Any, tmp_path: Path) -> None:
+    from tests.analyses.test_compare import _scenario
+
+    logs = []
+    for scenario in (_scenario(tmp_path / "a.toml", "night-a", 1, False, "10ms"),
+                     _scenario(tmp_path / "b.toml", "night-b", 2, True, "12ms")):
+        log = tmp_path / f"{scenario.stem}.frames"
+        workflow.simulate(scenario, log, duration="6s", quiet=True)
+        logs.append(log)
+    workflow.ingest(logs, tmp_path / "ds", quiet=True)
+    workflow.timing(tmp_path / "ds", catalog=tmp_path / "a.toml")
+    page_path = tmp_path / "compare.html"
+    workflow.compare(tmp_path / "ds", "night-a", "night-b", output=page_path)
+    page = browser.new_page()
+    problems: list[str] = []
+    page.on("console", lambda m: problems.append(m.text) if m.type == "error" else None)
+    page.on("pageerror", lambda e: problems.append(str(e)))
+    page.goto(page_path.as_uri())
+    page.wait_for_function("document.querySelectorAll('.fig .main-svg').length >= 1")
+    assert problems == []
+    traces = page.evaluate("""() => document.getElementById('fig-compare-load')._fullData
+        .filter(t => t.visible === true && t.x && t.x.length).length""")
+    assert traces == 2
+    assert "moved beyond the regression rule" in page.locator("#verdict-line").inner_text()
+    flagged = page.locator("#compare-messages tbody tr td.bad-cell").count()
+    assert flagged >= 3
+    ARTIFACTS.mkdir(exist_ok=True)
+    page.screenshot(path=str(ARTIFACTS / "compare.png"), full_page=True)
+    page.close()
+
+
+def test_fleet_index_renders_in_chromium(browser: Any, tmp_path: Path) -> None:
+    from tracelab.fleet.index import write_index
+    from tracelab.fleet.regressions import REGRESSIONS
+    from tracelab.fleet.summary import runs_frame
+
+    runs = runs_frame([{"run": f"night-{i:02d}", "vehicle": v, "date": f"2026-11-{i:02d}",
+                        "key": f"{v}{i}".ljust(64, "0"), "status": "ok", "files": 1,
+                        "retry": False, "frames": 1000 * i, "errors": i % 3, "missing": i % 2,
+                        "max_load_ratio": 0.1 + 0.01 * i, "report": None}
+                       for v in ("utv-01", "utv-02") for i in range(1, 6)])
+    flags = pl.DataFrame([{"vehicle": "utv-01", "date": dt.date(2026, 11, 5), "run": "night-05",
+                           "key": "utv-015".ljust(64, "0"), "bus": "P", "id": 0x100,
+                           "ext": False, "name": "msg", "metric": "jitter_p99_ns",
+                           "value": 9e5, "baseline": 1e5, "history": 4}], schema=REGRESSIONS)
+    path = write_index(tmp_path, runs, flags)
+    page = browser.new_page()
+    page.set_viewport_size({"width": 1400, "height": 900})
+    problems: list[str] = []
+    page.on("pageerror", lambda e: problems.append(str(e)))
+    page.goto(path.as_uri())
+    page.wait_for_function("document.querySelectorAll('.js-plotly-plot').length >= 2")
+    assert problems == []
+    assert page.locator(".js-plotly-plot").count() == 2  # one trend chart per vehicle
+    # the runs table fits a 1400 px window: no horizontal overflow of the page
+    assert page.evaluate("document.documentElement.scrollWidth <= window.innerWidth")
+    ARTIFACTS.mkdir(exist_ok=True)
+    page.screenshot(path=str(ARTIFACTS / "fleet-index.png"), full_page=True)
     page.close()

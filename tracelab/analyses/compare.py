@@ -103,20 +103,23 @@ def _per_message(con: duckdb.DuckDBPyConnection, run: str, p99: pl.DataFrame) ->
     return frame
 
 
-def _message_flags(a: dict[str, Any], b: dict[str, Any]) -> list[str]:
-    """The regression rule per metric (B against A); a moved period explains a drift."""
-    flags = []
+def _message_flags(a: dict[str, Any], b: dict[str, Any], frame_ns: float) -> list[str]:
+    """The regression rule per metric (B against A). A moved period explains the message's
+    own drift and jitter against the reference period, so it is the one flag then. Jitter
+    must also rise by more than the longest frame on the bus (``frame_ns``): one frame in
+    progress is what arbitration against a re-phased neighbour (a drifting clock, a moved
+    period elsewhere) adds to any message, a change of the others, not of this one."""
     pa, pb = a.get("period_ns"), b.get("period_ns")
-    period_moved = bool(pa and pb and abs(pb - pa) / pa >= PERIOD_MIN_CHANGE)
-    if period_moved:
-        flags.append("period")
+    if pa and pb and abs(pb - pa) / pa >= PERIOD_MIN_CHANGE:
+        return ["period"]
+    flags = []
     if regressed(a.get("missing"), b.get("missing"), MISSING_MIN_INCREASE):
         flags.append("missing")
-    if regressed(a.get("jitter_p99_ns"), b.get("jitter_p99_ns"), JITTER_MIN_INCREASE_NS):
+    if regressed(a.get("jitter_p99_ns"), b.get("jitter_p99_ns"),
+                 max(JITTER_MIN_INCREASE_NS, frame_ns)):
         flags.append("jitter_p99_ns")
     da, db = a.get("drift_ppm"), b.get("drift_ppm")
-    if not period_moved and da is not None and db is not None and \
-            regressed(abs(da), abs(db), DRIFT_MIN_INCREASE_PPM):
+    if da is not None and db is not None and regressed(abs(da), abs(db), DRIFT_MIN_INCREASE_PPM):
         flags.append("abs_drift_ppm")
     return flags
 
@@ -140,6 +143,8 @@ def compare_messages(con: duckdb.DuckDBPyConnection, run_a: str, run_b: str,
             p99 = con.sql("SELECT run, bus, id, ext, jitter_p99_ns FROM message_stats "
                           "WHERE run IN ($a, $b)", params={"a": run_a, "b": run_b}).pl()
     fa, fb = _per_message(con, run_a, p99), _per_message(con, run_b, p99)
+    longest = dict(con.sql("SELECT bus, max(duration_ns) FROM frames WHERE run IN ($a, $b) "
+                           "GROUP BY bus", params={"a": run_a, "b": run_b}).fetchall())
     values = [c for c in MESSAGE_VALUES if c in fa.columns]
     rows_a = {(r["bus"], r["id"], r["ext"]): r for r in fa.iter_rows(named=True)}
     rows_b = {(r["bus"], r["id"], r["ext"]): r for r in fb.iter_rows(named=True)}
@@ -150,7 +155,7 @@ def compare_messages(con: duckdb.DuckDBPyConnection, run_a: str, run_b: str,
         a = {c: (ra or {}).get(c) for c in values} if ra else {}
         b = {c: (rb or {}).get(c) for c in values} if rb else {}
         if ra and rb:
-            flags = _message_flags(a, b)
+            flags = _message_flags(a, b, float(longest.get(key[0]) or 0))
         else:
             flags = ["only_in_a" if ra else "only_in_b"]
         name = (ra or rb or {}).get("name")

@@ -22,8 +22,9 @@ main { padding: 4px 28px 40px; }
 .muted { color: #6b6e70; }
 table { border-collapse: collapse; background: #fff; border: 1px solid #dedcd5; }
 th, td { padding: 4px 8px; border-bottom: 1px solid #ebe9e3; text-align: left;
-         vertical-align: top; overflow-wrap: anywhere; }
-td.num, th { white-space: nowrap; }
+         vertical-align: top; }
+td { white-space: nowrap; }
+th { white-space: normal; min-width: 4em; }
 .wide { overflow-x: auto; max-width: 100%; }
 table { font-size: 13px; }
 td.reason { white-space: normal; max-width: 36em; overflow-wrap: anywhere; color: #6e3b2a; }
@@ -37,8 +38,10 @@ a { color: #2f5d7c; }
 """
 
 _COLUMNS = ("vehicle", "date", "run", "status", "frames", "missing", "errors", "rejects",
-            "max_load_ratio", "first_degraded_node", "first_degraded_state", "cause_kind",
-            "confidence", "regressions")
+            "max_load_ratio", "first_degraded", "cause", "regressions")
+#: Headings as words (they wrap; the cells do not).
+_HEADINGS = {"max_load_ratio": "max load", "first_degraded": "first degraded (state)",
+             "cause": "cause (score)"}
 
 
 def _number(name: str, value: float, metric: str | None = None) -> str:
@@ -67,9 +70,16 @@ def _cell(name: str, value: Any, metric: str | None = None) -> str:
 
 def _runs_table(runs: pl.DataFrame) -> str:
     lead, rest = _COLUMNS[:4], _COLUMNS[4:]
-    head = "".join(f"<th>{html.escape(c)}</th>" for c in (*lead, "report / reason", *rest))
+    head = "".join(f"<th>{html.escape(_HEADINGS.get(c, c))}</th>"
+                   for c in (*lead, "report / reason", *rest))
     rows = []
     for row in runs.iter_rows(named=True):  # one row per run, not per frame
+        row = {**row,
+               "first_degraded": (f"{row['first_degraded_node']} ({row['first_degraded_state']})"
+                                  if row.get("first_degraded_node") else None),
+               "cause": (f"{row['cause_kind']} ({row['confidence']:.2f})"
+                         if row.get("cause_kind") and row.get("confidence") is not None
+                         else row.get("cause_kind"))}
         if row["status"] in ("ok", "suspect") and row.get("report"):
             link = f'<td><a href="{html.escape(row["report"], quote=True)}">report</a></td>'
         else:

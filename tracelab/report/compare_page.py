@@ -161,8 +161,10 @@ def render_compare(result: Comparison, plotly_src: str | None = None) -> str:
         _section("messages", "Messages, worst changes first",
                  _caption("Look for flags: a message is flagged when its value in B is at "
                           "least twice A's and above it by the floor of the fleet's rule "
-                          "(3 frames, 50 µs p99 jitter, 100 ppm drift), or when its period "
-                          "moved by 1 % or more.") + _messages_table(result)),
+                          "(3 frames, 100 ppm drift; p99 jitter by 50 µs and by more than "
+                          "the longest frame on the bus, which arbitration alone can add), "
+                          "or when its period moved by 1 % or more.") +
+                 _messages_table(result)),
         _section("buses", "Bus load",
                  _caption("Look for a bus whose load rose between the runs (A plain, B "
                           "hatched).") + '<div id="fig-compare-load" class="fig"></div>'
