@@ -408,11 +408,11 @@ def demo(output: Path, quiet: bool = False) -> str:
     sentence, _ = verdict_sentence(faults_json, errors)
     lines = [f"verdict: {sentence}", *_demo_truth(log, faults_json)]
     lines += [f"report: {p}" for p in paths]
-    lines += _demo_next_steps(dataset, paths, scenario)
+    lines += _demo_next_steps(dataset, paths, ds.runs())
     return "\n".join(lines)
 
 
-def _demo_next_steps(dataset: Path, reports: list[Path], scenario: Path) -> list[str]:
+def _demo_next_steps(dataset: Path, reports: list[Path], runs: list[str]) -> list[str]:
     """What a new user would run next on the demo dataset (quoted for a POSIX shell)."""
     import shlex
 
@@ -420,8 +420,9 @@ def _demo_next_steps(dataset: Path, reports: list[Path], scenario: Path) -> list
              "WHERE missing > 0 ORDER BY missing DESC")
     steps = [f"tracelab sql {shlex.quote(str(dataset))} {shlex.quote(query)}"]
     steps += [f"open {shlex.quote(str(p))} in a browser" for p in reports[:1]]
-    steps.append(f"tracelab faults {shlex.quote(str(dataset))} --catalog "
-                 f"{shlex.quote(str(scenario))} --json")
+    run = runs[0] if runs else "RUN"
+    steps.append(f"tracelab compare {shlex.quote(str(dataset))} --run {shlex.quote(run)} "
+                 "--run NEXT_RUN -o compare.html   (after ingesting a second night into it)")
     return ["next:", *(f"  {s}" for s in steps)]
 
 
