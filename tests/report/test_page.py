@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import hashlib
 import json
 import re
 from pathlib import Path
@@ -109,9 +110,18 @@ def test_verdict_sentence() -> None:
 def test_report_paths_for_one_and_several_runs(tmp_path: Path) -> None:
     from tracelab.workflow import _report_path
 
+    def tag(name: str) -> str:  # sanitised names carry a short hash of the original
+        return hashlib.sha256(name.encode()).hexdigest()[:8]
+
     assert _report_path(tmp_path / "r.html", "a/b", several=False) == tmp_path / "r.html"
-    assert _report_path(tmp_path / "r.html", "a/b", several=True) == tmp_path / "r-a_b.html"
-    assert _report_path(tmp_path / "out", "run 1", several=True) == tmp_path / "out" / "run_1.html"
+    assert _report_path(tmp_path / "r.html", "a/b", several=True) == \
+        tmp_path / f"r-a_b-{tag('a/b')}.html"
+    assert _report_path(tmp_path / "out", "run 1", several=True) == \
+        tmp_path / "out" / f"run_1-{tag('run 1')}.html"
+    assert _report_path(tmp_path / "out", "night-07", several=True) == \
+        tmp_path / "out" / "night-07.html"
+    # runs a<b and a>b must not write one page
+    assert _report_path(tmp_path / "out", "a<b", True) != _report_path(tmp_path / "out", "a>b", True)
 
 
 def test_report_recomputes_analyses_that_miss_a_run(dataset: Path, tmp_path: Path) -> None:
