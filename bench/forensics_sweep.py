@@ -519,8 +519,11 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--only", help="scenarios whose name contains this")
     ap.add_argument("--json", type=Path, help="write the per-verdict rows here")
     ap.add_argument("--keep", type=Path, help="keep the generated files in this directory")
+    ap.add_argument("--held-out-seed", type=int, default=2026,
+                    help="seed of the randomly drawn held-out scenarios (2026: the recorded set)")
     args = ap.parse_args(argv)
-    chosen = [s for s in scenarios() + held_out() if (not args.fast or s.fast)
+    chosen = [s for s in scenarios() + held_out(seed=args.held_out_seed)
+              if (not args.fast or s.fast)
               and (args.only is None or args.only in s.name)]
     work = args.keep or Path(tempfile.mkdtemp(prefix="tl-sweep-"))
     rows: list[dict[str, Any]] = []
