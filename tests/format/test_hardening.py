@@ -353,3 +353,10 @@ def test_damage_further_on_is_named_instead_of_the_fault_it_caused(tmp_path: Pat
     with pytest.raises(LogFormatError, match="corrupt or truncated gzip data") as caught:
         read_log(path, strict=strict)
     assert "; it shows first as line 2: %origin must be" in caught.value.reason
+
+
+def test_a_byte_order_mark_is_named(tmp_path: Path) -> None:
+    path = _write(tmp_path, b"\xef\xbb\xbf" + (HEADER + GOOD).encode())
+    with pytest.raises(LogFormatError, match="starts with a byte order mark") as caught:
+        read_log(path)
+    assert caught.value.line == 1

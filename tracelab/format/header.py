@@ -42,6 +42,10 @@ def _parse_magic(path: Path, line: bytes | None) -> None:
     if words[0] == MAGIC and len(words) == 2 and words[1].isdigit() and int(words[1]) != VERSION:
         raise LogFormatError(str(path), 1, f"format version {words[1]} is not supported "
                              f"(this tracelab reads version {VERSION}); upgrade tracelab")
+    if text.startswith("\ufeff"):
+        raise LogFormatError(str(path), 1, "the file starts with a byte order mark (EF BB BF): "
+                             f"line 1 must be exactly '{HEADER_LINE}'; save it as UTF-8 "
+                             "without a BOM")
     shown = text if len(text) <= 40 else text[:40] + "..."
     raise LogFormatError(str(path), 1, f"not a tracelab frame log: line 1 must be "
                          f"'{HEADER_LINE}', found '{shown}'")
