@@ -14,7 +14,7 @@ cut). For every case:
   exits 3 and leaves the dataset byte for byte as it was.
 
 The short run is part of ``make test`` (derandomized, a few tens of seconds); the long one
-runs with ``pytest -m slow tests/fuzz``.
+runs with ``pytest -m slow tests/fuzz`` (``TRACELAB_FUZZ_EXAMPLES`` cases, default 1,500).
 """
 
 from __future__ import annotations
@@ -22,6 +22,7 @@ from __future__ import annotations
 import contextlib
 import gzip
 import io
+import os
 import random
 import shutil
 import tempfile
@@ -37,6 +38,7 @@ from hypothesis import strategies as st
 from tracelab.cli import main
 from tracelab.errors import LogFormatError
 from tracelab.format.blocks import DAMAGE_PROBE_BYTES
+from tracelab.format.compression import GZIP_MAGIC, ZSTD_MAGIC
 from tracelab.format.reader import read_log
 
 HEADER = ("%tracelab-frames 1\n%origin 2026-11-30T21:04:05.250Z\n"
@@ -251,8 +253,9 @@ def check_case(log: bytes, codec: str, damage: str, seed: int, base: Path) -> No
             # named as damage unless a fault stopped the read before it (more than the
             # reader's probe of DAMAGE_PROBE_BYTES past a fault; half of it, as decoders
             # notice damage a little apart)
-            # (and a file cut inside the codec's magic bytes is not recognisably compressed)
-            if len(packed) >= 4 and decodable_prefix(packed, codec) <= DAMAGE_PROBE_BYTES // 2:
+            # (and a file whose magic bytes are cut or damaged is not recognisably compressed)
+            magic = GZIP_MAGIC if codec == "gzip" else ZSTD_MAGIC
+            if packed.startswith(magic) and decodable_prefix(packed, codec) <= DAMAGE_PROBE_BYTES // 2:
                 assert "corrupt or truncated" in err, err
             return
         if code == 0:
@@ -332,10 +335,12 @@ def test_mutated_logs_keep_the_promises(base_dataset: Path, case: tuple) -> None
 
 
 @pytest.mark.slow
-@settings(max_examples=1500, **_SETTINGS)  # type: ignore[arg-type]
+@settings(max_examples=int(os.environ.get("TRACELAB_FUZZ_EXAMPLES", "1500")),
+          **_SETTINGS)  # type: ignore[arg-type]
 @given(case=cases(LONG_MUTATIONS))
 @example(case=(10, 1, ["10mb-line"], "gzip", "cut"))  # found: damage past the probe
 @example(case=(10, 1, ["not-utf8", "10mb-line"], "gzip", "flip"))  # found: at the probe's end
 @example(case=(10000001, 1, [], "gzip", "cut"))  # found: cut to one byte of the magic
+@example(case=(10000001, 1, [], "gzip", "flip"))  # found: a flip in the magic itself
 def test_mutated_logs_keep_the_promises_long(base_dataset: Path, case: tuple) -> None:
     _case(case, LONG_MUTATIONS, base_dataset)
