@@ -127,6 +127,12 @@ def test_demo_report_renders_in_chromium(browser: Any, tmp_path: Path) -> None:
     check_report(page, problems, "demo-report-top.png")
     labels = page.locator("#fig-errors .annotation-text").all_text_contents()
     assert any("<scr" in label for label in labels)  # drawn as text
+    # the demo catalog's signals: overview and the window around the first degradation;
+    # the overview follows a zoom of the other time axes
+    assert page.locator("#signals .fig").count() == 2
+    page.evaluate("Plotly.relayout('fig-errors', {'xaxis.range': [300, 400]})")
+    page.wait_for_function(
+        "document.getElementById('fig-signals').layout.xaxis.range[0] === 300")
     check_report_v2(page, tmp_path)
     page.close()
 

@@ -190,6 +190,11 @@ def signal_payloads(plan: SignalPlan, t_ns: np.ndarray, release: np.ndarray,
 
     ``release`` is each release's number among all the message's releases (suppressed
     ones included), so counters advance across releases that are never sent."""
+    # Draw from the scenario's stream exactly what the default counter payload draws (one
+    # byte per payload byte) and seed the noise from it: the other messages' releases stay
+    # those of the same scenario without signals.
+    seed = rng.integers(0, 256, plan.nbytes, dtype=np.uint8)
+    rng = np.random.default_rng(int.from_bytes(seed.tobytes(), "little"))
     rows = np.zeros((len(t_ns), plan.nbytes), dtype=np.uint8)
     signals = plan.message.signals
     order = sorted(range(len(signals)), key=lambda i: (
