@@ -38,6 +38,7 @@ from tracelab.forensics.hypotheses import (
 )
 from tracelab.forensics.losses import filled_evidence, loss_before, original_rows
 from tracelab.forensics.replay import NodeReplay, replay_node
+from tracelab.forensics.steps import every_change
 from tracelab.format.grammar import wall_time
 from tracelab.physics.confinement import DEFAULT_CONFIG, ConfinementConfig
 
@@ -160,7 +161,7 @@ def replay_faults(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run: str
         result, winner = bus_verdict(ev, _origin(con, r), bus_gaps,
                                      _catalog_view(catalog, bus, ev.nodes), config)
         results.append(result)
-        counters.append(_counters_frame(ev, winner))
+        counters.append(_counters_frame(ev, winner, config))
         states.append(_states_frame(ev, winner))
     counters_df = pl.concat(counters) if counters else pl.DataFrame(schema=COUNTERS_SCHEMA)
     states_df = pl.concat(states) if states else pl.DataFrame(schema=NODE_STATES_SCHEMA)
@@ -802,7 +803,8 @@ def _evidence(ev: BusEvidence, h: Hypothesis, silences: list[Silence],
     }
 
 
-def _counters_frame(ev: BusEvidence, h: Hypothesis) -> pl.DataFrame:
+def _counters_frame(ev: BusEvidence, h: Hypothesis,
+                    config: ConfinementConfig = DEFAULT_CONFIG) -> pl.DataFrame:
     parts = []
     names = ["t_ns", "tec", "rec", "state", "cause", "uncertain"]
     for rep in h.replays:  # loop over nodes; rows are counter changes (rare)
@@ -813,6 +815,8 @@ def _counters_frame(ev: BusEvidence, h: Hypothesis) -> pl.DataFrame:
                                  orient="row")
         else:
             continue
+        # the step function the rules define: every decrement at the frame that made it
+        frame = every_change(frame, ev, ev.node_index(rep.node), config)
         parts.append(frame.with_columns(pl.lit(rep.node).alias("node")))
     if not parts:
         return pl.DataFrame(schema=COUNTERS_SCHEMA)
