@@ -170,3 +170,16 @@ def test_report_of_an_ingested_log_without_catalog(tmp_path: Path) -> None:
     assert "</script><b>x" not in text
     counters = _figures(text)["fig-counters"]["figure"]["data"]
     assert any(trace.get("name") == "vcu" for trace in counters)
+
+
+def test_verdict_sentence_names_a_flood_instead_of_a_clean_run() -> None:
+    faults = {"results": [{"run": RUN, "bus": "body", "first_degraded": None,
+                           "cause": {"kind": "flood", "node": None, "id": "7FF"},
+                           "flood": {"id": "7FF", "ext": False, "sender": None,
+                                     "from_ns": 2_000_000_000, "to_ns": 5_000_000_000,
+                                     "per_s": 4000.0, "in_catalog": False,
+                                     "starved_nodes": ["bcm", "vcu"]}}]}
+    text, tone = verdict_sentence(faults)
+    assert tone == "bad" and "Clean run" not in text
+    assert "identifier 7FF (not in the catalog) flooded the bus" in text
+    assert "starving bcm, vcu" in text

@@ -74,6 +74,20 @@ def verdict_sentence(faults: dict[str, Any] | None, errors: int = 0) -> tuple[st
                 "(give a catalog to name the node that degraded first).", "unknown")
     degraded = [r for r in faults.get("results", []) or [] if r.get("first_degraded")]
     if not degraded:
+        floods = [r for r in faults.get("results", []) or []
+                  if (r.get("cause") or {}).get("kind") == "flood" and r.get("flood")]
+        if floods:  # no node degraded, but the bus was not clean: one identifier starved it
+            parts = []
+            for r in floods:
+                f = r["flood"]
+                who = f" from {f['sender']}" if f.get("sender") else ""
+                where = "" if f.get("in_catalog") else " (not in the catalog)"
+                starved = ", ".join(f.get("starved_nodes") or []) or "no node named"
+                parts.append(f"bus {r.get('bus')}: identifier {f.get('id')}{who}{where} "
+                             f"flooded the bus from {_secs(f.get('from_ns'))} to "
+                             f"{_secs(f.get('to_ns'))} ({f.get('per_s')} frames/s), "
+                             f"starving {starved}")
+            return ("No node left error-active, but " + "; ".join(parts) + ".", "bad")
         return "Clean run: no node left error-active.", "ok"
     first = min(degraded, key=lambda r: r["first_degraded"].get("t_ns") or 0)
     fd = first["first_degraded"]
