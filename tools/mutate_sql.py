@@ -92,9 +92,14 @@ def _tests_for(stem: str) -> list[str]:
 def _child(path: str, tests: list[str]) -> int:
     """In a fresh interpreter: serve one mutated SQL file and run the tests once."""
     import pytest
+    from hypothesis import Phase, settings
 
     import tracelab.analyses as analyses
 
+    # no shrinking and no example database: a killed mutant stops at its first failure
+    settings.register_profile("tracelab-mutation", max_examples=10, database=None,
+                              phases=[Phase.explicit, Phase.reuse, Phase.generate])
+    settings.load_profile("tracelab-mutation")
     mutated = Path(path)
     name, text = mutated.stem, mutated.read_text("utf-8")
     original = analyses.sql_text
@@ -134,12 +139,14 @@ def run(mutants: list[Mutant]) -> tuple[list[Mutant], list[Mutant]]:
 
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--only", default="", help="SQL file name prefix, e.g. load")
+    ap.add_argument("--only", default="", help="SQL file name prefixes, comma-separated, e.g. load,gaps")
     ap.add_argument("--list", action="store_true", help="list the mutants and stop")
     ap.add_argument("--sample", type=int, default=0, help="a seeded random sample of N")
     ap.add_argument("--seed", type=int, default=17)
+    ap.add_argument("--skip", type=int, default=0, help="resume after the first N mutants")
     args = ap.parse_args(argv)
-    files = sorted(p for p in SQL_DIR.glob("*.sql") if p.stem.startswith(args.only))
+    prefixes = tuple(args.only.split(","))
+    files = sorted(p for p in SQL_DIR.glob("*.sql") if p.stem.startswith(prefixes))
     mutants = [m for f in files for m in mutants_of(f) if _tests_for(f.stem)]
     if args.list:
         for m in mutants:
@@ -147,6 +154,7 @@ def main(argv: list[str] | None = None) -> int:
         print(f"{len(mutants)} mutants")
         return 0
     t0 = time.monotonic()
+    mutants = mutants[args.skip:]
     if args.sample:
         import random
 

@@ -68,6 +68,9 @@ def _scratch(target: str, work: Path) -> Path:
         f"only_mutate = ['{source}*']\n"
         f"pytest_add_cli_args_test_selection = {tests!r}\n"
         "pytest_add_cli_args = ['-x', '-q', '-p', 'no:cacheprovider']\n"
+        # polars / DuckDB start thread pools: a child forked from a process that ran the
+        # tests can hang, so mutants are forked from a clean fork server
+        "process_isolation = 'forkserver'\n"
         "also_copy = ['demo_logs', 'README.md', 'DEVELOPERS.md', 'docs']\n"
     )
     (work / "pyproject.toml").write_text(pyproject)
@@ -93,6 +96,31 @@ PROBE = {"physics": "tracelab.physics.confinement.x_recovery_bits__mutmut_1",
          "forensics": "tracelab.forensics.*__mutmut_1"}
 
 
+#: appended to the scratch copy's tests/conftest.py: no shrinking (a mutant that fails a
+#: property test would otherwise spend its CPU budget minimising the example), no database
+HYPOTHESIS_PROFILE = """
+# --- added by tools/mutation.py for mutation runs only ---
+from hypothesis import Phase as _Phase
+from hypothesis import settings as _settings
+
+_settings.register_profile("tracelab-mutation", max_examples=10, database=None,
+                           phases=[_Phase.explicit, _Phase.reuse, _Phase.generate])
+_settings.load_profile("tracelab-mutation")
+"""
+
+
+def _install_profile(work: Path) -> None:
+    pyproject = work / "pyproject.toml"
+    text = pyproject.read_text()
+    if "process_isolation" not in text:
+        pyproject.write_text(text.replace("[tool.mutmut]\n",
+                                          "[tool.mutmut]\nprocess_isolation = 'forkserver'\n"))
+    conftest = work / "tests" / "conftest.py"
+    text = conftest.read_text() if conftest.exists() else ""
+    if "tracelab-mutation" not in text:
+        conftest.write_text(text + HYPOTHESIS_PROFILE)
+
+
 def run_target(target: str, work: Path, children: int, sample: int = 0, seed: int = 17,
                reuse: bool = False) -> dict[str, object]:
     """Run mutmut on one target; with ``sample`` > 0 only a seeded random sample of that many
@@ -101,6 +129,7 @@ def run_target(target: str, work: Path, children: int, sample: int = 0, seed: in
     bindir = Path(sys.executable).parent
     if not (reuse and (work / "mutants").exists()):
         work = _scratch(target, work)
+    _install_profile(work)
     t0 = time.monotonic()
     mutmut = [str(bindir / "mutmut"), "run", "--max-children", str(children)]
     names: list[str] = []

@@ -196,6 +196,10 @@ def test_durations_with_brs() -> None:
     assert bl.frame_durations_ns(np.array([1]), np.array([0]), 3_000_000, None).tolist() == [333]
     with pytest.raises(ValueError, match="data bit rate"):
         bl.frame_durations_ns(np.array([683]), np.array([652]), 500_000, None)
+    with pytest.raises(ValueError, match="data bit rate must be positive, got 0"):
+        bl.frame_durations_ns(np.array([683]), np.array([652]), 500_000, 0)
+    with pytest.raises(ValueError, match="nominal bit rate must be positive, got -1"):
+        bl.frame_durations_ns(np.array([683]), np.array([0]), -1, None)
 
 
 def test_brs_splits_bits() -> None:

@@ -95,7 +95,7 @@ def test_rec_above_127_returns_into_119_127_after_one_good_reception(after: int)
 def test_rec_out_of_range_is_refused() -> None:
     # from memory (rule h): the value lies in 119..127, both ends allowed
     for bad in (118, 128):
-        with pytest.raises(ValueError):
+        with pytest.raises(ValueError, match=r"rec_after_passive_reception must lie in 119\.\.127"):
             ConfinementConfig(rec_after_passive_reception=bad)
     for good in (119, 127):
         assert ConfinementConfig(rec_after_passive_reception=good).rec_after_passive_reception == good
