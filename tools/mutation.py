@@ -32,7 +32,8 @@ TARGETS: dict[str, tuple[str, list[str]]] = {
         "tests/analyses", "tests/oracles/test_load_oracle.py", "tests/test_incident_queries.py",
     ]),
     "forensics": ("tracelab/forensics/", [
-        "tests/forensics", "tests/oracles/test_counters_reference.py",
+        "tests/forensics/test_replay.py", "tests/forensics/test_verdict.py",
+        "tests/forensics/test_truth.py", "tests/forensics/test_bitrates.py",
         "tests/oracles/test_counter_boundaries.py",
     ]),
 }
@@ -93,7 +94,7 @@ def _status(work: Path) -> dict[str, str]:
 #: test statistics before a sample is drawn
 PROBE = {"physics": "tracelab.physics.confinement.x_recovery_bits__mutmut_1",
          "analyses": "tracelab.analyses.load.x_check_window__mutmut_1",
-         "forensics": "tracelab.forensics.*__mutmut_1"}
+         "forensics": "tracelab.forensics.evidence.x__sql__mutmut_1"}
 
 
 #: appended to the scratch copy's tests/conftest.py: no shrinking (a mutant that fails a
