@@ -82,3 +82,20 @@ def test_fd_frames_at_data_rates(name: str, data_bps: int) -> None:
         assert [(tr["from"], tr["to"]) for tr in got] == [(tr["from"], tr["to"]) for tr in want]
     _, (max_tec, max_rec, _) = cb.SCENARIOS[name]
     assert (nodes["charlie"]["max_tec"], nodes["charlie"]["max_rec"]) == (max_tec, max_rec)
+
+
+@pytest.mark.parametrize("bps", NOMINAL)
+def test_verdict_names_the_first_degraded_node_at_every_rate(bps: int) -> None:
+    from tracelab.forensics import replay_faults
+
+    bit_ns = 10**9 // bps
+    events, frames, errors = cb._events(cb.SCENARIOS["tec256_bus_off"][0], bit_ns)
+    ref = replay_events(events, nodes=cb.NODES)["charlie"]
+    # from the reference: the first state change (warning at TEC 96) and the bus-off
+    first = transitions(ref)[0]
+    off = [tr for tr in transitions(ref) if tr["to"] == "bus-off"][0]
+    (bus,) = replay_faults(cb._connect(frames, errors), cb._catalog(bps)).as_json()["results"]
+    fd = bus["first_degraded"]
+    assert (fd["node"], fd["state"], fd["t_ns"]) == ("charlie", first["to"], first["t_ns"])
+    assert (fd["worst_state"], fd["worst_t_ns"]) == ("bus-off", off["t_ns"])
+    assert bus["cause"]["kind"] == "transmit-fault"
