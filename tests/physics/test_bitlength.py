@@ -293,3 +293,29 @@ def test_slices_give_the_same_answer(monkeypatch: pytest.MonkeyPatch) -> None:
                           for fd in rng.integers(0, 2, 200)]  # test data generation
     monkeypatch.setattr(bl, "_SLICE_FRAMES", 7)
     assert _vectorised(batch) == [bl.frame_bits_reference(*f) for f in batch]
+
+
+def test_dlc_out_of_range_is_refused() -> None:
+    # from memory: the DLC is a 4-bit field, 0..15
+    for bad in (16, 200):
+        df = _frame_df([(0x10, False, False, False, False, False, 0, b"")]).with_columns(
+            pl.lit(bad, dtype=pl.UInt8).alias("dlc"))
+        with pytest.raises(ValueError, match=f"DLC must be 0..15, got {bad}"):
+            bl.frame_bits(df)
+
+
+def test_null_payload_beside_real_ones_is_zero_padded() -> None:
+    # a null payload counts as zero bytes; its neighbours keep theirs (oracle: the
+    # independent builder in tests/oracles/frame_oracle.py)
+    from tests.oracles import frame_oracle as fo
+
+    df = pl.DataFrame({"id": [0x123, 0x124, 0x125], "ext": [False] * 3, "rtr": [False] * 3,
+                       "fd": [False, True, False], "brs": [False, True, False],
+                       "esi": [False] * 3, "dlc": [8, 9, 2],
+                       "data": [None, bytes(range(12)), b"\xff\xfe"]}, schema=SCHEMA)
+    want = [fo.build(0x123, False, False, False, False, False, 8, bytes(8)),
+            fo.build(0x124, False, False, True, True, False, 9, bytes(range(12))),
+            fo.build(0x125, False, False, False, False, False, 2, b"\xff\xfe")]
+    out = bl.frame_bits(df)
+    assert out["bits"].to_list() == [w.bits for w in want]
+    assert out["data_phase_bits"].to_list() == [w.data_phase_bits for w in want]

@@ -67,3 +67,9 @@ def test_rows_against_crccheck(width: int, poly: int, ref: type) -> None:
     got = crc.crc_rows(rows, width, poly)
     # source: crccheck library, row by row
     assert got.tolist() == [ref.calc(bytes(r)) for r in rows]
+
+
+def test_generic_register_defaults_to_init_0() -> None:
+    # source: public CRC catalogue check value of CRC-15/CAN (crccheck Crc15Can), through the
+    # generic register with its default init
+    assert crc.crc_bits(_bits(CHECK), 15, crc.CRC15_POLY) == Crc15Can._check_result == 0x059E
