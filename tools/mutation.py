@@ -29,7 +29,10 @@ TARGETS: dict[str, tuple[str, list[str]]] = {
         "tests/oracles/test_counter_boundaries.py",
     ]),
     "analyses": ("tracelab/analyses/", [
-        "tests/analyses", "tests/oracles/test_load_oracle.py", "tests/test_incident_queries.py",
+        "tests/analyses/test_load.py", "tests/analyses/test_load_bitrates.py",
+        "tests/analyses/test_timing.py", "tests/analyses/test_envelopes.py",
+        "tests/analyses/test_jobs.py", "tests/analyses/test_signals.py",
+        "tests/oracles/test_load_oracle.py",
     ]),
     "forensics": ("tracelab/forensics/", [
         "tests/forensics/test_replay.py", "tests/forensics/test_verdict.py",
