@@ -183,3 +183,18 @@ def test_verdict_sentence_names_a_flood_instead_of_a_clean_run() -> None:
     assert tone == "bad" and "Clean run" not in text
     assert "identifier 7FF (not in the catalog) flooded the bus" in text
     assert "starving bcm, vcu" in text
+
+
+def test_verdict_sentence_says_why_the_moment_is_open() -> None:
+    faults = {"results": [{"run": RUN, "bus": "body", "cause": {"kind": "receive-fault",
+                                                                "node": "bcm"},
+                           "hypotheses": [{"name": "receive-fault:bcm", "score": 0.97}],
+                           "first_degraded": {"node": "bcm", "state": "warning",
+                                              "t_ns": 5_000_000_000, "confidence": 0.2,
+                                              "earliest_ns": 4_000_000_000,
+                                              "latest_ns": 5_100_000_000,
+                                              "bounds_from": ["a logger loss"]}}]}
+    text, _ = verdict_sentence(faults)
+    assert "between 4.000 s and 5.100 s (the exact moment is open: a logger loss" in text
+    assert "score 0.20 of 1 (low because of that interval; the cause's own score is 0.97)" \
+        in text

@@ -519,9 +519,12 @@ def _bound_first(ev: BusEvidence, h: Hypothesis, first: dict[str, Any],
             readings.append(int(tr["t_ns"]))
     lo = loss_before(ev, t + 1)
     earliest = max(min(readings), lo[0]) if lo and min(readings) < t else min(readings)
+    widened = earliest < int(first["earliest_ns"]) or max(readings) > int(first["latest_ns"])
     first["earliest_ns"] = min(earliest, int(first["earliest_ns"]))
     first["latest_ns"] = max(max(readings), int(first["latest_ns"]))
     first["uncertain"] = first["earliest_ns"] != first["latest_ns"]
+    if widened:
+        first.setdefault("bounds_from", []).append("a logger loss")
 
 
 def _bound_guessed(ev: BusEvidence, n: int, bonus: bool, first: dict[str, Any],
@@ -547,6 +550,9 @@ def _bound_guessed(ev: BusEvidence, n: int, bonus: bool, first: dict[str, Any],
         first["earliest_ns"] = min(times + [t])
         first["latest_ns"] = max(times + [t])
         first["uncertain"] = first["earliest_ns"] != first["latest_ns"]
+        if first["uncertain"]:
+            first.setdefault("bounds_from", []).append(
+                "errors whose frame the logger could not identify")
 
 
 def _calibrated(ev: BusEvidence, h: Hypothesis, hyps: list[Hypothesis],
@@ -717,8 +723,9 @@ def _sentence(ev: BusEvidence, cause: dict[str, Any], first: dict[str, Any] | No
     when = ""
     if first and first.get("earliest_ns", first["t_ns"]) != first.get("latest_ns",
                                                                        first["t_ns"]):
+        why = " and ".join(first.get("bounds_from") or ["a logger loss"])
         when = (f" (between {first['earliest_ns'] / 1e9:.6f} s and "
-                f"{first['latest_ns'] / 1e9:.6f} s: logger loss)")
+                f"{first['latest_ns'] / 1e9:.6f} s: {why})")
     if first and first["state"] == "silent":
         lead = (f"{first['node']} fell silent at {first['t_ns'] / 1e9:.6f} s"
                 + (f" ({first['wall_time']})" if first.get("wall_time") else "") + when)

@@ -98,13 +98,19 @@ def verdict_sentence(faults: dict[str, Any] | None, errors: int = 0) -> tuple[st
     reached = "fell silent" if state == "silent" else \
         f"reached {STATE_WORDS.get(state, state)}"
     lo, hi = fd.get("earliest_ns"), fd.get("latest_ns")
-    if isinstance(lo, int | float) and isinstance(hi, int | float) and hi > lo:
-        when = (f"between {_secs(lo)} and {_secs(hi)} (a logger loss hides the exact moment; "
+    wide = isinstance(lo, int | float) and isinstance(hi, int | float) and hi > lo
+    if wide:
+        why = " and ".join(fd.get("bounds_from") or ["a logger loss"])
+        when = (f"between {_secs(lo)} and {_secs(hi)} (the exact moment is open: {why}; "
                 f"best estimate {when})")
     else:
         when = f"at {when}"
     text = (f"{fd.get('node')} on bus {first.get('bus')} degraded first: {reached} {when}, "
             f"score {_score(fd.get('confidence'))}")
+    best = max((h.get("score") or 0 for h in first.get("hypotheses") or []), default=None)
+    if wide and isinstance(best, int | float) and best > (fd.get("confidence") or 0) + 0.1:
+        text += (f" (low because of that interval; the cause's own score is "
+                 f"{float(best):.2f})")
     cause = cause_words(first.get("cause"))
     known = (first.get("cause") or {}).get("kind") not in (None, "none", "unknown")
     text += f"; {'most likely cause: ' if known else ''}{cause}."
