@@ -5,6 +5,7 @@ rate under test (so a bit time that silently fell back to one rate would show)."
 from __future__ import annotations
 
 import numpy as np
+import polars as pl
 import pytest
 
 from tests.analyses.synth import connect_tables, errors_table, frames_table
@@ -24,11 +25,14 @@ def test_one_8_byte_frame_every_10ms(bps: int) -> None:
     expected = {125_000: 0.108, 250_000: 0.054, 500_000: 0.027, 1_000_000: 0.0135}[bps]
     exact = fo.build(0x123, False, False, False, False, False, 8, bytes(8)).bits  # 125 bits
     t = np.arange(200) * 10_000_000
-    for bits, want in ((135, expected), (exact, expected * exact / 135)):
-        con = connect_tables(frames_table(t, 0x123, duration_ns=bits * bit_ns, bits=bits))
-        summary = bus_load(con, window_ns=100_000_000).summary.row(0, named=True)
-        assert summary["mean"] == pytest.approx(want, rel=1e-12)
-        assert summary["max"] == pytest.approx(want, rel=1e-12)
+    # bus W carries worst-case frames, bus X the exact frame of id 0x123 with zero bytes
+    con = connect_tables([frames_table(t, 0x123, bus="W", duration_ns=135 * bit_ns, bits=135),
+                          frames_table(t, 0x123, bus="X", duration_ns=exact * bit_ns,
+                                       bits=exact)])
+    summary = {r["bus"]: r for r in bus_load(con, window_ns=100_000_000).summary.to_dicts()}
+    for bus, want in (("W", expected), ("X", expected * exact / 135)):
+        assert summary[bus]["mean"] == pytest.approx(want, rel=1e-12)
+        assert summary[bus]["max"] == pytest.approx(want, rel=1e-12)
 
 
 @pytest.mark.parametrize("bps", NOMINAL)
@@ -45,19 +49,22 @@ def test_back_to_back_frames_fill_every_full_window(bps: int) -> None:
 
 
 @pytest.mark.parametrize("bps", NOMINAL)
-@pytest.mark.parametrize("field", ["arbitration", "data", "ack", "eof"])
-def test_error_frame_uses_this_bus_bit_time(bps: int, field: str) -> None:
+def test_error_frame_uses_this_bus_bit_time(bps: int) -> None:
     # derived (docs/analyses.md estimate): bits before t_ns by field + 17 after, in this
-    # bus's bit times; base and extended identifiers
+    # bus's bit times; one error per 100 ms window, every field, base and extended
     bit_ns = 10**9 // bps
-    t = np.arange(10) * 10_000_000
-    for ext in (False, True):
-        con = connect_tables(frames_table(t, 0x123, duration_ns=125 * bit_ns, bits=125),
-                             errors=errors_table([55_000_000], field, ext=ext))
-        row = bus_load(con, window_ns=100_000_000).windows.row(0, named=True)
-        extra = (lo.bits_before(field, ext) + lo.AFTER_BITS) * bit_ns
-        assert row["error_frames"] == 1
-        assert row["busy_ns"] == 10 * 125 * bit_ns + extra
+    fields = ["sof", "arbitration", "control", "data", "crc", "ack", "eof", "interframe"]
+    t = np.arange(100) * 10_000_000
+    errors = []
+    for k, field in enumerate(fields):
+        errors.append(errors_table([k * 100_000_000 + 55_000_000], field, ext=k % 2 == 1))
+    con = connect_tables(frames_table(t, 0x123, duration_ns=125 * bit_ns, bits=125),
+                         errors=pl.concat(errors))
+    windows = bus_load(con, window_ns=100_000_000).windows
+    assert windows["error_frames"].to_list() == [1] * len(fields) + [0] * 2
+    for k, field in enumerate(fields):
+        extra = (lo.bits_before(field, k % 2 == 1) + lo.AFTER_BITS) * bit_ns
+        assert windows["busy_ns"][k] == 10 * 125 * bit_ns + extra, field
 
 
 @pytest.mark.parametrize("nominal,data", [(500_000, 2_000_000), (500_000, 5_000_000),
