@@ -89,7 +89,11 @@ class DaskExecutor:
 
     def __init__(self, scheduler: str | None = None, workers: int | None = None,
                  timeout_s: float = 20.0) -> None:
-        from distributed import Client, LocalCluster
+        try:
+            from distributed import Client, LocalCluster
+        except ImportError:
+            raise UsageError("--executor dask needs Dask: pip install 'tracelab[cluster]' "
+                             "(the local executor needs nothing more)") from None
 
         self.cluster: Any = None
         self.scheduler = scheduler
