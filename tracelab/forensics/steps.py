@@ -6,7 +6,7 @@ successes in one step (rule g: TEC -1 per own frame, rule h: REC -1 per receptio
 function, that row reads as "flat, then a drop". This module expands each such row into the
 changes the frames really made: the k-th own frame after the earlier row lowers TEC by k, the
 k-th reception lowers REC, so the stored counters are the step function the rules define.
-The loop runs over the replay's rows (one per event), each expansion is vectorised.
+Vectorised over all rows of a node at once (no loop over rows or frames).
 """
 
 from __future__ import annotations
@@ -15,93 +15,98 @@ import numpy as np
 import polars as pl
 
 from tracelab.forensics.evidence import BusEvidence
-from tracelab.physics.confinement import PASSIVE_LIMIT, ConfinementConfig, state_of
+from tracelab.physics.confinement import BUS_OFF_LIMIT, PASSIVE_LIMIT, ConfinementConfig
+
+
+def _steps(times: np.ndarray, starts: np.ndarray, counts: np.ndarray
+           ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """For segment s, the first counts[s] entries of ``times`` from index starts[s] on:
+    (segment, 1-based step k, time), entries past the end of ``times`` left out."""
+    counts = np.maximum(counts, 0)
+    total = int(counts.sum())
+    if total == 0:
+        return (np.empty(0, np.int64),) * 3
+    seg = np.repeat(np.arange(counts.size), counts)
+    first = np.repeat(np.cumsum(counts) - counts, counts)
+    k = np.arange(total) - first  # 0-based within the segment
+    idx = starts[seg] + k
+    ok = idx < times.size
+    return seg[ok], (k + 1)[ok], times[idx[ok]]
+
+
+def _states(tec: np.ndarray, rec: np.ndarray, config: ConfinementConfig) -> np.ndarray:
+    """state_of() over arrays (the same rules: i, j, k and the warning level)."""
+    hot = np.maximum(tec, rec)
+    warm = hot >= config.warning_level if config.warning_inclusive else \
+        hot > config.warning_level
+    return np.where(tec > BUS_OFF_LIMIT, "bus-off",
+                    np.where((tec > PASSIVE_LIMIT) | (rec > PASSIVE_LIMIT), "error-passive",
+                             np.where(warm, "warning", "error-active")))
 
 
 def every_change(rows: pl.DataFrame, ev: BusEvidence, node: int,
                  config: ConfinementConfig) -> pl.DataFrame:
     """``rows`` (t_ns, tec, rec, state, cause, uncertain, in replay order) with a row before
-    each "successes" row for every decrement since the row before it."""
+    each "successes" row for every decrement since the row before it, and the decrements
+    after the last row (the replay writes no tail row for an error-active node)."""
     if rows.is_empty() or node < 0:
         return rows
-    t = rows["t_ns"].to_numpy()
-    tec = rows["tec"].to_numpy()
-    rec = rows["rec"].to_numpy()
-    cause = rows["cause"].to_list()
-    uncertain = rows["uncertain"].to_list()
-    own = ev.own_t[node]
-    extra_t: list[np.ndarray] = []
-    extra_tec: list[np.ndarray] = []
-    extra_rec: list[np.ndarray] = []
-    extra_unc: list[bool] = []
-    extra_n: list[int] = []
+    t = rows["t_ns"].to_numpy().astype(np.int64)
+    tec = rows["tec"].to_numpy().astype(np.int64)
+    rec = rows["rec"].to_numpy().astype(np.int64)
+    cause = rows["cause"].to_numpy()
+    unc = rows["uncertain"].to_numpy()
     after = config.rec_after_passive_reception
-    for i in range(1, rows.height):  # one row per replay event: rare compared with frames
-        if cause[i] != "successes":
-            continue
-        t0, t1 = int(t[i - 1]), int(t[i])
-        tec0, tec1, rec0, rec1 = int(tec[i - 1]), int(tec[i]), int(rec[i - 1]), int(rec[i])
-        if t1 <= t0 or (tec1 >= tec0 and rec1 >= rec0):
-            continue
-        tec_t = np.empty(0, np.int64)
-        if tec1 < tec0:  # rule g: one step down per own frame after t0
-            a = int(np.searchsorted(own, t0, side="right"))
-            tec_t = own[a:a + (tec0 - tec1)]
-            tec_t = tec_t[tec_t <= t1]
-        rec_t = np.empty(0, np.int64)
-        if rec1 < rec0:  # rule h: per reception (a frame of any other sender) after t0
-            steps = (1 + max(0, after - rec1)) if rec0 > PASSIVE_LIMIT else rec0 - rec1
-            fa = int(np.searchsorted(ev.frame_t, t0, side="right"))
-            fb = int(np.searchsorted(ev.frame_t, t1, side="right"))
-            received = ev.frame_t[fa:fb][ev.frame_node[fa:fb] != node]
-            rec_t = received[:steps]
-        times = np.union1d(tec_t, rec_t)
-        times = times[times < t1]  # the row at t1 itself holds the value after t1
-        if times.size == 0:
-            continue
-        n_tec = np.searchsorted(tec_t, times, side="right")
-        n_rec = np.searchsorted(rec_t, times, side="right")
-        tec_at = np.maximum(tec0 - n_tec, tec1)
-        if rec0 > PASSIVE_LIMIT:
-            rec_at = np.where(n_rec == 0, rec0, np.maximum(after - (n_rec - 1), rec1))
-        else:
-            rec_at = np.maximum(rec0 - n_rec, rec1)
-        extra_t.append(times)
-        extra_tec.append(tec_at)
-        extra_rec.append(rec_at)
-        extra_unc.append(bool(uncertain[i]))
-        extra_n.append(int(times.size))
-    # the tail: after the last event the replay writes no row for a node that is
-    # error-active, so its counters would read as frozen; the frames after it lower them
     last = rows.height - 1
+    # segments: (from row i-1 to a "successes" row i), and the tail after the last row
+    i = np.flatnonzero(cause[1:] == "successes") + 1
+    t0, t1 = t[i - 1], t[i]
+    tec0, tec1, rec0, rec1 = tec[i - 1], tec[i], rec[i - 1], rec[i]
+    seg_unc = unc[i]
     if rows["state"][last] != "bus-off" and (tec[last] > 0 or rec[last] > 0):
-        t0, tec0, rec0 = int(t[last]), int(tec[last]), int(rec[last])
-        a = int(np.searchsorted(own, t0, side="right"))
-        tec_t = own[a:a + tec0]
-        fa = int(np.searchsorted(ev.frame_t, t0, side="right"))
-        later = ev.frame_t[fa:]
-        received = later[ev.frame_node[fa:] != node]
-        rec_t = received[:(1 + after) if rec0 > PASSIVE_LIMIT else rec0]
-        times = np.union1d(tec_t, rec_t)
-        if times.size:
-            n_tec = np.searchsorted(tec_t, times, side="right")
-            n_rec = np.searchsorted(rec_t, times, side="right")
-            extra_t.append(times)
-            extra_tec.append(np.maximum(tec0 - n_tec, 0))
-            extra_rec.append(np.where(n_rec == 0, rec0, np.maximum(after - (n_rec - 1), 0))
-                             if rec0 > PASSIVE_LIMIT else np.maximum(rec0 - n_rec, 0))
-            extra_unc.append(bool(uncertain[last]))
-            extra_n.append(int(times.size))
-    if not extra_t:
+        t0 = np.append(t0, t[last])
+        t1 = np.append(t1, np.iinfo(np.int64).max)
+        tec0, rec0 = np.append(tec0, tec[last]), np.append(rec0, rec[last])
+        tec1, rec1 = np.append(tec1, 0), np.append(rec1, 0)
+        seg_unc = np.append(seg_unc, unc[last])
+    if t0.size == 0:
         return rows
-    new_t = np.concatenate(extra_t)
-    new_tec = np.concatenate(extra_tec)
-    new_rec = np.concatenate(extra_rec)
-    states = [state_of(int(a), int(b), config=config) for a, b in zip(new_tec, new_rec,
-                                                                       strict=True)]
+    own = ev.own_t[node]
+    received = ev.frame_t[ev.frame_node != node]
+    # rule g: one step down per own frame after t0
+    s_a, k_a, t_a = _steps(own, np.searchsorted(own, t0, side="right"), tec0 - tec1)
+    # rule h: per reception; from above 127 the first one sets `after`, then -1 each
+    rec_steps = np.where(rec0 > PASSIVE_LIMIT, 1 + np.maximum(0, after - rec1), rec0 - rec1)
+    rec_steps = np.where(rec1 < rec0, rec_steps, 0)
+    s_b, k_b, t_b = _steps(received, np.searchsorted(received, t0, side="right"), rec_steps)
+    seg = np.concatenate([s_a, s_b])
+    when = np.concatenate([t_a, t_b])
+    keep = when < t1[seg]  # the row at t1 itself holds the value after t1
+    if not keep.any():
+        return rows
+    n_tec = np.concatenate([k_a, np.zeros_like(k_b)])
+    n_rec = np.concatenate([np.zeros_like(k_a), k_b])
+    ev_frame = pl.DataFrame({"seg": seg, "t_ns": when, "n_tec": n_tec, "n_rec": n_rec,
+                             "is_tec": np.concatenate([np.ones(k_a.size, bool),
+                                                       np.zeros(k_b.size, bool)])}
+                            ).filter(pl.Series(keep)).sort("seg", "t_ns")
+    # steps so far of each counter at each change: running max of k within the segment
+    ev_frame = ev_frame.with_columns(
+        pl.when(pl.col("is_tec")).then(pl.col("n_tec")).otherwise(0).cum_max().over("seg")
+        .alias("n_tec"),
+        pl.when(~pl.col("is_tec")).then(pl.col("n_rec")).otherwise(0).cum_max().over("seg")
+        .alias("n_rec"),
+    ).unique(["seg", "t_ns"], keep="last", maintain_order=True)
+    s = ev_frame["seg"].to_numpy()
+    nt, nr = ev_frame["n_tec"].to_numpy(), ev_frame["n_rec"].to_numpy()
+    new_tec = np.maximum(tec0[s] - nt, tec1[s])
+    passive = rec0[s] > PASSIVE_LIMIT
+    new_rec = np.where(passive, np.where(nr == 0, rec0[s], np.maximum(after - (nr - 1), rec1[s])),
+                       np.maximum(rec0[s] - nr, rec1[s]))
+    states = _states(new_tec, new_rec, config)
     added = pl.DataFrame({
-        "t_ns": new_t, "tec": new_tec, "rec": new_rec, "state": states,
-        "cause": ["success"] * new_t.size, "uncertain": np.repeat(extra_unc, extra_n),
+        "t_ns": ev_frame["t_ns"].to_numpy(), "tec": new_tec, "rec": new_rec, "state": states,
+        "cause": ["success"] * s.size, "uncertain": seg_unc[s].astype(bool),
     }).with_columns(pl.col(c).cast(rows.schema[c]) for c in rows.columns)
     # before the row they lead to: order by time, then the replay's own rows last at a tie
     ordered = pl.concat([added.with_columns(_o=pl.lit(0)),
