@@ -30,9 +30,10 @@ EXIT_INTERNAL = 4
 EXIT_STORAGE = 5
 
 
-#: C0 and C1 control characters, DEL, line and paragraph separators, and the bidirectional
-#: controls (they reorder what a terminal shows): never printed raw.
-_UNPRINTABLE = re.compile("[\x00-\x1f\x7f-\x9f\u061c\u200e\u200f\u2028\u2029"
+#: C0 and C1 control characters, DEL, line and paragraph separators, the bidirectional
+#: controls (they reorder what a terminal shows) and the zero-width marks (they hide text):
+#: never printed raw, on a terminal or on a page (report/figures.esc uses the same rule).
+_UNPRINTABLE = re.compile("[\x00-\x1f\x7f-\x9f\u061c\u200b-\u200f\u2028\u2029"
                           "\u202a-\u202e\u2066-\u2069\ufeff]")
 _NAMED = {"\n": "\\n", "\r": "\\r", "\t": "\\t"}
 

@@ -13,21 +13,6 @@ def counted(n: int, noun: str) -> str:
     return f"{n:,} {_IRREGULAR.get(noun, noun + 's')}"
 
 
-#: Characters that reorder or hide text on screen (Unicode bidirectional controls, zero-width
-#: marks) and C0 / C1 control characters other than tab and newline: shown as escapes, so a
-#: name from a log can neither spoof the display nor move the terminal's cursor.
-_UNSAFE = {*range(0x00, 0x09), *range(0x0B, 0x20), 0x7F, *range(0x80, 0xA0),
-           0x061C, 0x200B, 0x200C, 0x200D, 0x200E, 0x200F, *range(0x202A, 0x202F),
-           *range(0x2066, 0x206A), 0xFEFF}
-_VISIBLE = {code: (f"\\x{code:02x}" if code < 0x100 else f"\\u{code:04x}") for code in _UNSAFE}
-
-
-def visible(text: str) -> str:
-    """``text`` with every control, bidirectional or zero-width character written as an
-    escape (``\\x1b``, ``\\u202e``); everything else unchanged."""
-    return text.translate(_VISIBLE)
-
-
 def file_stem(name: str) -> str:
     """A file name for ``name`` that is safe on every file system and collision-free: kept as
     it is when it uses only ``A-Z a-z 0-9 . _ -``, else sanitised plus a short hash of the

@@ -16,9 +16,9 @@ import plotly.graph_objects as go
 import polars as pl
 from plotly.subplots import make_subplots
 
+from tracelab.errors import printable_lines
 from tracelab.format.grammar import id_text
 from tracelab.report import style
-from tracelab.wording import visible
 
 NS_PER_S = 1e9
 #: Counter levels of ISO 11898-1 fault confinement: warning limit (common controller
@@ -37,7 +37,7 @@ MIN_DEVIATION_RANGE_PCT = 0.5
 def esc(text: Any) -> str:
     """HTML-escaped text with control and bidirectional characters shown as escapes (a run
     or message name must not reorder what the page shows)."""
-    return html.escape(visible("" if text is None else str(text)), quote=True)
+    return html.escape(printable_lines("" if text is None else str(text)), quote=True)
 
 
 def seconds(t_ns: Any) -> np.ndarray:
