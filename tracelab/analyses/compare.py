@@ -138,10 +138,11 @@ def compare_messages(con: duckdb.DuckDBPyConnection, run_a: str, run_b: str,
     if p99 is None:
         views = {r[0] for r in con.execute(
             "SELECT table_name FROM information_schema.tables").fetchall()}
-        p99 = pl.DataFrame() if "message_stats" in views else phase_jitter_p99(con)
-        if "message_stats" in views:
+        if "message_stats" in views:  # a fleet has it stored; a dataset computes it
             p99 = con.sql("SELECT run, bus, id, ext, jitter_p99_ns FROM message_stats "
                           "WHERE run IN ($a, $b)", params={"a": run_a, "b": run_b}).pl()
+        else:
+            p99 = phase_jitter_p99(con)
     fa, fb = _per_message(con, run_a, p99), _per_message(con, run_b, p99)
     longest = dict(con.sql("SELECT bus, max(duration_ns) FROM frames WHERE run IN ($a, $b) "
                            "GROUP BY bus", params={"a": run_a, "b": run_b}).fetchall())
