@@ -17,7 +17,15 @@ from plotly.subplots import make_subplots
 
 from tracelab.analyses.signal_envelopes import SignalSection
 from tracelab.report import style
-from tracelab.report.figures import NS_PER_S, _alpha, _time_axis, add_marks, esc, seconds
+from tracelab.report.figures import (
+    NS_PER_S,
+    _alpha,
+    _time_axis,
+    add_marks,
+    esc,
+    extend_layout,
+    seconds,
+)
 
 PANEL_PX = 130
 OUT_OF_RANGE = style.ERROR_RED
@@ -108,8 +116,7 @@ def signals_figure(section: SignalSection, envelopes: pl.DataFrame, t0_ns: int, 
         axis = "xaxis" if index == 1 else f"xaxis{index}"
         fig.layout[axis].update(range=time_axis["range"], gridcolor=style.GRID)
     fig.layout["xaxis" if rows == 1 else f"xaxis{rows}"].update(**time_axis)
-    fig.update_layout(shapes=[*fig.layout.shapes, *shapes],
-                      annotations=[*fig.layout.annotations, *notes])
+    extend_layout(fig, shapes, notes)
     add_marks(fig, marks)
     return fig
 
