@@ -130,6 +130,11 @@ def scenarios() -> list[Scenario]:
         add(Scenario(f"rx-status-{node}", "rx-noise",
                      [{"kind": "rx-noise", "node": node, "start": "500ms", "rate": 0.2}],
                      conditions=("status",), status=True, seed=seed))
+    # the node with least traffic as the receive-faulty one, on a slow ramp (it sends short
+    # frames: its receptions, not its own frames, carry most of the errors)
+    add(Scenario("rx-ramp-quiet-ecu_e", "rx-noise",
+                 [{"kind": "rx-noise", "node": "ecu_e", "start": "600ms", "rate": 0.02,
+                   "rate_end": 0.2}], conditions=("ramp",), seed=17))
     # short bursts: the culprit reaches warning or error-passive, then the fault stops
     for node, end, rate, seed in (("ecu_c", "700ms", 0.5, 21), ("ecu_d", "650ms", 0.6, 22),
                                   ("ecu_b", "560ms", 0.8, 23), ("ecu_a", "800ms", 0.3, 24)):
@@ -235,6 +240,10 @@ def scenarios() -> list[Scenario]:
                  [{"kind": "tx-noise", "node": "ecu_a", "start": "400ms", "rate": 0.2},
                   {"kind": "tx-noise", "node": "ecu_c", "start": "1200ms", "rate": 0.6}],
                  conditions=("two-faults",), seed=83))
+    add(Scenario("two-rx-then-tx-other", "two-faults",
+                 [{"kind": "rx-noise", "node": "ecu_b", "start": "700ms", "rate": 0.3},
+                  {"kind": "tx-noise", "node": "ecu_e", "start": "1700ms", "rate": 0.6}],
+                 conditions=("two-faults",), seed=85))
     add(Scenario("two-rx-iso", "two-faults",
                  [{"kind": "rx-noise", "node": "ecu_b", "start": "400ms", "end": "1200ms",
                    "rate": 0.2},

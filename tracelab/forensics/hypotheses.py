@@ -66,6 +66,15 @@ FLAG_CAP = 40.0
 #: whole-bus reading expects at least this share of CRC errors among its errors.
 P_CRC_BUS = 0.3
 CRC_MIN_ERRORS = 5
+#: Where in the frame an error is flagged (section 3 of docs/forensics.md): a transmitter
+#: monitors every bit it sends and flags a bit error at once, anywhere in the frame (a
+#: listen-only logger then records a stuff error, or a form error in a fixed-form field); a
+#: receiver whose bits are corrupted mostly finds out only at the CRC check (flagged after the
+#: ACK delimiter: the logger records a form error) unless the bit breaks the stuffing first.
+#: So under a receive fault in N the stuff share of errors on N's own frames (its monitoring
+#: while it transmits) differs from the share on others' frames (its reception). Minimum
+#: errors in each group before the split is scored.
+POSITION_MIN_ERRORS = 5
 #: ACK errors a lone transmitter needs to go from TEC 0 to error-passive (16 x 8 = 128).
 PASSIVE_ATTEMPTS = 16
 
@@ -348,6 +357,29 @@ def _poisson(k: int, exposure_ns: float) -> float:
     return k * math.log(k / exposure_ns) - k
 
 
+def _binomial(k: int, n: int) -> float:
+    """Log-likelihood of k successes in n trials at the fitted probability k / n."""
+    if n <= 0 or k <= 0 or k >= n:
+        return 0.0
+    p = k / n
+    return k * math.log(p) + (n - k) * math.log(1 - p)
+
+
+def _position_split(stuff: np.ndarray, usable: np.ndarray, group: np.ndarray,
+                    penalty: float) -> float:
+    """Gain in log-likelihood of the stuff share of errors when ``group`` gets its own share
+    (against one share for all usable errors), minus a BIC penalty for the extra share; 0
+    when either side has fewer than POSITION_MIN_ERRORS errors."""
+    g = usable & group
+    r = usable & ~group
+    n_g, n_r = int(g.sum()), int(r.sum())
+    if n_g < POSITION_MIN_ERRORS or n_r < POSITION_MIN_ERRORS:
+        return 0.0
+    k_g, k_r = int((stuff & g).sum()), int((stuff & r).sum())
+    split = _binomial(k_g, n_g) + _binomial(k_r, n_r)
+    return split - _binomial(k_g + k_r, n_g + n_r) - penalty
+
+
 def _count_in(times: np.ndarray, intervals: list[tuple[int, int]]) -> int:
     """Number of sorted times inside the (a, b] intervals (vectorised per interval list)."""
     if not intervals or times.size == 0:
@@ -401,6 +433,10 @@ def score(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Silence]) -> N
         if bool((is_crc & known).any()) else -1
     rest = ~ack & (tx != crc_top)
     crc_rest = int(np.sum(is_crc & rest))
+    # where errors are flagged: the stuff share per sender group (POSITION_MIN_ERRORS)
+    stuff = types == "stuff"
+    usable = known & ~ack & np.isin(types, ["stuff", "form", "crc"])
+    pos_penalty = 0.5 * math.log(max(2, int(usable.sum())))
     crc_bus = 0.0
     if crc_rest == 0 and int(rest.sum()) >= CRC_MIN_ERRORS and not bool(np.any(types == "bit")):
         crc_bus = max(-FLAG_CAP, int(rest.sum()) * math.log(1 - P_CRC_BUS))
@@ -425,6 +461,7 @@ def score(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Silence]) -> N
                     or k_own * oth_att <= RATE_MARGIN * (n_err - k_own) * own_att \
                     or k_own < MIN_SHARE * n_err:
                 rate = -math.inf  # its frames fail not clearly more often than the others'
+            h.parts["positions"] = _position_split(stuff, usable, mine, pos_penalty)
             if h.kind == "isolation":
                 lp = np.where(mine, np.where(ack, math.log(1 - EPS), math.log(EPS)),
                               lp_type_other) + lp_by_uniform
@@ -444,7 +481,9 @@ def score(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Silence]) -> N
             pown_exp = (own_in + k_pown) * node_mean[n]
             poth_exp = (f_in - own_in + k_poth) * mean_ns
             act_exp = max(exposure - pown_exp - poth_exp, 1.0)
-            groups = 1 + int(pown_exp > 0) + int(poth_exp > 0)  # a rate per group it has
+            # a fitted rate per group it has; on others' frames while passive it predicts
+            # none (a prediction, not a fitted rate: no penalty; leaks are vetoed below)
+            groups = 1 + int(pown_exp > 0)
             rate = (_poisson(k_act, act_exp) + _poisson(k_pown, pown_exp)
                     + _poisson(k_poth, poth_exp) - groups * penalty)
             leak = max(0, k_poth - PASSIVE_BOUNDARY_ERRORS)
@@ -457,6 +496,9 @@ def score(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Silence]) -> N
                              np.where(by == n, math.log(0.9), math.log(0.1 / n_nodes)),
                              lp_by_uniform)
             lp = lp_type_other + lp_by
+            # its own frames while it could flag actively (its monitoring) against the rest
+            h.parts["positions"] = _position_split(stuff, usable, mine & ~passive,
+                                                   pos_penalty)
             h.facts["after_passive"] = k_pown + k_poth
             h.facts["after_passive_own"] = k_pown
             h.facts["passive_frames"] = f_in

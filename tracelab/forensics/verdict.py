@@ -28,6 +28,7 @@ from tracelab.forensics.evidence import (
 )
 from tracelab.forensics.hypotheses import (
     MIN_ERRORS,
+    PASSIVE_BOUNDARY_ERRORS,
     Flood,
     Hypothesis,
     Silence,
@@ -236,13 +237,56 @@ def _onset(ev: BusEvidence, n: int, run: int = 10, share: float = 0.6) -> int | 
     """t_ns of the first error on node n's frames from which at least ``share`` of the next
     ``run`` errors fall on its frames (the start of a transmit-side run), or None."""
     errors = ev.events.filter(pl.col("kind") == KIND_ERROR)
-    tx = errors["tx"].to_numpy()
+    return _run_start(errors["tx"].to_numpy(), errors["t_ns"].to_numpy(), n, run, share)
+
+
+def _run_start(tx: np.ndarray, t: np.ndarray, n: int, run: int, share: float) -> int | None:
+    """The time of the first error on n's frames that starts a run of ``run`` errors with at
+    least ``share`` on n's frames (errors in time order), or None."""
     if tx.size < run:
         return None
     mine = (tx == n).astype(np.int64)
     window = np.convolve(mine, np.ones(run, dtype=np.int64), mode="valid")
     hit = np.flatnonzero((window >= share * run) & (mine[:window.size] == 1))
-    return int(errors["t_ns"][int(hit[0])]) if hit.size else None
+    return int(t[int(hit[0])]) if hit.size else None
+
+
+def _leak_onsets(ev: BusEvidence, hyps: list[Hypothesis], run: int = SEGMENT_RUN,
+                 share: float = 0.6) -> list[int]:
+    """A receive fault followed by a transmit-side fault on another node: the receive-fault
+    reading of the whole log is ruled out by the errors on others' frames while its node was
+    replayed passive, and those errors begin where the second fault does. Among the errors
+    not on the culprit's own frames (its passive transmissions fail by its own fault), the
+    start of a run on one other node's frames; kept when hardly any such errors came before
+    it (PASSIVE_BOUNDARY_ERRORS, or 5 % of them)."""
+    errors = ev.events.with_row_index("k").filter(pl.col("kind") == KIND_ERROR)
+    if errors.height < run:
+        return []
+    k_idx = errors["k"].to_numpy()
+    tx = errors["tx"].to_numpy()
+    t = errors["t_ns"].to_numpy()
+    out: list[int] = []
+    for h in hyps:  # loop over the receive-fault hypotheses (one per node)
+        if h.kind != "receive-fault" or h.node is None or math.isfinite(h.loglik):
+            continue
+        n = h.node
+        states = h.replays[n].state_before
+        if len(states) != ev.events.height:
+            continue
+        passive = np.isin(np.asarray(states, dtype=object)[k_idx], ["error-passive",
+                                                                      "bus-off"])
+        leak = passive & (tx != n)
+        rest = tx != n
+        for m in range(len(ev.nodes)):  # loop over the other nodes
+            if m == n:
+                continue
+            t_on = _run_start(tx[rest], t[rest], m, run, share)
+            if t_on is None:
+                continue
+            before, total = int((leak & (t < t_on)).sum()), int(leak.sum())
+            if before <= max(PASSIVE_BOUNDARY_ERRORS, 0.05 * total) and total > before:
+                out.append(t_on)
+    return out
 
 
 def _finding(ev: BusEvidence, h: Hypothesis, win_from: int | None,
@@ -402,7 +446,8 @@ def _segment(ev: BusEvidence, cat: CatalogView, config: ConfinementConfig,
     # a run of 30 errors, 60 % on one node's frames: by chance (a node with a quarter of the
     # bus time under a whole-bus disturbance) about 1e-4 (binomial tail, derived)
     onsets = sorted({t for n in range(len(ev.nodes))
-                     if (t := _onset(ev, n, run=SEGMENT_RUN, share=0.6)) is not None})
+                     if (t := _onset(ev, n, run=SEGMENT_RUN, share=0.6)) is not None}
+                    | set(_leak_onsets(ev, hyps)))
     cuts: list[int] = []
     for t in onsets:  # loop over a few onset times
         prev = cuts[-1] if cuts else int(t_err[0]) if t_err.size else ev.first_t_ns
@@ -416,8 +461,10 @@ def _segment(ev: BusEvidence, cat: CatalogView, config: ConfinementConfig,
     pending: int | None = None  # start of windows nothing decided yet
     open_start = False
     for lo, hi in zip(bounds[:-1], bounds[1:], strict=True):  # loop over a few windows
-        w = analyse(evidence_window(ev, lo, hi), None, cat, config).hyps[0]
-        start = pending if open_start and w.kind == "receive-fault" else lo
+        # after undecided windows, this one is read from where they started (a receive
+        # fault's counters build up over both; a window replay starts from zero counters)
+        start = pending if open_start else lo
+        w = analyse(evidence_window(ev, start, hi), None, cat, config).hyps[0]
         if w.score < MIN_CONFIDENCE or (w.kind == "receive-fault" and
                                         w.facts.get("passive_frames", 0) < PASSIVE_MIN_FRAMES):
             # undecided (a receive fault that never went passive here predicts nothing the
