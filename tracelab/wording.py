@@ -13,6 +13,13 @@ def counted(n: int, noun: str) -> str:
     return f"{n:,} {_IRREGULAR.get(noun, noun + 's')}"
 
 
+def percent(fraction: object, digits: int = 1, missing: str = "-") -> str:
+    """``percent(0.1234)`` -> "12.3 %"; anything that is not a number -> ``missing``."""
+    if isinstance(fraction, bool) or not isinstance(fraction, int | float):
+        return missing
+    return f"{100 * float(fraction):.{digits}f} %"
+
+
 def file_stem(name: str) -> str:
     """A file name for ``name`` that is safe on every file system and collision-free: kept as
     it is when it uses only ``A-Z a-z 0-9 . _ -``, else sanitised plus a short hash of the

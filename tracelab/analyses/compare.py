@@ -25,6 +25,7 @@ from tracelab.analyses.regression_rules import (
     regressed,
 )
 from tracelab.format.grammar import id_text
+from tracelab.wording import percent
 
 #: Per-message values compared: output name -> timing column (or the p99 jitter).
 MESSAGE_VALUES = {
@@ -62,8 +63,8 @@ class Comparison:
         for bus in self.buses:
             d = bus["delta"].get("mean")
             if d is not None:
-                out.append(f"  bus {bus['bus']}: mean load {_pct(bus['a'].get('mean'))} -> "
-                           f"{_pct(bus['b'].get('mean'))} ({100 * d:+.1f} points)")
+                out.append(f"  bus {bus['bus']}: mean load {percent(bus['a'].get('mean'))} -> "
+                           f"{percent(bus['b'].get('mean'))} ({100 * d:+.1f} points)")
         ea, eb = self.errors.get("a", {}).get("total", 0), self.errors.get("b", {}).get("total", 0)
         out.append(f"  errors: {ea:,} -> {eb:,}")
         for side, run in (("a", a), ("b", b)):
@@ -73,10 +74,6 @@ class Comparison:
                                                 f"degraded first ({first.get('state')})"
                                                 if first.get("node") else "no node degraded"))
         return "\n".join(out)
-
-
-def _pct(value: Any) -> str:
-    return "-" if value is None else f"{100 * float(value):.1f} %"
 
 
 def _flag_words(flag: str, m: dict[str, Any]) -> str:

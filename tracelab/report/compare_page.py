@@ -25,7 +25,7 @@ from tracelab.report.page import (
     cause_words,
     plotly_js,
 )
-from tracelab.wording import counted
+from tracelab.wording import counted, percent
 
 FLAG_WORDS = {"period": "period moved", "missing": "more missing frames",
               "jitter_p99_ns": "more phase jitter (p99)", "abs_drift_ppm": "more clock drift",
@@ -80,7 +80,7 @@ def _buses_table(result: Comparison) -> str:
                                     for v in ("mean", "p95", "p99", "max"))
     rows = "".join(
         f"<tr><td>{esc(b['bus'])}</td>" + "".join(
-            f"<td class='num'>{_pct(b['a'].get(v))} → {_pct(b['b'].get(v))}<br><span "
+            f"<td class='num'>{percent(b['a'].get(v))} → {percent(b['b'].get(v))}<br><span "
             f"class='muted'>{_points(b['delta'].get(v))}</span></td>"
             for v in ("mean", "p95", "p99", "max")) + "</tr>"
         for b in result.buses)
@@ -101,10 +101,6 @@ def _errors_table(result: Comparison) -> str:
                 f"<td class='num'>{e.get('delta', {}).get('total', 0):+,}</td></tr>")
     return _table("compare-errors", "<th>by</th><th></th><th class='num'>A</th>"
                   "<th class='num'>B</th><th class='num'>B − A</th>", "".join(rows))
-
-
-def _pct(value: Any) -> str:
-    return "-" if value is None else f"{100 * float(value):.1f} %"
 
 
 def _points(value: Any) -> str:

@@ -18,7 +18,7 @@ from tracelab.analyses.envelopes import ReportData
 from tracelab.report import figures, style
 from tracelab.report import signals as signal_figures
 from tracelab.report.figures import NS_PER_S, esc, message_label
-from tracelab.wording import counted
+from tracelab.wording import counted, percent
 
 PLOTLY_FILE = "plotly.min.js"
 PAGE_ROWS = 25  # rows per page of a long table
@@ -269,7 +269,7 @@ def _technical_detail(result: dict[str, Any]) -> str:
             f"<td class='num'>{_secs(f.get('from_ns'))}</td>"
             f"<td class='num'>{_secs(f.get('to_ns'))}</td>"
             f"<td class='num'>{esc(_int(f.get('errors_explained')))}</td>"
-            f"<td class='num'>{esc(_pct(f.get('share')))}</td></tr>"
+            f"<td class='num'>{esc(percent(f.get('share'), 0, ''))}</td></tr>"
             for f in findings if isinstance(f, dict))
         parts.append("<h3>findings, in time order</h3>" + _table(
             f"findings-{bus}", "<th>kind</th><th>node</th><th class='num'>from</th>"
@@ -298,10 +298,6 @@ def _technical_detail(result: dict[str, Any]) -> str:
             f"nodes-{bus}", "<th>node</th><th class='num'>max TEC</th><th class='num'>max REC"
             "</th><th class='num'>transitions</th><th class='num'>bus-off</th>", rows))
     return "".join(parts)
-
-
-def _pct(value: Any) -> str:
-    return f"{float(value):.0%}" if isinstance(value, int | float) else ""
 
 
 def _table(table_id: str, head: str, rows: str, pager: bool = False) -> str:
@@ -386,17 +382,13 @@ def top_ids_table(top: pl.DataFrame) -> str:
         return '<p class="muted">No load analysis for this run.</p>'
     rows = "".join(
         f"<tr><td class='msg'>{esc(message_label(r['bus'], r['id'], r['ext'], r['name']))}</td>"
-        f"<td class='num'>{int(r['rank'])}</td><td class='num'>{_pct1(r['share'])}</td>"
+        f"<td class='num'>{int(r['rank'])}</td><td class='num'>{percent(r['share'], missing='')}</td>"
         f"<td class='num'>{_duration(float(r['busy_ns'] or 0))}</td>"
         f"<td class='num'>{_int(r['frames'])}</td></tr>"
         for r in top.iter_rows(named=True))  # five per bus
     return _table("top-ids-table", "<th>message</th><th class='num'>rank</th>"
                   "<th class='num'>share of busy time</th><th class='num'>busy time</th>"
                   "<th class='num'>frames</th>", rows)
-
-
-def _pct1(value: Any) -> str:
-    return f"{100 * float(value):.1f} %" if isinstance(value, int | float) else ""
 
 
 def quality_section(data: ReportData) -> str:
