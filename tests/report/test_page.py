@@ -196,5 +196,5 @@ def test_verdict_sentence_says_why_the_moment_is_open() -> None:
                                               "bounds_from": ["a logger loss"]}}]}
     text, _ = verdict_sentence(faults)
     assert "between 4.000 s and 5.100 s (the exact moment is open: a logger loss" in text
-    assert "score 0.20 of 1 (low because of that interval; the cause's own score is 0.97)" \
-        in text
+    assert ("score 0.20 of 1 (lowered because a logger loss before it hid part of the "
+            "evidence; the cause's own score is 0.97)") in text

@@ -195,14 +195,65 @@ def analyse(ev: BusEvidence, gaps: pl.DataFrame | None, cat: CatalogView,
     first = base if attributed else [
         _logged(replay_node(src, n, True, config, keep_rows=False), keep)
         for n in range(len(ev.nodes))]
+    fills: dict[int, str] = {}
+    if walk is not None and not attributed:
+        first, fills = _profile_losses(ev, first, config)
     silences = node_silences(ev, gaps, cat.keys)
     floods = find_floods(ev, cat.periods)
     hyps = candidates(ev, base, first, silences, floods)
+    for h in hyps:
+        if h.kind == "receive-fault" and h.node in fills:
+            h.facts["fill"] = fills[h.node]
     score(ev, hyps, silences)
     # ties (to rounding): a cut-off node before a plain silence, since only the former makes
     # rule-based predictions (docs/forensics.md); otherwise the order of candidates()
     hyps.sort(key=lambda h: (-round(h.score, 6), 0 if h.facts.get("far_side") else 1))
     return Analysis(hyps, base, first, silences, floods, attributed)
+
+
+#: Readings of a logger loss a receive-fault replay may take (losses.filled_evidence): the
+#: most likely one first, then as many errors as the losses can hold, then none.
+LOSS_READINGS = ("rate", "upper", "none")
+
+
+def _leaks(ev: BusEvidence, rep: NodeReplay, n: int) -> int:
+    """Errors on other nodes' frames while node n is replayed error-passive or bus-off (a
+    receive fault in n predicts none: its flags are recessive then)."""
+    errors = ev.events.with_row_index("k").filter(pl.col("kind") == KIND_ERROR)
+    if len(rep.state_before) != ev.events.height or errors.height == 0:
+        return 0
+    st = np.asarray(rep.state_before, dtype=object)[errors["k"].to_numpy()]
+    tx = errors["tx"].to_numpy()
+    return int((np.isin(st, ["error-passive", "bus-off"]) & (tx >= 0) & (tx != n)).sum())
+
+
+def _loss_reading(ev: BusEvidence, mode: str) -> BusEvidence | None:
+    return None if mode == "none" else filled_evidence(ev, mode)
+
+
+def _profile_losses(ev: BusEvidence, first: list[NodeReplay], config: ConfinementConfig
+                    ) -> tuple[list[NodeReplay], dict[int, str]]:
+    """Through a logger loss the counters a receive fault leaves are unknown: the loss may
+    have held few errors or many, and a node can even have gone bus-off and recovered inside
+    it. Each receive-fault replay takes the reading of the losses (LOSS_READINGS) under which
+    it fits the logged errors best, i.e. leaves the fewest errors on others' frames while it
+    is replayed passive (the counters at the loss's end are a nuisance parameter, profiled
+    out); ties keep the earlier reading."""
+    best = list(first)
+    fills = {n: "rate" for n in range(len(first))}
+    leaks = [_leaks(ev, rep, n) for n, rep in enumerate(first)]
+    for mode in LOSS_READINGS[1:]:  # loop over two more readings
+        src = _loss_reading(ev, mode)
+        keep = original_rows(src) if src is not None else None
+        for n in range(len(first)):  # loop over nodes
+            if leaks[n] == 0:
+                continue
+            rep = _logged(replay_node(src if src is not None else ev, n, True, config,
+                                      keep_rows=False), keep)
+            k = _leaks(ev, rep, n)
+            if k < leaks[n]:
+                best[n], fills[n], leaks[n] = rep, mode, k
+    return best, fills
 
 
 def _logged(rep: NodeReplay, keep: np.ndarray | None) -> NodeReplay:
@@ -213,9 +264,11 @@ def _logged(rep: NodeReplay, keep: np.ndarray | None) -> NodeReplay:
     return rep
 
 
-def _replay_full(ev: BusEvidence, n: int, config: ConfinementConfig) -> NodeReplay:
-    """A winner's first-detector replay with every counter row (losses filled as in analyse)."""
-    walk = filled_evidence(ev, "rate") if ev.losses.shape[0] else None
+def _replay_full(ev: BusEvidence, n: int, config: ConfinementConfig,
+                 fill: str = "rate") -> NodeReplay:
+    """A winner's first-detector replay with every counter row (losses filled as in analyse:
+    the reading its hypothesis took)."""
+    walk = _loss_reading(ev, fill) if ev.losses.shape[0] else None
     if walk is None:
         return replay_node(ev, n, True, config)
     return _logged(replay_node(walk, n, True, config), original_rows(walk))
@@ -349,7 +402,8 @@ def bus_verdict(ev: BusEvidence, origin: str | None, gaps: pl.DataFrame | None,
     clean = n_errors == 0 and not silences and not an.floods
     winner = hyps[0]
     if winner.kind == "receive-fault" and winner.node is not None and not attributed_everywhere:
-        winner.replays[winner.node] = _replay_full(ev, winner.node, config)  # with rows
+        winner.replays[winner.node] = _replay_full(ev, winner.node, config,
+                                                   winner.facts.get("fill", "rate"))
     findings = [_finding(ev, winner, None, None)] if not clean else []
     cause_h = winner
     if not clean and winner.kind in ("bus-disturbance", "transmit-fault") \
@@ -414,7 +468,7 @@ def bus_verdict(ev: BusEvidence, origin: str | None, gaps: pl.DataFrame | None,
         "status_agreement": _status_agreement(winner.replays),
         "assumptions": _assumptions(config, attributed_everywhere, winner),
         "verdict": _sentence(ev, cause, first_deg, hyps, thin, clean, cause_h, alternatives,
-                             findings)
+                             findings, conf)
         + (f" The catalog names the sender of only {known_tx} of {n_errors} errored frames"
            f" ({len(ev.nodes)} nodes on bus {ev.bus}); check --catalog." if blind else ""),
         "runner_up": ({"name": hyps[1].name, "score": round(hyps[1].score, 4),
@@ -484,12 +538,14 @@ def _segment(ev: BusEvidence, cat: CatalogView, config: ConfinementConfig,
             windows[1][0].kind == "transmit-fault" and windows[1][0].node == first_w.node:
         full = next((h for h in hyps if h.name == first_w.name), None)
         if full is not None and full.node is not None and math.isfinite(full.loglik):
-            full.replays[full.node] = _replay_full(ev, full.node, config)
+            full.replays[full.node] = _replay_full(ev, full.node, config,
+                                                   full.facts.get("fill", "rate"))
             return full, full, [_finding(ev, full, None, None)]
     out = []
     for w, lo, hi in windows:
         if w.kind == "receive-fault" and w.node is not None:
-            w.replays[w.node] = _replay_full(evidence_window(ev, lo, hi), w.node, config)
+            w.replays[w.node] = _replay_full(evidence_window(ev, lo, hi), w.node, config,
+                                             w.facts.get("fill", "rate"))
         out.append(_finding(ev, w, lo, hi))
     times = [(f["first_transition"] or {}).get("t_ns") for f in out]
     known = [(t, i) for i, t in enumerate(times) if t is not None]
@@ -574,20 +630,85 @@ def _bound_first(ev: BusEvidence, h: Hypothesis, first: dict[str, Any],
         first.setdefault("bounds_from", []).append("a logger loss")
 
 
+#: At most this many frames of the back-to-back run after an unidentified error are taken as
+#: its possible retransmission (docs/forensics.md section 2 gives the coverage on the sweep).
+GUESS_RUN_FRAMES = 6
+
+
+def _guess_candidates(ev: BusEvidence, t_ns: np.ndarray) -> np.ndarray:
+    """Per error whose frame the logger could not identify: the transmitters it can have had,
+    one column per frame of the run that follows it (-1 past the run's end).
+
+    A destroyed frame is retransmitted at the next bus idle (ISO 11898-1 automatic
+    retransmission) and wins arbitration again unless frames of higher priority were released
+    meanwhile; those go first, back to back, and the retransmission follows them. A bus idle
+    ends that: the pending retransmission would have started in it. So the candidates are the
+    senders of the frames that follow the error back to back (each within the longest frame
+    of the bus and an 11-bit gap, an error-passive transmitter's suspend time and the
+    intermission, of the one before), up to GUESS_RUN_FRAMES.
+    """
+    ft, fn = ev.frame_t, ev.frame_node
+    out = np.full((t_ns.size, GUESS_RUN_FRAMES), -1, dtype=np.int64)
+    if ft.size == 0 or t_ns.size == 0:
+        return out
+    by_id = ev.frames_by_id
+    per_frame = (by_id["busy_ns"].cast(pl.Float64)
+                 / by_id["frames"].cast(pl.Float64).clip(1)).to_numpy()
+    longest = float(np.nanmax(per_frame)) if per_frame.size else 0.0
+    reach = longest + 11 * ev.bit_ns
+    # an error frame in between keeps the bus busy too: up to a frame and 31 bits more each
+    # (flag superposed 12, delimiter 8, intermission 3, suspend 8)
+    err_t = np.sort(ev.events.filter(pl.col("kind") == KIND_ERROR)["t_ns"].to_numpy())
+    per_error = longest + 31 * ev.bit_ns
+    i = np.searchsorted(ft, t_ns, side="right")
+    alive = i < ft.size
+    for k in range(GUESS_RUN_FRAMES):  # loop over a few positions in the run
+        j = np.minimum(i + k, ft.size - 1)
+        if k:
+            prev = np.minimum(i + k - 1, ft.size - 1)
+            between = (np.searchsorted(err_t, ft[j], side="left")
+                       - np.searchsorted(err_t, ft[prev], side="right"))
+            alive &= (i + k < ft.size) & (ft[j] - ft[prev] <= reach + between * per_error)
+        else:  # from the error itself to the first frame after it
+            first_gap = ft[j] - t_ns
+            between = (np.searchsorted(err_t, ft[j], side="left")
+                       - np.searchsorted(err_t, t_ns, side="right"))
+            alive &= first_gap <= reach + (between + 1) * per_error
+        out[:, k] = np.where(alive, fn[j], -1)
+    return out
+
+
 def _bound_guessed(ev: BusEvidence, n: int, bonus: bool, first: dict[str, Any],
                    config: ConfinementConfig) -> None:
     """Errors whose transmitter was guessed (flag inside the identifier): the first
-    degradation of node n with all of them charged to n, and with none of them."""
+    degradation of node n with every such error that n can have sent charged to n, and with
+    only those that nobody else can have sent (_guess_candidates); the others go to another
+    candidate."""
     t = int(first["t_ns"])
     if "tx_inferred" not in ev.events.columns:
         return
-    guessed = (pl.col("tx_inferred") & (pl.col("t_ns") <= t))
-    if not ev.events.select(guessed.any()).item():
+    guessed_np = (ev.events["tx_inferred"].fill_null(False).to_numpy()
+                  & (ev.events["t_ns"].to_numpy() <= t))
+    if not guessed_np.any():
         return
+    cand = _guess_candidates(ev, ev.events["t_ns"].to_numpy()[guessed_np].astype(np.int64))
+    tx_now = ev.events["tx"].to_numpy().astype(np.int64)
+    is_n = cand == n
+    someone = (cand >= 0) & ~is_n
+    # n is one of those it can have been (or nothing follows back to back: anyone)
+    may = is_n.any(axis=1) | (cand[:, 0] < 0)
+    must = may & ~someone.any(axis=1)   # n and nobody else
+    # someone else it can have been (the first such in the run)
+    other = np.where(someone.any(axis=1), cand[np.arange(cand.shape[0]),
+                                                someone.argmax(axis=1)], -1)
     times = []
-    for tx in (n, -1):  # charged to n / to nobody (every node a receiver)
-        alt = ev.events.with_columns(
-            pl.when(guessed).then(pl.lit(tx, pl.Int16)).otherwise(pl.col("tx")).alias("tx"))
+    for charge in (np.where(may, n, tx_now[guessed_np]),
+                   np.where(must, n, np.where(may, other, tx_now[guessed_np]))):
+        tx_alt = tx_now.copy()
+        tx_alt[guessed_np] = charge
+        if np.array_equal(tx_alt, tx_now):
+            continue
+        alt = ev.events.with_columns(pl.Series("tx", tx_alt, dtype=pl.Int16))
         src = dataclasses.replace(ev, events=alt, _recovery_cache={})
         prepare_counts(src)
         tr = replay_node(src, n, bonus, config, keep_rows=False).first_degradation()
@@ -618,8 +739,16 @@ def _calibrated(ev: BusEvidence, h: Hypothesis, hyps: list[Hypothesis],
     if first is not None:
         width = int(first.get("latest_ns", first["t_ns"])) - int(first.get("earliest_ns",
                                                                          first["t_ns"]))
-        if first.get("state") != "silent" and width > 0:
+        # a logger loss before the first degradation hid errors: the hypotheses were scored
+        # on part of the evidence, and the wider the loss's reach the less the rest says.
+        # Bounds from unidentified frames hide nothing (every error is logged, only its
+        # sender is in doubt among the frames that follow it): they do not lower the score.
+        lost = ("a logger loss" in (first.get("bounds_from") or [])
+                or loss_before(ev, int(first.get("latest_ns", first["t_ns"])) + 1) is not None)
+        if first.get("state") != "silent" and width > 0 and lost:
             p *= HALF_CONFIDENCE_WIDTH_NS / (HALF_CONFIDENCE_WIDTH_NS + width)
+            if "a logger loss" not in first.setdefault("bounds_from", []):
+                first["bounds_from"].append("a logger loss")
     return round(float(min(max(p, 0.0), 1.0)), 3)
 
 
@@ -763,7 +892,7 @@ def _log(x: float) -> float:
 def _sentence(ev: BusEvidence, cause: dict[str, Any], first: dict[str, Any] | None,
               hyps: list[Hypothesis], thin: bool, clean: bool, h: Hypothesis | None = None,
               alternatives: list[dict[str, Any]] | None = None,
-              findings: list[dict[str, Any]] | None = None) -> str:
+              findings: list[dict[str, Any]] | None = None, conf: float | None = None) -> str:
     if clean:
         return f"{ev.run}/{ev.bus}: clean bus, no error frames and no unexplained silences."
     h = h or hyps[0]
@@ -800,7 +929,12 @@ def _sentence(ev: BusEvidence, cause: dict[str, Any], first: dict[str, Any] | No
                       + (f", {f.frames} frames from {f.from_ns / 1e9:.3f} s to "
                          f"{f.to_ns / 1e9:.3f} s, starving the lower-priority messages"
                          if f else ""))}.get(cause["kind"], cause["kind"])
-    text = f"{ev.run}/{ev.bus}: {lead}. Most likely cause: {what} (score {h.score:.2f})."
+    if conf is not None and conf < h.score - 0.1:
+        score_text = (f"score {conf:.2f}; its own score is {h.score:.2f}, lowered because a "
+                      "logger loss before the first degradation hid part of the evidence")
+    else:
+        score_text = f"score {h.score if conf is None else conf:.2f}"
+    text = f"{ev.run}/{ev.bus}: {lead}. Most likely cause: {what} ({score_text})."
     if alternatives:
         readings = []
         for alt in alternatives:

@@ -108,9 +108,11 @@ def verdict_sentence(faults: dict[str, Any] | None, errors: int = 0) -> tuple[st
     text = (f"{fd.get('node')} on bus {first.get('bus')} degraded first: {reached} {when}, "
             f"score {_score(fd.get('confidence'))}")
     best = max((h.get("score") or 0 for h in first.get("hypotheses") or []), default=None)
-    if wide and isinstance(best, int | float) and best > (fd.get("confidence") or 0) + 0.1:
-        text += (f" (low because of that interval; the cause's own score is "
-                 f"{float(best):.2f})")
+    lost = "a logger loss" in (fd.get("bounds_from") or [])
+    if wide and lost and isinstance(best, int | float) \
+            and best > (fd.get("confidence") or 0) + 0.1:
+        text += (f" (lowered because a logger loss before it hid part of the evidence; the "
+                 f"cause's own score is {float(best):.2f})")
     cause = cause_words(first.get("cause"))
     known = (first.get("cause") or {}).get("kind") not in (None, "none", "unknown")
     text += f"; {'most likely cause: ' if known else ''}{cause}."
