@@ -232,9 +232,9 @@ def faults(
 
     with workflow.limits(memory, temp_dir):
         result = workflow.faults(dataset, catalog=catalog, run=run)
-    warning = result.catalog_warning()
-    if warning:
-        _echo(f"tracelab: warning: {warning}", err=True)
+    for warning in (result.catalog_warning(), result.bit_rate_warning()):
+        if warning:
+            _echo(f"tracelab: warning: {warning}", err=True)
     _print_json(result.as_json()) if as_json else _echo(result.describe())
 
 

@@ -99,3 +99,35 @@ def test_verdict_names_the_first_degraded_node_at_every_rate(bps: int) -> None:
     assert (fd["node"], fd["state"], fd["t_ns"]) == ("charlie", first["to"], first["t_ns"])
     assert (fd["worst_state"], fd["worst_t_ns"]) == ("bus-off", off["t_ns"])
     assert bus["cause"]["kind"] == "transmit-fault"
+
+
+def test_an_unknown_bit_rate_is_an_assumption_and_a_warning() -> None:
+    """Neither the catalog nor the log header names the rate: the replay assumes 500 kbit/s,
+    lists it among the result's assumptions and `faults` warns; a bus at 250 kbit/s then
+    recovers from bus-off in half its real bit times."""
+    from tracelab.forensics import replay_faults
+    from tracelab.network.catalog import Catalog
+
+    bps = 250_000
+    bit_ns = 10**9 // bps
+    _, frames, errors = _bus_off_then_idle(bit_ns)
+    known = replay_faults(cb._connect(frames, errors), cb._catalog(bps))
+    cat = cb._catalog(bps)
+    unknown_cat = Catalog(cat.path, {}, cat.nodes, cat.messages)  # no [bus.can0] rate
+    unknown = replay_faults(cb._connect(frames, errors), unknown_cat)
+    assert known.bit_rate_warning() is None
+    assert not any("bit rate" in a for a in known.as_json()["results"][0]["assumptions"])
+    (line,) = [a for a in unknown.as_json()["results"][0]["assumptions"] if "bit rate" in a]
+    assert "can0" in line and "500 kbit/s assumed" in line
+    warning = unknown.bit_rate_warning()
+    assert warning is not None and "r1/can0" in warning and "500 kbit/s" in warning
+
+    def recovery_bits(result: Any) -> float:
+        (charlie,) = [n for n in result.as_json()["results"][0]["nodes"]
+                      if n["node"] == "charlie"]
+        (off,) = charlie["bus_off"]
+        return (off["to_ns"] - off["from_ns"]) / bit_ns
+
+    # derived: 1408 recessive bits at 2 us (500 k assumed) are 704 bit times of 4 us
+    assert recovery_bits(unknown) < 0.6 * recovery_bits(known)
+    assert recovery_bits(known) >= RECOVERY_SEQUENCES * RECOVERY_SEQUENCE_BITS

@@ -10,13 +10,17 @@ frames before it (all and per sender), the one vectorised pass the counter walk 
 from __future__ import annotations
 
 import dataclasses
+from collections.abc import Iterator
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any, Protocol
 
 import duckdb
 import numpy as np
 import polars as pl
 
+from tracelab.forensics.framestore import Column, Spill
+from tracelab.store.limits import current_limits
 from tracelab.store.schema import manifest_buses
 
 KIND_ERROR = 0
@@ -45,10 +49,12 @@ class BusEvidence:
     bus: str
     nodes: list[str]
     bit_ns: float
-    frame_t: np.ndarray        # int64, time-sorted t_ns of every frame
-    frame_node: np.ndarray     # int16 node index of the sender, -1 when the catalog has none
-    frame_esi: np.ndarray      # int8: 0 classic, 1 FD with ESI clear, 2 FD with ESI set
-    own_t: list[np.ndarray]    # per node, the t_ns of its frames
+    frame_t: Column            # int64, time-sorted t_ns of every frame
+    frame_node: Column         # int16 node index of the sender, -1 when the catalog has none
+    own_t: list[Column]        # per node, the t_ns of its frames
+    esi_t: list[tuple[Column, Column]]  # per node (and last: no catalog sender), t_ns of its
+    #                                     FD frames with ESI set, clear; [] without FD frames
+    esi_set_frames: int        # FD frames with ESI set (any sender)
     share: np.ndarray          # per node, its share of bus time (duration_ns) over the run
     events: pl.DataFrame       # error and status records in time order, see _events()
     losses: np.ndarray         # (k, 2) int64 [t_ns, until_ns) logger-loss intervals
@@ -63,6 +69,8 @@ class BusEvidence:
     ev_own_before: list[list[int]] = field(default_factory=list)
     ev_loss_since_prev: list[bool] = field(default_factory=list)
     loss_counts: list[int | None] | None = None  # per loss, the records the logger dropped
+    #: where bit_ns came from: "catalog", "manifest", or "assumed" (neither names the rate)
+    bit_rate_source: str = "catalog"
 
     @property
     def frames(self) -> int:
@@ -105,20 +113,26 @@ def _sender_codes(catalog: CatalogLike, bus: str, nodes: list[str]) -> pl.DataFr
         pl.col("sender").replace_strict(index, default=-1, return_dtype=pl.Int16).alias("code"))
 
 
+#: The nominal bit rate the replay assumes when neither the catalog nor the log's header
+#: names one (the result then lists it among its assumptions and `faults` warns).
+ASSUMED_BPS = 500_000
+
+
 def _nominal_bps(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run: str,
-                 bus: str) -> int:
+                 bus: str) -> tuple[int, str]:
+    """(bit/s, where it came from: "catalog", "manifest" or "assumed")."""
     spec = catalog.buses.get(bus) if hasattr(catalog.buses, "get") else None
     if spec is not None:
-        return int(spec.nominal_bps)
+        return int(spec.nominal_bps), "catalog"
     for (buses,) in con.execute(
             f"SELECT buses FROM manifest WHERE run = {_sql(run)}").fetchall():
         try:
             for decl in manifest_buses(buses):
-                if decl.get("alias") == bus:
-                    return int(decl["nominal_bps"])
+                if decl.get("alias") == bus and decl.get("nominal_bps"):
+                    return int(decl["nominal_bps"]), "manifest"
         except (ValueError, TypeError, KeyError):
             continue
-    return 500_000
+    return ASSUMED_BPS, "assumed"
 
 
 def single_pair(con: duckdb.DuckDBPyConnection, run: str | None = None
@@ -200,27 +214,15 @@ def load_bus_evidence(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run:
     by_id = by_id.join(codes.select("id", "ext", "sender", "code"), on=["id", "ext"],
                        how="left")
     scan = f"FROM frames{'' if only_pair else ' WHERE ' + where}"
-    # Column by column: DuckDB hands each over as one numpy array (the cheapest transfer).
-    frame_t = np.asarray(con.sql(f"SELECT t_ns {scan}").fetchnumpy()["t_ns"], np.int64)
-    ids = np.asarray(con.sql(f"SELECT id {scan}").fetchnumpy()["id"])
     any_ext = bool(by_id["ext"].any()) if by_id.height else False
-    if any_ext:
-        ext = np.asarray(con.sql(f"SELECT ext {scan}").fetchnumpy()["ext"], bool)
-        keys = ids.astype(np.int64) * 2 + ext
-    else:
-        keys = ids  # standard identifiers only: the key is the identifier
-    if int(by_id["fd_frames"].sum() or 0):
-        flags = con.sql(f"SELECT (fd::INT + (fd AND esi)::INT)::TINYINT AS esi {scan}")
-        esi = np.asarray(flags.fetchnumpy()["esi"], np.int8)
-    else:
-        esi = np.zeros(frame_t.size, np.int8)
-    if frame_t.size > 1 and bool(np.any(frame_t[1:] < frame_t[:-1])):
-        order = np.argsort(frame_t, kind="stable")  # rare: logs with backward time steps
-        frame_t, keys, esi = frame_t[order], keys[order], esi[order]
+    any_fd = bool(int(by_id["fd_frames"].sum() or 0))
+    n_frames = int(by_id["frames"].sum() or 0) if by_id["frames"].null_count() == 0 else \
+        int(con.sql(f"SELECT count(*) {scan}").fetchall()[0][0])
+    frames = load_frames(con, scan, codes, len(nodes), any_ext, any_fd,
+                         count_ids="mean_ns" in by_id.columns, total=n_frames)
     if "mean_ns" in by_id.columns:
-        by_id = _counted_by_id(ids, by_id, codes)
-    frame_node = _map_keys(keys, codes, with_ext=any_ext)
-    own_t = _split_by_node(frame_t, frame_node, len(nodes))
+        by_id = _counted_by_id(frames.id_values, frames.id_counts, by_id, codes)
+    frame_t, frame_node, own_t = frames.t, frames.node, frames.own
     busy = np.zeros(len(nodes), dtype=np.float64)
     for code, ns in zip(by_id["code"].fill_null(-1).to_list(), by_id["busy_ns"].to_list(),
                         strict=True):
@@ -238,24 +240,198 @@ def load_bus_evidence(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run:
     if events.height:
         ends += [int(events["t_ns"].min()), int(events["t_ns"].max())]  # type: ignore[arg-type]
     first_t, last_t = (min(ends), max(ends)) if ends else (0, 0)
-    evidence = BusEvidence(run, bus, nodes, 1e9 / _nominal_bps(con, catalog, run, bus),
-                           frame_t, frame_node, esi, own_t, share, events, loss_arr, first_t,
-                           last_t, by_id, con)
+    bps, source = _nominal_bps(con, catalog, run, bus)
+    evidence = BusEvidence(run, bus, nodes, 1e9 / bps, frame_t, frame_node, own_t, frames.esi,
+                           frames.esi_set, share, events, loss_arr, first_t, last_t, by_id, con,
+                           bit_rate_source=source)
     evidence.loss_counts = [None if c is None or c != c else int(c)
                             for c in np.asarray(losses["count"], dtype=object).tolist()]
     prepare_counts(evidence)
     return evidence
 
 
-def _counted_by_id(ids: np.ndarray, sampled: pl.DataFrame, codes: pl.DataFrame
-                   ) -> pl.DataFrame:
-    """frames and busy_ns per identifier from the identifier array and sampled durations."""
-    if ids.size == 0:
-        values = counts = np.zeros(0, dtype=np.int64)
-    elif int(ids.max()) >= 1 << 16:
-        values, counts = np.unique(ids, return_counts=True)
-    else:
-        values, counts = _bincount_ids(ids)
+#: Of the memory budget, the share the frame columns of one bus may hold in memory before
+#: they spill to the scratch folder (the other parts: DuckDB's share, the interpreter, the
+#: replay's rows and the temporaries of one block).
+FRAMES_SHARE = 0.25
+#: Rows per record batch read from DuckDB.
+BATCH_ROWS = 1 << 20
+
+
+@dataclass
+class Frames:
+    """One (run, bus)'s frames as the replay keeps them (see tracelab/forensics/framestore)."""
+
+    t: Column
+    node: Column
+    own: list[Column]
+    esi: list[tuple[Column, Column]]
+    esi_set: int
+    id_values: np.ndarray
+    id_counts: np.ndarray
+
+
+def _spill(con: duckdb.DuckDBPyConnection) -> Spill:
+    """The allowance of the current memory budget, spilling where DuckDB spills."""
+    folder: Path | None = None
+    try:
+        text = con.sql("SELECT current_setting('temp_directory')").fetchall()[0][0]
+        folder = Path(str(text)) if text else None
+    except duckdb.Error:
+        folder = None
+    return Spill(int(current_limits().memory_bytes * FRAMES_SHARE), folder)
+
+
+#: Bytes a frame takes while the columns of a bus are built in memory: its time and sender,
+#: the sort order by sender and the per-sender copy of its time (8 + 2 + 8 + 8).
+IN_MEMORY_BYTES_PER_FRAME = 26
+
+
+def load_frames(con: duckdb.DuckDBPyConnection, scan: str, codes: pl.DataFrame, n_nodes: int,
+                any_ext: bool, any_fd: bool, count_ids: bool = False,
+                total: int | None = None) -> Frames:
+    """One streaming pass over the frames (``SELECT ... {scan}``) in record batches of
+    ``BATCH_ROWS``: frame times, senders and per-sender times. When ``total`` frames fit the
+    memory allowance they fill arrays of that size; otherwise they go into columns that
+    spill beyond it. Frames out of time order (logs with backward time steps) are read
+    again sorted by time, in the view's order at equal times (as a stable sort would)."""
+    cols = "t_ns, id" + (", ext" if any_ext else "") \
+        + (", (fd::INT + (fd AND esi)::INT)::TINYINT AS esi" if any_fd else "")
+    spill = _spill(con)
+    fits = total is not None and \
+        total * (IN_MEMORY_BYTES_PER_FRAME + (1 if any_fd else 0)) <= spill.allowance
+    queries = [f"SELECT {cols} {scan}",
+               f"SELECT {cols} FROM (SELECT *, row_number() OVER () AS _order {scan}) "
+               "ORDER BY t_ns, _order"]
+    for query in queries:
+        batches = _Batches(con, query, codes, any_ext, any_fd, count_ids)
+        frames = (_in_memory(batches, n_nodes, int(total or 0)) if fits
+                  else _streamed(batches, n_nodes, spill))
+        if frames is not None:
+            return frames
+    raise AssertionError("frames sorted by time came out of order")  # pragma: no cover
+
+
+class _Batches:
+    """The record batches of one frames query as (t_ns, sender, ESI flag or None) arrays,
+    counting frames per identifier on the way; ``ordered`` turns False (and the iteration
+    stops) at the first frame earlier than the one before it."""
+
+    def __init__(self, con: duckdb.DuckDBPyConnection, query: str, codes: pl.DataFrame,
+                 any_ext: bool, any_fd: bool, count_ids: bool) -> None:
+        self.reader = con.sql(query).to_arrow_reader(BATCH_ROWS)
+        self.mapper = _KeyMap(codes, any_ext)
+        self.any_ext, self.any_fd, self.count_ids = any_ext, any_fd, count_ids
+        self.ordered = True
+        self.esi_set = 0
+        self._counts = np.zeros(0, dtype=np.int64)
+        self._other: dict[int, int] = {}
+
+    def __iter__(self) -> Iterator[tuple[np.ndarray, np.ndarray, np.ndarray | None]]:
+        last = None
+        for batch in self.reader:  # a loop over record batches
+            if batch.num_rows == 0:
+                continue
+            t = np.asarray(batch.column(0).to_numpy(), dtype=np.int64)
+            if (last is not None and int(t[0]) < last) or bool(np.any(t[1:] < t[:-1])):
+                self.ordered = False
+                return
+            last = int(t[-1])
+            ids = batch.column(1).to_numpy()
+            if self.count_ids:
+                self._count(ids)
+            keys = ids.astype(np.int64) * 2 + batch.column(2).to_numpy(zero_copy_only=False) \
+                if self.any_ext else ids
+            flag = None
+            if self.any_fd:
+                flag = np.asarray(batch.column(batch.num_columns - 1).to_numpy(
+                    zero_copy_only=False), dtype=np.int8)
+                self.esi_set += int(np.count_nonzero(flag == 2))
+            yield t, self.mapper(keys), flag
+
+    def _count(self, ids: np.ndarray) -> None:
+        if int(ids.max()) < 1 << 16:
+            counts = np.bincount(ids)
+            if counts.size > self._counts.size:
+                counts[:self._counts.size] += self._counts
+                self._counts = counts
+            else:
+                self._counts[:counts.size] += counts
+        else:
+            for v, c in zip(*np.unique(ids, return_counts=True), strict=True):
+                self._other[int(v)] = self._other.get(int(v), 0) + int(c)
+
+    def id_counts(self) -> tuple[np.ndarray, np.ndarray]:
+        """(identifier, frames) of the identifiers seen, sorted."""
+        values = np.flatnonzero(self._counts)
+        counts = self._counts[values]
+        if self._other:
+            extra = sorted(self._other)
+            values = np.concatenate([values, np.array(extra, dtype=np.int64)])
+            counts = np.concatenate([counts, np.array([self._other[v] for v in extra],
+                                                      dtype=np.int64)])
+        return values, counts
+
+
+def _esi_columns(t: np.ndarray, node: np.ndarray, flag: np.ndarray, n_nodes: int
+                 ) -> list[tuple[np.ndarray, np.ndarray]]:
+    """Per node (and last: no catalog sender), the times of its FD frames with ESI set, clear."""
+    out = []
+    for n in range(n_nodes + 1):  # a loop over nodes
+        mine = node == n if n < n_nodes else node < 0
+        out.append((t[mine & (flag == 2)], t[mine & (flag == 1)]))
+    return out
+
+
+def _in_memory(batches: _Batches, n_nodes: int, total: int) -> Frames | None:
+    """The pass into arrays of ``total`` frames; per-sender times from one stable sort."""
+    t = np.empty(total, dtype=np.int64)
+    node = np.empty(total, dtype=np.int16)
+    flags = np.empty(total, dtype=np.int8) if batches.any_fd else None
+    at = 0
+    for bt, bn, bf in batches:
+        if at + bt.size > total:
+            return None  # more frames than counted: let the caller read again
+        t[at:at + bt.size] = bt
+        node[at:at + bt.size] = bn
+        if flags is not None and bf is not None:
+            flags[at:at + bt.size] = bf
+        at += bt.size
+    if not batches.ordered or at != total:
+        return None
+    own = [Column.of(x) for x in _split_by_node(t, node, n_nodes)]
+    esi = [(Column.of(a), Column.of(b)) for a, b in _esi_columns(t, node, flags, n_nodes)] \
+        if flags is not None else []
+    values, counts = batches.id_counts()
+    return Frames(Column.of(t), Column.of(node), own, esi, batches.esi_set, values, counts)
+
+
+def _streamed(batches: _Batches, n_nodes: int, spill: Spill) -> Frames | None:
+    """The pass into columns that spill beyond the allowance (sender by sender per batch)."""
+    t_col, node_col = Column(np.int64, spill), Column(np.int16, spill)
+    own = [Column(np.int64, spill) for _ in range(n_nodes)]
+    esi = [(Column(np.int64, spill), Column(np.int64, spill))
+           for _ in range(n_nodes + 1 if batches.any_fd else 0)]
+    for t, node, flag in batches:
+        t_col.append(t)
+        node_col.append(node)
+        for n, times in enumerate(_split_by_node(t, node, n_nodes)):
+            own[n].append(times)
+        if flag is not None:
+            for (on, off), (a, b) in zip(esi, _esi_columns(t, node, flag, n_nodes),
+                                         strict=True):
+                on.append(a)
+                off.append(b)
+    if not batches.ordered:
+        return None
+    values, counts = batches.id_counts()
+    return Frames(t_col.finish(), node_col.finish(), [c.finish() for c in own],
+                  [(a.finish(), b.finish()) for a, b in esi], batches.esi_set, values, counts)
+
+
+def _counted_by_id(values: np.ndarray, counts: np.ndarray, sampled: pl.DataFrame,
+                   codes: pl.DataFrame) -> pl.DataFrame:
+    """frames and busy_ns per identifier from the identifier counts and sampled durations."""
     overall = float(np.mean(sampled["mean_ns"].to_numpy())) if sampled.height else 0.0
     mean = dict(zip(sampled["id"].to_list(), sampled["mean_ns"].to_list(), strict=True))
     frame = pl.DataFrame({
@@ -273,10 +449,12 @@ def _bincount_ids(ids: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return values, counts[values]
 
 
-def _split_by_node(frame_t: np.ndarray, frame_node: np.ndarray, n: int) -> list[np.ndarray]:
-    """Per node, its frame times (sorted): a compress per node for a few nodes, else one
-    stable radix sort of the 16-bit codes (cheaper than many passes)."""
-    if n <= 8:
+def _split_by_node(frame_t: np.ndarray, frame_node: np.ndarray, n: int,
+                   sort: bool = False) -> list[np.ndarray]:
+    """Per node, its frame times (sorted): a compress per node for a few nodes, else (or
+    with ``sort``) one stable radix sort of the 16-bit codes (cheaper than many passes over
+    a long array; the per-node times are then views of one array)."""
+    if n <= 8 and not sort:
         return [np.compress(frame_node == i, frame_t) for i in range(n)]
     order = np.argsort(frame_node, kind="stable")
     grouped = frame_t[order]
@@ -285,28 +463,38 @@ def _split_by_node(frame_t: np.ndarray, frame_node: np.ndarray, n: int) -> list[
     return [grouped[bounds[i + 1]:bounds[i + 2]] for i in range(n)]
 
 
-def _map_keys(keys: np.ndarray, codes: pl.DataFrame, with_ext: bool = True) -> np.ndarray:
+class _KeyMap:
     """Sender index per frame from the key (id * 2 + ext, or the id alone when no frame is
     extended), vectorised: a lookup table for small keys, else a sorted-key search."""
-    if with_ext:
-        cat_keys = (codes["id"].cast(pl.Int64) * 2 + codes["ext"].cast(pl.Int64)).to_numpy()
-        cat_codes = codes["code"].to_numpy().astype(np.int16)
-    else:
-        std = codes.filter(~pl.col("ext"))
-        cat_keys = std["id"].cast(pl.Int64).to_numpy()
-        cat_codes = std["code"].to_numpy().astype(np.int16)
-    if cat_keys.size == 0 or keys.size == 0:
-        return np.full(keys.size, -1, dtype=np.int16)
-    if int(keys.max()) < 4096 and int(cat_keys.max()) < 4096:
-        table = np.full(4096, -1, dtype=np.int16)
-        table[cat_keys] = cat_codes
-        return table[keys]
-    order = np.argsort(cat_keys)
-    cat_keys, cat_codes = cat_keys[order], cat_codes[order]
-    pos = np.searchsorted(cat_keys, keys)
-    pos = np.minimum(pos, cat_keys.size - 1)
-    found = cat_keys[pos] == keys
-    return np.where(found, cat_codes[pos], np.int16(-1)).astype(np.int16)
+
+    def __init__(self, codes: pl.DataFrame, with_ext: bool = True) -> None:
+        if with_ext:
+            cat_keys = (codes["id"].cast(pl.Int64) * 2 + codes["ext"].cast(pl.Int64)).to_numpy()
+            cat_codes = codes["code"].to_numpy().astype(np.int16)
+        else:
+            std = codes.filter(~pl.col("ext"))
+            cat_keys = std["id"].cast(pl.Int64).to_numpy()
+            cat_codes = std["code"].to_numpy().astype(np.int16)
+        order = np.argsort(cat_keys)
+        self.keys, self.codes = cat_keys[order], cat_codes[order]
+        self.table: np.ndarray | None = None
+        if self.keys.size and int(self.keys.max()) < 4096:
+            self.table = np.full(4096, -1, dtype=np.int16)
+            self.table[self.keys] = self.codes
+
+    def __call__(self, keys: np.ndarray) -> np.ndarray:
+        if self.keys.size == 0 or keys.size == 0:
+            return np.full(keys.size, -1, dtype=np.int16)
+        if self.table is not None and int(keys.max()) < 4096:
+            return self.table[keys]
+        pos = np.minimum(np.searchsorted(self.keys, keys), self.keys.size - 1)
+        found = self.keys[pos] == keys
+        return np.where(found, self.codes[pos], np.int16(-1)).astype(np.int16)
+
+
+def _map_keys(keys: np.ndarray, codes: pl.DataFrame, with_ext: bool = True) -> np.ndarray:
+    """Sender index per frame from its key (see _KeyMap)."""
+    return _KeyMap(codes, with_ext)(keys)
 
 
 def _events(con: duckdb.DuckDBPyConnection, where: str, codes: pl.DataFrame,
@@ -336,8 +524,8 @@ def _events(con: duckdb.DuckDBPyConnection, where: str, codes: pl.DataFrame,
     return pl.concat([errors, status]).sort(["t_ns", "file", "line"], nulls_last=True)
 
 
-def _retransmitted(events: pl.DataFrame, frame_t: np.ndarray,
-                   frame_node: np.ndarray) -> pl.DataFrame:
+def _retransmitted(events: pl.DataFrame, frame_t: Column,
+                   frame_node: Column) -> pl.DataFrame:
     """Errors whose frame the logger could not tell (``id`` ``-``: the flag came inside the
     identifier) get as transmitter the sender of the next frame on the bus: a transmitter
     retransmits a destroyed frame at the next bus idle (ISO 11898-1, automatic
@@ -346,7 +534,7 @@ def _retransmitted(events: pl.DataFrame, frame_t: np.ndarray,
     if not blind.any() or frame_t.size == 0:
         return events.with_columns(pl.lit(False).alias("tx_inferred"))
     t = events["t_ns"].to_numpy().astype(np.int64)
-    i = np.searchsorted(frame_t, t, side="right")
+    i = frame_t.searchsorted(t, side="right")
     nxt = np.where(i < frame_t.size, frame_node[np.minimum(i, frame_t.size - 1)], -1)
     tx = np.where(blind, nxt, events["tx"].to_numpy()).astype(np.int16)
     return events.with_columns(pl.Series("tx", tx, dtype=pl.Int16),
@@ -357,8 +545,8 @@ def prepare_counts(ev: BusEvidence) -> None:
     """Cumulative frame counts (all, and per sender) before every event: the vectorised part."""
     t = ev.events["t_ns"].to_numpy().astype(np.int64)
     ev.ev_t = t.tolist()
-    ev.ev_frames_before = np.searchsorted(ev.frame_t, t, side="left").tolist()
-    ev.ev_own_before = [np.searchsorted(own, t, side="left").tolist() for own in ev.own_t]
+    ev.ev_frames_before = ev.frame_t.searchsorted(t, side="left").tolist()
+    ev.ev_own_before = [own.searchsorted(t, side="left").tolist() for own in ev.own_t]
     if ev.losses.shape[0] and t.size:
         starts = ev.losses[:, 0]
         upto = np.searchsorted(starts, t, side="right")
@@ -396,17 +584,20 @@ def evidence_window(ev: BusEvidence, t_from: int | None, t_to: int | None) -> Bu
     """A copy holding only frames and records in [t_from, t_to) (for per-window findings)."""
     lo = ev.first_t_ns if t_from is None else t_from
     hi = ev.last_t_ns + 1 if t_to is None else t_to
-    i, j = (int(x) for x in np.searchsorted(ev.frame_t, [lo, hi], side="left"))
+    i, j = (int(x) for x in ev.frame_t.searchsorted(np.array([lo, hi]), side="left"))
     events = ev.events.filter((pl.col("t_ns") >= lo) & (pl.col("t_ns") < hi))
     keep = (ev.losses[:, 0] < hi) & (ev.losses[:, 1] > lo) if ev.losses.shape[0] else \
         np.zeros(0, dtype=bool)
     counts = [c for c, k in zip(ev.loss_counts or [None] * ev.losses.shape[0], keep.tolist(),
                                 strict=True) if k]
-    own_t = [own[np.searchsorted(own, lo, side="left"):np.searchsorted(own, hi, side="left")]
-             for own in ev.own_t]
+    def cut(col: Column) -> Column:
+        return col[col.searchsorted(lo, side="left"):col.searchsorted(hi, side="left")]
+
+    own_t = [cut(own) for own in ev.own_t]
+    esi_t = [(cut(on), cut(off)) for on, off in ev.esi_t]
     copy = dataclasses.replace(
-        ev, frame_t=ev.frame_t[i:j], frame_node=ev.frame_node[i:j], frame_esi=ev.frame_esi[i:j],
-        own_t=own_t, events=events, losses=ev.losses[keep], loss_counts=counts,
+        ev, frame_t=ev.frame_t[i:j], frame_node=ev.frame_node[i:j], own_t=own_t, esi_t=esi_t,
+        esi_set_frames=sum(on.size for on, _ in esi_t), events=events, losses=ev.losses[keep], loss_counts=counts,
         first_t_ns=lo, last_t_ns=max(lo, hi - 1), _recovery_cache={})
     prepare_counts(copy)
     return copy
@@ -433,7 +624,7 @@ def flag_lengths(ev: BusEvidence) -> tuple[int, int]:
     # the first FLAG_SAMPLE errors: one narrow time range, so the frame scan below reads only
     # the row groups that range touches (Parquet min/max statistics)
     t = errors["t_ns"].to_numpy().astype(np.int64)[:FLAG_SAMPLE]
-    i = np.searchsorted(ev.frame_t, t, side="right")
+    i = ev.frame_t.searchsorted(t, side="right")
     ok = i < ev.frame_t.size
     t, nxt = t[ok], ev.frame_t[i[ok]]
     if t.size == 0:

@@ -18,6 +18,7 @@ import numpy as np
 import polars as pl
 
 from tracelab.forensics.evidence import KIND_ERROR, BusEvidence, flag_lengths, with_extra_errors
+from tracelab.forensics.framestore import Column, step_sample, steps_over
 from tracelab.forensics.losses import trim_to_losses
 from tracelab.forensics.replay import NodeReplay, replay_node
 from tracelab.physics.confinement import (
@@ -130,9 +131,8 @@ def node_silences(ev: BusEvidence, gaps: pl.DataFrame | None = None,
             if catalog_keys and catalog_keys.get(n) and ev.frames:
                 out.append(Silence(n, ev.first_t_ns, None))
             continue
-        step = np.diff(own)
-        if step.size:
-            sample = step[:: max(1, step.size // 200_000)]  # quantiles of a long run: sample
+        if own.size > 1:
+            sample = step_sample(own, 200_000)  # quantiles of a long run: sample
             median, p99 = (float(v) for v in np.percentile(sample, [50, 99]))
         else:
             median = p99 = float(ev.last_t_ns - ev.first_t_ns)
@@ -141,7 +141,7 @@ def node_silences(ev: BusEvidence, gaps: pl.DataFrame | None = None,
         if gaps is not None and catalog_keys and catalog_keys.get(n) and gaps.height:
             found = _intersect_gaps(gaps, catalog_keys[n], own, min_ns)
         else:
-            idx = np.flatnonzero(step > limit)
+            idx = steps_over(own, limit)
             found = [(int(own[i]), int(own[i + 1])) for i in idx.tolist()]
         if ev.last_t_ns - int(own[-1]) > limit:
             found.append((int(own[-1]), None))
@@ -163,7 +163,7 @@ def node_silences(ev: BusEvidence, gaps: pl.DataFrame | None = None,
     return sorted(out, key=lambda s: s.from_ns)
 
 
-def _intersect_gaps(gaps: pl.DataFrame, keys: set[tuple[int, bool]], own: np.ndarray,
+def _intersect_gaps(gaps: pl.DataFrame, keys: set[tuple[int, bool]], own: Column,
                     min_ns: float) -> list[tuple[int, int | None]]:
     """Where every one of ``keys`` is inside a gap at once, and no own frame falls inside."""
     mine = gaps.filter(pl.struct("id", "ext").map_elements(
@@ -188,8 +188,8 @@ def _intersect_gaps(gaps: pl.DataFrame, keys: set[tuple[int, bool]], own: np.nda
         current = merged
     out: list[tuple[int, int | None]] = []
     for a, b in current or []:
-        i = int(np.searchsorted(own, a, side="right"))
-        j = int(np.searchsorted(own, b, side="left"))
+        i = own.searchsorted(a, side="right")
+        j = own.searchsorted(b, side="left")
         if j <= i and b - a >= min_ns:
             out.append((a, b))
     return out
@@ -380,14 +380,14 @@ def _position_split(stuff: np.ndarray, usable: np.ndarray, group: np.ndarray,
     return split - _binomial(k_g + k_r, n_g + n_r) - penalty
 
 
-def _count_in(times: np.ndarray, intervals: list[tuple[int, int]]) -> int:
+def _count_in(times: Column, intervals: list[tuple[int, int]]) -> int:
     """Number of sorted times inside the (a, b] intervals (vectorised per interval list)."""
     if not intervals or times.size == 0:
         return 0
     a = np.array([i[0] for i in intervals], dtype=np.int64)
     b = np.array([i[1] for i in intervals], dtype=np.int64)
-    return int((np.searchsorted(times, b, side="right")
-                - np.searchsorted(times, a, side="right")).sum())
+    return int((times.searchsorted(b, side="right")
+                - times.searchsorted(a, side="right")).sum())
 
 
 def score(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Silence]) -> None:
@@ -528,19 +528,15 @@ def score(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Silence]) -> N
 def _esi_loglik(ev: BusEvidence, h: Hypothesis) -> float:
     """FD frames: ESI set means the sender was error-passive (ISO 11898-1 ESI bit)."""
     total = 0.0
-    fd = ev.frame_esi > 0
-    if not bool(fd.any()):
+    if not ev.esi_t:
         return 0.0
     for n, rep in enumerate(h.replays):  # loop over nodes
-        mask = fd & (ev.frame_node == n)
-        if not bool(mask.any()):
+        on, off = ev.esi_t[n]  # its FD frames with ESI set, clear
+        if on.size + off.size == 0:
             continue
-        t = ev.frame_t[mask]
-        esi = ev.frame_esi[mask] == 2
-        inside = np.zeros(t.size, dtype=bool)
-        for a, b in rep.passive_intervals(ev.last_t_ns + 1):  # loop over passive intervals
-            inside |= (t > a) & (t <= b)
-        wrong = int(np.sum(esi != inside))
+        # ESI set outside its passive intervals, or clear inside them (disjoint (a, b])
+        spans = rep.passive_intervals(ev.last_t_ns + 1)
+        wrong = on.size - _count_in(on, spans) + _count_in(off, spans)
         total += min(wrong, ESI_CAP) * math.log(P_ESI_MISMATCH)
     return total
 
@@ -551,7 +547,7 @@ def _silence_loglik(ev: BusEvidence, h: Hypothesis, silences: list[Silence]) -> 
     for n, rep in enumerate(h.replays):  # loop over nodes and their bus-off episodes
         own = ev.own_t[n]
         for off in rep.bus_off:
-            i = int(np.searchsorted(own, off["from_ns"], side="right"))
+            i = own.searchsorted(off["from_ns"], side="right")
             nxt = int(own[i]) if i < own.size else None
             need = off["from_ns"] + 0.9 * (off["to_ns"] - off["from_ns"])
             if nxt is not None and nxt < need:

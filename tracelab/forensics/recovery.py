@@ -82,7 +82,7 @@ def recovery_end_ns(ev: BusEvidence, t_ns: int, config: ConfinementConfig) -> in
         return ev._recovery_cache[key]
     seq_ns = RECOVERY_SEQUENCE_BITS * ev.bit_ns
     count_from = t_ns + (config.recovery_delay_ns if config.recovery == "software" else 0)
-    i0 = int(np.searchsorted(ev.frame_t, t_ns, side="left"))
+    i0 = ev.frame_t.searchsorted(t_ns, side="left")
     i1 = i0 + 4 * RECOVERY_SEQUENCES
     t_to = int(ev.frame_t[i1]) if i1 < ev.frame_t.size else ev.last_t_ns
     if config.recovery == "software":

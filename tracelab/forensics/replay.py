@@ -66,7 +66,7 @@ def nth_reception_after(ev: BusEvidence, node: int, frame_start: int, own_start:
     own = ev.own_t[node]
     m = frame_start + n - 1
     while m < ev.frame_t.size:
-        own_in = int(np.searchsorted(own, ev.frame_t[m], side="right")) - own_start
+        own_in = own.searchsorted(int(ev.frame_t[m]), side="right") - own_start
         received = (m - frame_start + 1) - own_in
         if received >= n:
             return int(ev.frame_t[m])
@@ -375,8 +375,8 @@ def _downward(ev: BusEvidence, node: int, c: NodeCounters, config: ConfinementCo
             times.append(t)
     own = ev.own_t[node]
     for t in sorted(set(times)):
-        i_all = int(np.searchsorted(ev.frame_t, t, side="right")) - frame_start
-        i_own = int(np.searchsorted(own, t, side="right")) - own_start
+        i_all = ev.frame_t.searchsorted(t, side="right") - frame_start
+        i_own = own.searchsorted(t, side="right") - own_start
         probe = NodeCounters(tec0, rec0, False, config)
         probe.transmit_success(min(i_own, own_n))
         probe.receive_success(min(i_all - i_own, recv_n))

@@ -15,10 +15,11 @@ import numpy as np
 import polars as pl
 
 from tracelab.forensics.evidence import BusEvidence
+from tracelab.forensics.framestore import Column
 from tracelab.physics.confinement import BUS_OFF_LIMIT, PASSIVE_LIMIT, ConfinementConfig
 
 
-def _steps(times: np.ndarray, starts: np.ndarray, counts: np.ndarray
+def _steps(times: Column, starts: np.ndarray, counts: np.ndarray
            ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """For segment s, the first counts[s] entries of ``times`` from index starts[s] on:
     (segment, 1-based step k, time), entries past the end of ``times`` left out."""
@@ -34,14 +35,54 @@ def _steps(times: np.ndarray, starts: np.ndarray, counts: np.ndarray
     return seg[ok], (k + 1)[ok], times[idx[ok]]
 
 
-def _states(tec: np.ndarray, rec: np.ndarray, config: ConfinementConfig) -> np.ndarray:
-    """state_of() over arrays (the same rules: i, j, k and the warning level)."""
+def _receptions(ev: BusEvidence, node: int, t0: np.ndarray, counts: np.ndarray
+                ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """For segment s, the first counts[s] frames after t0[s] not sent by ``node``:
+    (segment, 1-based step k, time), as _steps over the node's receptions would give.
+
+    Reads only windows of the frames after each t0 (the sender of each), widened for the
+    segments whose window held too few receptions, never every frame of the bus."""
+    counts = np.maximum(counts, 0)
+    size = ev.frame_t.size
+    g0 = np.asarray(ev.frame_t.searchsorted(t0, side="right"), dtype=np.int64)
+    width = counts + counts // 2 + 8
+    todo = np.flatnonzero((counts > 0) & (g0 < size))
+    out: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
+    while todo.size:  # a loop over widenings (a few), vectorised over segments
+        w = np.minimum(width[todo], size - g0[todo])
+        rep = np.repeat(np.arange(todo.size), w)
+        first = np.repeat(np.cumsum(w) - w, w)
+        idx = g0[todo][rep] + np.arange(rep.size) - first
+        received = ev.frame_node[idx] != node
+        rank = np.cumsum(received)
+        before = np.concatenate([[0], rank])[first]  # receptions before each window
+        k = rank - before                            # 1-based within the window
+        got = np.bincount(rep, weights=received, minlength=todo.size).astype(np.int64)
+        enough = (got >= counts[todo]) | (w >= size - g0[todo])
+        take = received & enough[rep] & (k <= counts[todo][rep])
+        out.append((todo[rep[take]], k[take], ev.frame_t[idx[take]]))
+        todo = todo[~enough]
+        width[todo] *= 4
+    if not out:
+        return (np.empty(0, np.int64),) * 3
+    seg, k, when = (np.concatenate(x) for x in zip(*out, strict=True))
+    order = np.lexsort((k, seg))
+    return seg[order], k[order], np.asarray(when[order], dtype=np.int64)
+
+
+#: State names by the codes _state_codes gives.
+STATE_NAMES = ("error-active", "warning", "error-passive", "bus-off")
+
+
+def _state_codes(tec: np.ndarray, rec: np.ndarray, config: ConfinementConfig) -> np.ndarray:
+    """state_of() over arrays (the same rules: i, j, k and the warning level), as indices
+    into STATE_NAMES."""
     hot = np.maximum(tec, rec)
     warm = hot >= config.warning_level if config.warning_inclusive else \
         hot > config.warning_level
-    return np.where(tec > BUS_OFF_LIMIT, "bus-off",
-                    np.where((tec > PASSIVE_LIMIT) | (rec > PASSIVE_LIMIT), "error-passive",
-                             np.where(warm, "warning", "error-active")))
+    return np.where(tec > BUS_OFF_LIMIT, 3,
+                    np.where((tec > PASSIVE_LIMIT) | (rec > PASSIVE_LIMIT), 2,
+                             np.where(warm, 1, 0))).astype(np.int8)
 
 
 def every_change(rows: pl.DataFrame, ev: BusEvidence, node: int,
@@ -72,43 +113,44 @@ def every_change(rows: pl.DataFrame, ev: BusEvidence, node: int,
     if t0.size == 0:
         return rows
     own = ev.own_t[node]
-    received = ev.frame_t[ev.frame_node != node]
     # rule g: one step down per own frame after t0
-    s_a, k_a, t_a = _steps(own, np.searchsorted(own, t0, side="right"), tec0 - tec1)
+    s_a, k_a, t_a = _steps(own, own.searchsorted(t0, side="right"), tec0 - tec1)
     # rule h: per reception; from above 127 the first one sets `after`, then -1 each
     rec_steps = np.where(rec0 > PASSIVE_LIMIT, 1 + np.maximum(0, after - rec1), rec0 - rec1)
     rec_steps = np.where(rec1 < rec0, rec_steps, 0)
-    s_b, k_b, t_b = _steps(received, np.searchsorted(received, t0, side="right"), rec_steps)
+    s_b, k_b, t_b = _receptions(ev, node, t0, rec_steps)
     seg = np.concatenate([s_a, s_b])
     when = np.concatenate([t_a, t_b])
     keep = when < t1[seg]  # the row at t1 itself holds the value after t1
     if not keep.any():
         return rows
-    n_tec = np.concatenate([k_a, np.zeros_like(k_b)])
-    n_rec = np.concatenate([np.zeros_like(k_a), k_b])
-    ev_frame = pl.DataFrame({"seg": seg, "t_ns": when, "n_tec": n_tec, "n_rec": n_rec,
-                             "is_tec": np.concatenate([np.ones(k_a.size, bool),
-                                                       np.zeros(k_b.size, bool)])}
-                            ).filter(pl.Series(keep)).sort("seg", "t_ns")
-    # steps so far of each counter at each change: running max of k within the segment
-    ev_frame = ev_frame.with_columns(
-        pl.when(pl.col("is_tec")).then(pl.col("n_tec")).otherwise(0).cum_max().over("seg")
-        .alias("n_tec"),
-        pl.when(~pl.col("is_tec")).then(pl.col("n_rec")).otherwise(0).cum_max().over("seg")
-        .alias("n_rec"),
-    ).unique(["seg", "t_ns"], keep="last", maintain_order=True)
-    s = ev_frame["seg"].to_numpy()
-    nt, nr = ev_frame["n_tec"].to_numpy(), ev_frame["n_rec"].to_numpy()
+    is_tec = np.concatenate([np.ones(k_a.size, bool), np.zeros(k_b.size, bool)])[keep]
+    k = np.concatenate([k_a, k_b])[keep]
+    seg, when = seg[keep], when[keep]
+    order = np.lexsort((when, seg))
+    seg, when, k, is_tec = seg[order], when[order], k[order], is_tec[order]
+    # steps so far of each counter at each change: running max of k within the segment (the
+    # segment's number as an offset keeps one segment's maxima out of the next)
+    big = int(k.max()) + 1
+    offset = seg.astype(np.int64) * big
+    nt = np.maximum.accumulate(np.where(is_tec, k, 0) + offset) - offset
+    nr = np.maximum.accumulate(np.where(is_tec, 0, k) + offset) - offset
+    final = np.ones(seg.size, dtype=bool)  # the last row of each (segment, time)
+    final[:-1] = (seg[1:] != seg[:-1]) | (when[1:] != when[:-1])
+    s, when, nt, nr = seg[final], when[final], nt[final], nr[final]
     new_tec = np.maximum(tec0[s] - nt, tec1[s])
     passive = rec0[s] > PASSIVE_LIMIT
     new_rec = np.where(passive, np.where(nr == 0, rec0[s], np.maximum(after - (nr - 1), rec1[s])),
                        np.maximum(rec0[s] - nr, rec1[s]))
-    states = _states(new_tec, new_rec, config)
     added = pl.DataFrame({
-        "t_ns": ev_frame["t_ns"].to_numpy(), "tec": new_tec, "rec": new_rec, "state": states,
-        "cause": ["success"] * s.size, "uncertain": seg_unc[s].astype(bool),
-    }).with_columns(pl.col(c).cast(rows.schema[c]) for c in rows.columns)
+        "t_ns": when, "tec": new_tec, "rec": new_rec,
+        "state": pl.Series(_state_codes(new_tec, new_rec, config)).replace_strict(
+            dict(enumerate(STATE_NAMES)), return_dtype=pl.String),
+        "cause": pl.Series(["success"], dtype=pl.String).extend_constant("success", s.size - 1),
+        "uncertain": seg_unc[s].astype(bool),
+    }).select(pl.col(c).cast(rows.schema[c]) for c in rows.columns)
     # before the row they lead to: order by time, then the replay's own rows last at a tie
-    ordered = pl.concat([added.with_columns(_o=pl.lit(0)),
-                         rows.with_columns(_o=pl.lit(1))], how="vertical")
-    return ordered.with_row_index("_i").sort("t_ns", "_o", "_i").drop("_o", "_i")
+    t_all = np.concatenate([when, rows["t_ns"].to_numpy()])
+    mine = np.concatenate([np.zeros(s.size, np.int8), np.ones(rows.height, np.int8)])
+    return pl.concat([added, rows], how="vertical").gather(
+        np.lexsort((np.arange(t_all.size), mine, t_all)))

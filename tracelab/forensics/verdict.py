@@ -16,6 +16,7 @@ import numpy as np
 import polars as pl
 
 from tracelab.forensics.evidence import (
+    ASSUMED_BPS,
     KIND_ERROR,
     BusEvidence,
     CatalogLike,
@@ -72,6 +73,12 @@ VERDICTS_SCHEMA = {"run": pl.String, "bus": pl.String, "cause_kind": pl.String,
                    "first_t_ns": pl.Int64, "wall_time": pl.String, "confidence": pl.Float64,
                    "winner": pl.String, "runner_up": pl.String, "errors": pl.Int64}
 
+#: The assumption a result lists when neither the catalog nor the log names the bit rate.
+ASSUMED_RATE_START = "nominal bit rate of bus"
+ASSUMED_RATE = (ASSUMED_RATE_START + " {bus}: neither the catalog nor the log header names it; "
+                "{kbps} kbit/s assumed (bus-off recovery and error-frame times scale with it)")
+
+
 @dataclass
 class FaultsResult:
     """Verdicts (the JSON results), replayed counters and state intervals of every bus."""
@@ -88,6 +95,18 @@ class FaultsResult:
 
     def describe(self) -> str:
         return describe_results(self.results)
+
+    def bit_rate_warning(self) -> str | None:
+        """One line when the replay assumed a bus's bit rate (neither catalog nor log has it)."""
+        assumed = [f"{r['run']}/{r['bus']}" for r in self.results
+                   if any(a.startswith(ASSUMED_RATE_START) for a in r.get("assumptions", []))]
+        if not assumed:
+            return None
+        where = ", ".join(assumed[:3]) + (f" and {len(assumed) - 3} more" if len(assumed) > 3
+                                          else "")
+        return (f"no bit rate known for {where}: the replay assumed {ASSUMED_BPS // 1000} "
+                "kbit/s (bus-off recovery and error-frame times scale with it; declare the "
+                "bus's nominal rate in the catalog)")
 
     def catalog_warning(self) -> str | None:
         """One line when the catalog does not match the log on some bus (both figures)."""
@@ -161,6 +180,8 @@ def replay_faults(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run: str
             bus_gaps = gaps.filter((pl.col("run") == r) & (pl.col("bus") == bus))
         result, winner = bus_verdict(ev, _origin(con, r), bus_gaps,
                                      _catalog_view(catalog, bus, ev.nodes), config)
+        if ev.bit_rate_source == "assumed":
+            result["assumptions"].append(ASSUMED_RATE.format(bus=bus, kbps=ASSUMED_BPS // 1000))
         results.append(result)
         counters.append(_counters_frame(ev, winner, config))
         states.append(_states_frame(ev, winner))
@@ -660,7 +681,7 @@ def _guess_candidates(ev: BusEvidence, t_ns: np.ndarray) -> np.ndarray:
     # (flag superposed 12, delimiter 8, intermission 3, suspend 8)
     err_t = np.sort(ev.events.filter(pl.col("kind") == KIND_ERROR)["t_ns"].to_numpy())
     per_error = longest + 31 * ev.bit_ns
-    i = np.searchsorted(ft, t_ns, side="right")
+    i = ft.searchsorted(t_ns, side="right")
     alive = i < ft.size
     for k in range(GUESS_RUN_FRAMES):  # loop over a few positions in the run
         j = np.minimum(i + k, ft.size - 1)
@@ -973,7 +994,7 @@ def _evidence(ev: BusEvidence, h: Hypothesis, silences: list[Silence],
         decisive.append({"t_ns": s.from_ns, "what": f"{ev.nodes[s.node]} silent until "
                          f"{s.to_ns if s.to_ns is not None else 'the end of the log'}",
                          "file": None, "line": None})
-    esi_set = int((ev.frame_esi == 2).sum())
+    esi_set = ev.esi_set_frames
     decisive.sort(key=lambda d: d["t_ns"])
     return {
         "errors": errors.height,

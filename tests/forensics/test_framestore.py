@@ -1,0 +1,107 @@
+"""The frame columns the replay reads (tracelab/forensics/framestore.py), in memory and spilled
+to a scratch file in small blocks, against numpy over the same values; and the whole replay
+with its frames spilled against the replay with them in memory."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from tests.forensics import synth
+from tracelab.forensics import framestore
+from tracelab.forensics.framestore import Column, Spill, step_sample, steps_over
+
+
+def _column(values: np.ndarray, allowance: int, folder: Path) -> Column:
+    col = Column(values.dtype, Spill(allowance, folder))
+    rng = np.random.default_rng(5)
+    i = 0
+    while i < values.size:  # uneven pieces, as record batches arrive
+        n = int(rng.integers(1, 700))
+        col.append(values[i:i + n])
+        i += n
+    return col.finish()
+
+
+@pytest.fixture
+def small_blocks(monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setattr(framestore, "BLOCK", 1000)
+
+
+@pytest.mark.parametrize("allowance", [0, 40_000, 10**9])  # all spilled, mixed, in memory
+def test_column_answers_as_numpy_does(tmp_path: Path, small_blocks: None,
+                                      allowance: int) -> None:
+    rng = np.random.default_rng(1)
+    values = np.cumsum(rng.integers(0, 50, 12_345)).astype(np.int64)  # sorted, with ties
+    col = _column(values, allowance, tmp_path)
+    assert col.in_memory == (allowance == 10**9)
+    assert col.size == values.size
+    # source: numpy.searchsorted / indexing / diff are the reference
+    probe = np.concatenate([rng.integers(-10, int(values[-1]) + 10, 3000), values[::97]])
+    for side in ("left", "right"):
+        assert np.array_equal(col.searchsorted(probe, side=side),
+                              np.searchsorted(values, probe, side=side))
+        assert col.searchsorted(int(values[4321]), side=side) == \
+            int(np.searchsorted(values, values[4321], side=side))
+    idx = rng.integers(0, values.size, 2000)
+    assert np.array_equal(col[idx], values[idx])
+    assert col[-1] == values[-1] and col[0] == values[0] and col[7777] == values[7777]
+    with pytest.raises(IndexError):
+        col[values.size]
+    view = col[2500:9100]
+    ref = values[2500:9100]
+    assert view.size == ref.size
+    for side in ("left", "right"):
+        assert np.array_equal(view.searchsorted(probe, side=side),
+                              np.searchsorted(ref, probe, side=side))
+    assert np.array_equal(view[np.arange(0, ref.size, 13)], ref[::13])
+    assert np.array_equal(view.to_numpy(), ref)
+    assert np.array_equal(np.concatenate([c for _, c in view.chunks(100, 5000)]), ref[100:5000])
+    assert view[1000:1200].to_numpy().tolist() == ref[1000:1200].tolist()
+    for target in (1, 7, 100, 10**6):
+        want = np.diff(values)[::max(1, (values.size - 1) // target)]
+        assert np.array_equal(step_sample(col, target), want)
+    for limit in (0, 60, 90):
+        assert np.array_equal(steps_over(col, limit), np.flatnonzero(np.diff(values) > limit))
+    assert col.count(int(values[100])) == int(np.sum(values == values[100]))
+
+
+def test_spilled_blocks_live_in_the_scratch_folder_until_dropped(tmp_path: Path,
+                                                                 small_blocks: None) -> None:
+    spill = Spill(0, tmp_path)
+    col = Column(np.int64, spill)
+    col.append(np.arange(5000))
+    col.finish()
+    assert spill.folder is not None and any(spill.folder.iterdir())
+    folder = spill.folder
+    del col, spill
+    import gc
+
+    gc.collect()
+    assert not folder.exists()
+
+
+@pytest.mark.parametrize("fault, fd", [("tx", False), ("rx", True), ("bus", False)])
+def test_replay_with_spilled_frames_equals_the_replay_in_memory(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch, fault: str, fd: bool) -> None:
+    from tracelab.forensics import evidence, replay_faults
+
+    s = synth.generate(6000, fault=fault, culprit="bravo", p=0.3, seed=2, fault_from_slot=500,
+                       fd=fd, status_every=0)
+    cat = synth.catalog(fd=fd)
+    monkeypatch.chdir(tmp_path)  # the in-memory connection spills to ./.tmp
+    kept = replay_faults(s.connect(), cat)
+    monkeypatch.setattr(evidence, "FRAMES_SHARE", 0.0)
+    monkeypatch.setattr(evidence, "BATCH_ROWS", 700)
+    monkeypatch.setattr(framestore, "BLOCK", 1000)
+    spilled = replay_faults(s.connect(), cat)
+    assert spilled.as_json() == kept.as_json()
+    assert spilled.counters.equals(kept.counters)
+    assert spilled.node_states.equals(kept.node_states)
+    # the scenario exercises transitions and bus-off recovery (and ESI with FD frames)
+    result = kept.as_json()["results"][0]
+    assert sum(len(n["transitions"]) for n in result["nodes"]) > 20
+    assert any(n["bus_off"] for n in result["nodes"])
+    assert (result["evidence"]["esi_frames"] > 0) == fd
