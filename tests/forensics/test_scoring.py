@@ -119,3 +119,23 @@ def test_an_unidentified_error_can_belong_to_the_back_to_back_run_after_it() -> 
     # an error right before the idle: nothing follows back to back except the next frame
     late = _guess_candidates(cast(Any, ev), np.array([int(3.2 * frame)], dtype=np.int64))
     assert late[0].tolist()[0] == -1  # the next frame is 1 ms away: anyone
+
+
+def test_a_whole_bus_verdict_that_leaves_an_onset_run_unexplained_is_not_confident() -> None:
+    # derived: a run of 30 errors with 60 % on one node's frames comes by chance under a
+    # whole-bus disturbance about 1e-4 of the time per position (binomial tail); when the
+    # whole-bus reading still wins over the windows cut there and the CRC errors it leaves on
+    # every sender's frames are missing too, its score is capped
+    from typing import Any, cast
+
+    from tracelab.forensics.hypotheses import Hypothesis
+    from tracelab.forensics.verdict import ONSET_UNEXPLAINED_SCORE, _calibrated
+
+    h = Hypothesis("bus-disturbance", "bus-disturbance", None, [])
+    h.score = 1.0
+    ev = cast(Any, None)
+    assert _calibrated(ev, h, [h], None, False, False, [], []) == 1.0
+    h.facts["onset_cuts"] = 1
+    assert _calibrated(ev, h, [h], None, False, False, [], []) == 1.0  # CRC errors seen
+    h.parts["types"] = -40.0  # no CRC error on the other senders' frames
+    assert _calibrated(ev, h, [h], None, False, False, [], []) == ONSET_UNEXPLAINED_SCORE < 0.9

@@ -58,6 +58,12 @@ ALTERNATIVE_RATIO = 0.2
 WINDOW_MIN_ERRORS = 8
 #: Errors in the run that marks a node's transmit-side onset (at least 60 % on its frames).
 SEGMENT_RUN = 30
+#: The score of a whole-bus verdict whose log holds a transmit-side onset run (SEGMENT_RUN)
+#: that no window explained and whose errors lack the CRC errors a whole-bus disturbance
+#: leaves on every sender's frames: two signs against the whole bus. (Onset runs alone come
+#: by chance under a busy whole-bus disturbance: the run test is scanned over every error
+#: and node.)
+ONSET_UNEXPLAINED_SCORE = 0.5
 #: A window's receive-fault verdict counts only when its node was error-passive over at least
 #: this many frames there (otherwise it predicts nothing the whole-bus reading does not).
 PASSIVE_MIN_FRAMES = 20
@@ -531,15 +537,22 @@ def _segment(ev: BusEvidence, cat: CatalogView, config: ConfinementConfig,
             cuts.append(t)
     if not cuts:
         return winner, winner, findings
+    # a run of errors on one node's frames that chance gives the whole-bus reading about
+    # 1e-4 of the time: if that reading still stands, it does not explain the run
+    winner.facts["onset_cuts"] = len(cuts)
     bounds: list[int | None] = [None, *cuts, None]
     windows: list[tuple[Hypothesis, int | None, int | None]] = []
     pending: int | None = None  # start of windows nothing decided yet
     open_start = False
     for lo, hi in zip(bounds[:-1], bounds[1:], strict=True):  # loop over a few windows
-        # after undecided windows, this one is read from where they started (a receive
-        # fault's counters build up over both; a window replay starts from zero counters)
-        start = pending if open_start else lo
-        w = analyse(evidence_window(ev, start, hi), None, cat, config).hyps[0]
+        w = analyse(evidence_window(ev, lo, hi), None, cat, config).hyps[0]
+        start = pending if open_start and w.kind == "receive-fault" else lo
+        if open_start:
+            # after undecided windows, a receive fault may be read from where they started
+            # (its counters build up over both; a window replay starts from zero counters)
+            merged = analyse(evidence_window(ev, pending, hi), None, cat, config).hyps[0]
+            if merged.kind == "receive-fault":
+                w, start = merged, pending
         if w.score < MIN_CONFIDENCE or (w.kind == "receive-fault" and
                                         w.facts.get("passive_frames", 0) < PASSIVE_MIN_FRAMES):
             # undecided (a receive fault that never went passive here predicts nothing the
@@ -757,6 +770,8 @@ def _calibrated(ev: BusEvidence, h: Hypothesis, hyps: list[Hypothesis],
         p = h.score
     if thin:
         p = min(p, 0.5)
+    if h.kind == "bus-disturbance" and h.facts.get("onset_cuts") and h.parts.get("types", 0) < 0:
+        p = min(p, ONSET_UNEXPLAINED_SCORE)
     if first is not None:
         width = int(first.get("latest_ns", first["t_ns"])) - int(first.get("earliest_ns",
                                                                          first["t_ns"]))
