@@ -44,9 +44,12 @@ lint: $(STAMP)
 typecheck: $(STAMP)
 	$(BIN)/mypy tracelab
 
-# pytest exits 5 when it collected nothing: an empty suite is not green.
+# pytest exits 5 when it collected nothing: an empty suite is not green. Both cores
+# (pytest-xdist): each test module runs whole on one worker, so its module-scoped fixtures
+# are built once (docs/testing.md, "Run time"); PYTEST_WORKERS=0 runs in one process.
+PYTEST_WORKERS ?= 2
 unit: $(STAMP)
-	@$(BIN)/pytest; rc=$$?; if [ $$rc -eq 5 ]; then echo "no tests collected" >&2; exit 1; fi; exit $$rc
+	@$(BIN)/pytest -n $(PYTEST_WORKERS) --dist loadfile; rc=$$?; if [ $$rc -eq 5 ]; then echo "no tests collected" >&2; exit 1; fi; exit $$rc
 
 test: lint typecheck browser-deps unit
 

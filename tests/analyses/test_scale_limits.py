@@ -47,8 +47,7 @@ def test_make_limits_options_environment_defaults(monkeypatch: pytest.MonkeyPatc
         limits.make_limits("1MiB")
 
 
-@pytest.fixture()
-def recorded(monkeypatch: pytest.MonkeyPatch) -> dict[str, list[Any]]:
+def _record(monkeypatch: pytest.MonkeyPatch) -> dict[str, list[Any]]:
     """Every duckdb.connect() and, for each configured connection, the settings DuckDB
     reports right after tracelab configured it."""
     seen: dict[str, list[Any]] = {"connects": [], "settings": []}
@@ -76,11 +75,26 @@ def recorded(monkeypatch: pytest.MonkeyPatch) -> dict[str, list[Any]]:
     return seen
 
 
+@pytest.fixture()
+def recorded(monkeypatch: pytest.MonkeyPatch) -> dict[str, list[Any]]:
+    return _record(monkeypatch)
+
+
 @pytest.fixture(scope="module")
-def demo_dir(tmp_path_factory: pytest.TempPathFactory) -> Path:
+def demo_run(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, dict[str, list[Any]]]:
+    """One `tracelab demo` for the module (about 10 s), run under TRACELAB_MEMORY=1GiB as the
+    batch hands it to its workers, with its connections recorded."""
     out = tmp_path_factory.mktemp("limits") / "demo"
-    assert main(["demo", "-o", str(out), "--quiet"]) == 0
-    return out
+    with pytest.MonkeyPatch.context() as monkeypatch:
+        seen = _record(monkeypatch)
+        monkeypatch.setenv(limits.ENV_MEMORY, "1GiB")
+        assert main(["demo", "-o", str(out), "--quiet"]) == 0
+    return out, seen
+
+
+@pytest.fixture(scope="module")
+def demo_dir(demo_run: tuple[Path, dict[str, list[Any]]]) -> Path:
+    return demo_run[0]
 
 
 def _check(seen: dict[str, list[Any]], memory: str, temp_dir: Path) -> None:
@@ -113,13 +127,10 @@ def test_each_command_runs_under_its_memory_limit(command: str, demo_dir: Path, 
         assert "384.0 MiB" in capsys.readouterr().out  # the user's own session sees it too
 
 
-def test_demo_and_environment_default(demo_dir: Path, tmp_path: Path,
-                                      recorded: dict[str, list[Any]],
-                                      monkeypatch: pytest.MonkeyPatch) -> None:
-    monkeypatch.setenv(limits.ENV_MEMORY, "1GiB")  # what the batch hands its workers
-    assert main(["demo", "-o", str(tmp_path / "demo"), "--quiet"]) == 0
-    _check(recorded, "512.0 MiB", tmp_path / "demo" / "dataset" / ".tmp")
-    assert not (tmp_path / "demo" / "dataset" / ".tmp").exists()  # nothing left behind
+def test_demo_and_environment_default(demo_run: tuple[Path, dict[str, list[Any]]]) -> None:
+    out, seen = demo_run
+    _check(seen, "512.0 MiB", out / "dataset" / ".tmp")
+    assert not (out / "dataset" / ".tmp").exists()  # nothing left behind
 
 
 def test_bad_memory_option_is_a_usage_error(demo_dir: Path,

@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import fcntl
+import os
+import pickle
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -44,7 +47,19 @@ def make_root(root: Path) -> Path:
 
 @pytest.fixture(scope="session")
 def small_fleet(tmp_path_factory: pytest.TempPathFactory) -> Fleet:
-    base = tmp_path_factory.mktemp("small-fleet")
-    root = make_root(base / "logs")
-    fleet = base / "fleet"
-    return Fleet(root, fleet, run_batch(root, fleet, STEPS, workers=2, quiet=True))
+    """Built once per test run. Under pytest-xdist each worker has its own session, so the
+    first worker to get here builds it in the run's shared temporary folder while holding a
+    lock, and the others wait and reuse it (tests only read it or copy it)."""
+    shared = tmp_path_factory.getbasetemp()
+    if os.environ.get("PYTEST_XDIST_WORKER"):
+        shared = shared.parent  # .../pytest-N, above every worker's own popen-gwK
+    base = shared / "small-fleet"
+    with open(shared / "small-fleet.lock", "w") as lock:
+        fcntl.flock(lock, fcntl.LOCK_EX)
+        done = base / "summary.pickle"
+        if not done.exists():
+            root = make_root(base / "logs")
+            summary = run_batch(root, base / "fleet", STEPS, workers=2, quiet=True)
+            done.write_bytes(pickle.dumps(summary))
+        summary = pickle.loads(done.read_bytes())
+    return Fleet(base / "logs", base / "fleet", summary)

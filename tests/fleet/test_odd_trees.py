@@ -20,6 +20,7 @@ from tracelab.cli import main
 from tracelab.errors import CatalogError, UsageError
 from tracelab.fleet import discover, layout
 from tracelab.fleet.batch import run_batch
+from tracelab.fleet.executors import DaskExecutor
 from tracelab.fleet.index import PLOTLY_FILE
 from tracelab.fleet.summary import SUSPECT_REJECT_SHARE
 from tracelab.store.lock import LockedError, holder_record
@@ -113,7 +114,13 @@ def test_a_bad_catalog_fails_once_up_front(tmp_path: Path,
     assert len(err.strip().splitlines()) == 1 and str(bad) in err
 
 
-def test_an_unreachable_scheduler_leaves_nothing_behind(tmp_path: Path) -> None:
+def test_an_unreachable_scheduler_leaves_nothing_behind(tmp_path: Path,
+                                                         monkeypatch: pytest.MonkeyPatch) -> None:
+    # Dask retries a refused connection until its timeout (20 s by default); how long it
+    # waits is not what this test is about, so the batch's executor waits 1 s
+    defaults = DaskExecutor.__init__.__defaults__
+    assert defaults is not None and defaults[-1] == 20.0
+    monkeypatch.setattr(DaskExecutor.__init__, "__defaults__", (*defaults[:-1], 1.0))
     root = _root(tmp_path)
     fleet = tmp_path / "fleet"
     with pytest.raises(UsageError, match="cannot reach the Dask scheduler"):
