@@ -228,9 +228,21 @@ def analyse(ev: BusEvidence, gaps: pl.DataFrame | None, cat: CatalogView,
     silences = node_silences(ev, gaps, cat.keys)
     floods = find_floods(ev, cat.periods)
     hyps = candidates(ev, base, first, silences, floods)
+    others: dict[str, list[NodeReplay]] = {}
     for h in hyps:
         if h.kind == "receive-fault" and h.node in fills:
             h.facts["fill"] = fills[h.node]
+            if fills[h.node] != "rate":
+                # every node of the hypothesis through the same reading of the losses
+                mode = fills[h.node]
+                if mode not in others:
+                    alt = _loss_reading(ev, mode)
+                    others[mode] = [
+                        _logged(replay_node(alt if alt is not None else ev, m, False, config),
+                                original_rows(alt) if alt is not None else None)
+                        for m in range(len(ev.nodes))]
+                h.replays = [rep if m == h.node else others[mode][m]
+                             for m, rep in enumerate(h.replays)]
     score(ev, hyps, silences)
     # ties (to rounding): a cut-off node before a plain silence, since only the former makes
     # rule-based predictions (docs/forensics.md); otherwise the order of candidates()
