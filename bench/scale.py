@@ -288,14 +288,15 @@ def run_command(command: str, dataset: Path, memory: str) -> Cost:
     return Cost(command, wall, usage["cpu_s"], usage["maxrss_kib"] * 1024, usage["code"])
 
 
-def measure(frames: int, folder: Path, memory: str, chunk: int, keep: bool) -> tuple[int, list[Cost]]:
+def measure(frames: int, folder: Path, memory: str, chunk: int, keep: bool,
+            commands: tuple[str, ...] = COMMANDS) -> tuple[int, list[Cost]]:
     shutil.rmtree(folder, ignore_errors=True)
     folder.mkdir(parents=True)
     dataset, _ = write_dataset(folder / "dataset", frames, chunk)
     written = int(pq.read_table(dataset / "manifest.parquet").column("frames")[0].as_py())
     costs = []
     budget = parse_size(memory)
-    for command in COMMANDS:
+    for command in commands:
         cost = run_command(command, dataset, memory)
         costs.append(cost)
         state = "ok" if cost.code == 0 else f"FAILED (exit {cost.code})"
@@ -318,14 +319,20 @@ def main() -> None:
     parser.add_argument("--chunk", type=int, default=5_000_000, help="frames per Parquet part")
     parser.add_argument("--dir", type=Path, default=Path(__file__).resolve().parent / "out" / "scale")
     parser.add_argument("--keep", action="store_true", help="keep the datasets")
+    parser.add_argument("--commands", default=",".join(COMMANDS),
+                        help="comma-separated subset of " + ",".join(COMMANDS))
     args = parser.parse_args()
+    commands = tuple(c for c in args.commands.split(",") if c)
+    if not commands or set(commands) - set(COMMANDS):
+        parser.error(f"--commands: choose from {','.join(COMMANDS)}")
     runs = []
     if args.baseline and args.baseline != args.frames:
         print(f"baseline: {args.baseline:,} frames", flush=True)
         runs.append(measure(args.baseline, args.dir / "baseline", args.memory, args.chunk,
-                            args.keep))
+                            args.keep, commands))
     print(f"run: {args.frames:,} frames", flush=True)
-    runs.append(measure(args.frames, args.dir / "run", args.memory, args.chunk, args.keep))
+    runs.append(measure(args.frames, args.dir / "run", args.memory, args.chunk, args.keep,
+                        commands))
     print("\n| frames | command | wall s | CPU s | peak RSS | CPU ns/frame | vs baseline |")
     print("|---|---|---|---|---|---|---|")
     base_n, base = runs[0]
