@@ -68,6 +68,22 @@ def test_column_answers_as_numpy_does(tmp_path: Path, small_blocks: None,
     assert col.count(int(values[100])) == int(np.sum(values == values[100]))
 
 
+@pytest.mark.parametrize("step", [4, 256])
+def test_the_two_level_search_answers_as_numpy_does(monkeypatch: pytest.MonkeyPatch,
+                                                     step: int) -> None:
+    monkeypatch.setattr(framestore, "COARSE_FROM", 0)
+    monkeypatch.setattr(framestore, "COARSE_STEP", step)
+    rng = np.random.default_rng(2)
+    for size in (1, 5, step, step + 1, 3 * step - 1, 10_007):
+        values = np.sort(rng.integers(0, size * 3, size)).astype(np.int64)  # with ties
+        col = Column.of(values)
+        probe = np.concatenate([rng.integers(-5, size * 3 + 5, 500), values])
+        for side in ("left", "right"):
+            # source: numpy.searchsorted is the reference
+            assert np.array_equal(col.searchsorted(probe, side=side),
+                                  np.searchsorted(values, probe, side=side)), (size, side)
+
+
 def test_spilled_blocks_live_in_the_scratch_folder_until_dropped(tmp_path: Path,
                                                                  small_blocks: None) -> None:
     spill = Spill(0, tmp_path)

@@ -251,8 +251,8 @@ def load_bus_evidence(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run:
 
 
 #: Of the memory budget, the share the frame columns of one bus may hold in memory before
-#: they spill to the scratch folder (the other parts: DuckDB's share, the interpreter, the
-#: replay's rows and the temporaries of one block).
+#: they spill to the scratch folder (the other parts: DuckDB's half, the interpreter and
+#: libraries, the replay's rows and the temporaries of one record batch).
 FRAMES_SHARE = 0.25
 #: Rows per record batch read from DuckDB.
 BATCH_ROWS = 1 << 20
@@ -283,7 +283,7 @@ def _spill(con: duckdb.DuckDBPyConnection) -> Spill:
 
 
 #: Bytes a frame takes while the columns of a bus are built in memory: its time and sender,
-#: the sort order by sender and the per-sender copy of its time (8 + 2 + 8 + 8).
+#: and the per-sender copy of its time twice (pieces, then one array): 8 + 2 + 8 + 8.
 IN_MEMORY_BYTES_PER_FRAME = 26
 
 
@@ -388,6 +388,7 @@ def _in_memory(batches: _Batches, n_nodes: int, total: int) -> Frames | None:
     t = np.empty(total, dtype=np.int64)
     node = np.empty(total, dtype=np.int16)
     flags = np.empty(total, dtype=np.int8) if batches.any_fd else None
+    pieces: list[list[np.ndarray]] = [[] for _ in range(n_nodes)]
     at = 0
     for bt, bn, bf in batches:
         if at + bt.size > total:
@@ -397,9 +398,11 @@ def _in_memory(batches: _Batches, n_nodes: int, total: int) -> Frames | None:
         if flags is not None and bf is not None:
             flags[at:at + bt.size] = bf
         at += bt.size
+        for n, times in enumerate(_split_by_node(bt, bn, n_nodes)):  # batch by batch: in cache
+            pieces[n].append(times)
     if not batches.ordered or at != total:
         return None
-    own = [Column.of(x) for x in _split_by_node(t, node, n_nodes)]
+    own = [Column.of(np.concatenate(p) if p else np.zeros(0, np.int64)) for p in pieces]
     esi = [(Column.of(a), Column.of(b)) for a, b in _esi_columns(t, node, flags, n_nodes)] \
         if flags is not None else []
     values, counts = batches.id_counts()

@@ -80,8 +80,9 @@ class Column:
         self._offsets: list[int] = []               # byte offset of each block in the file
         self._cache: OrderedDict[int, np.ndarray] = OrderedDict()
         self._one: np.ndarray | None = None         # the whole column, when in one block
+        self._coarse: np.ndarray | None = None      # every COARSE_STEP-th value of _one
         self._lo, self._hi = 0, 0                   # a view's range over the blocks
-        self._base: Column = self
+        self._of: Column | None = None               # a view's column (no self-reference)
 
     # --- building ------------------------------------------------------------------------
 
@@ -153,6 +154,10 @@ class Column:
     # --- reading -------------------------------------------------------------------------
 
     @property
+    def _root(self) -> Column:
+        return self if self._of is None else self._of
+
+    @property
     def size(self) -> int:
         return self._hi - self._lo
 
@@ -161,10 +166,10 @@ class Column:
 
     @property
     def in_memory(self) -> bool:
-        return self._base._one is not None
+        return self._root._one is not None
 
     def _block(self, b: int) -> np.ndarray:
-        base = self._base
+        base = self._root
         block = base._blocks[b]
         if block is not None:
             return block
@@ -183,7 +188,7 @@ class Column:
 
     def _gather(self, idx: np.ndarray) -> np.ndarray:
         """Values at base indices idx (an int64 array)."""
-        base = self._base
+        base = self._root
         if base._one is not None:
             return base._one[idx]
         out = np.empty(idx.size, dtype=base.dtype)
@@ -216,11 +221,11 @@ class Column:
 
     def view(self, i: int, j: int) -> Column:
         """The values [i, j) as a column sharing these blocks (no copy)."""
-        base = self._base
+        base = self._root
         if base._one is not None:
             return Column.of(base._one[self._lo + i:self._lo + j])
         out = Column(base.dtype)
-        out._base = base
+        out._of = base
         out._lo, out._hi = self._lo + i, self._lo + j
         return out
 
@@ -228,11 +233,11 @@ class Column:
         """np.searchsorted over the whole (sorted) column: ints give an int, arrays an array."""
         if sorter is not None:
             raise TypeError("Column.searchsorted takes no sorter")
-        base = self._base
+        base = self._root
         scalar = np.ndim(values) == 0
         v = np.atleast_1d(np.asarray(values))
         if base._one is not None:
-            pos = np.searchsorted(base._one, v, side=side)  # type: ignore[call-overload]
+            pos = _two_level(base, v, side)
         else:
             # the block holding the answer: the first whose last value is >= v (left) or
             # > v (right); then a search inside it
@@ -250,7 +255,7 @@ class Column:
 
     def chunks(self, i: int = 0, j: int | None = None) -> Iterator[tuple[int, np.ndarray]]:
         """(index of the chunk's first value, values) over [i, j), block by block."""
-        base = self._base
+        base = self._root
         lo = self._lo + i
         hi = self._lo + (self.size if j is None else min(j, self.size))
         if base._one is not None:
@@ -275,6 +280,41 @@ class Column:
         return np.concatenate(parts) if parts else np.zeros(0, dtype=self.dtype)
 
 
+#: In-memory columns longer than this answer many searches through a coarse index first.
+COARSE_FROM = 1 << 20
+#: Values per coarse index entry (a power of two).
+COARSE_STEP = 256
+
+
+def _two_level(col: Column, v: np.ndarray, side: str) -> np.ndarray:
+    """np.searchsorted(col._one, v, side) for an in-memory column. For many searches into a
+    long array: a search in every COARSE_STEP-th value (small, in cache) finds the stretch
+    of COARSE_STEP values holding each answer, then a branch-free binary search of fixed
+    depth inside it (vectorised over the searches), instead of each search wandering through
+    the whole array (a cache miss per step)."""
+    a = col._one
+    assert a is not None
+    if a.size < COARSE_FROM or v.size < 64:
+        return np.searchsorted(a, v, side=side)  # type: ignore[call-overload, no-any-return]
+    coarse = col._coarse
+    if coarse is None:
+        coarse = col._coarse = a[::COARSE_STEP].copy()
+    # the answer lies in (lo, hi]: a[lo] < v <= a[hi] for side="left" (<= / < for "right")
+    j = np.searchsorted(coarse, v, side=side)  # type: ignore[call-overload]
+    lo = (j - 1) * COARSE_STEP  # index of the last coarse value before the answer, or < 0
+    hi = np.minimum(j * COARSE_STEP, a.size)
+    lo = np.maximum(lo, -1)
+    # invariant: the answer is in (lo, hi]; halve the interval until it is one value wide
+    for _ in range(COARSE_STEP.bit_length()):  # fixed depth: log2(COARSE_STEP) + 1 steps
+        mid = (lo + hi) // 2
+        probe = a[np.clip(mid, 0, a.size - 1)]
+        below = (probe < v) if side == "left" else (probe <= v)
+        open_ = hi - lo > 1
+        lo = np.where(open_ & below, mid, lo)
+        hi = np.where(open_ & ~below, mid, hi)
+    return np.asarray(hi, dtype=np.int64)
+
+
 def step_sample(own: Column, target: int) -> np.ndarray:
     """``np.diff(own)[::max(1, steps // target)]`` (the steps between consecutive values),
     computed block by block."""
@@ -283,7 +323,9 @@ def step_sample(own: Column, target: int) -> np.ndarray:
         return np.zeros(0, dtype=np.int64)
     k = max(1, steps // target)
     if own.in_memory:
-        return np.diff(own.to_numpy())[::k]
+        values = own.to_numpy()
+        at = np.arange(0, steps, k)
+        return values[at + 1] - values[at]
     out = []
     prev: np.ndarray | None = None
     for start, chunk in own.chunks():

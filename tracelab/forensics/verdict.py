@@ -191,6 +191,7 @@ def replay_faults(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run: str
         results.append(result)
         counters.append(_counters_frame(ev, winner, config))
         states.append(_states_frame(ev, winner))
+        del ev, winner  # this bus's frames (and their scratch files) go before the next loads
     counters_df = pl.concat(counters) if counters else pl.DataFrame(schema=COUNTERS_SCHEMA)
     states_df = pl.concat(states) if states else pl.DataFrame(schema=NODE_STATES_SCHEMA)
     return FaultsResult(results, counters_df, states_df, _verdicts_frame(results), frames, events)
