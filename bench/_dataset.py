@@ -4,6 +4,7 @@ ingest), shared by bench/timing.py and bench/load.py, with their CPU-time probe.
 from __future__ import annotations
 
 import hashlib
+import json
 import resource
 import time
 from pathlib import Path
@@ -39,17 +40,15 @@ def write_dataset(path: Path, frames: int, ids: int = 200, buses: int = 2,
     k = np.arange(total) - np.repeat(np.cumsum(counts) - counts, counts)
     t = (rng.integers(0, period)[which] + k * period[which]
          + rng.normal(0, 20_000, total)).astype(np.int64)
-    bits = np.full(total, 125, dtype=np.uint16)
-    dur = bits.astype(np.int64) * BIT_NS
+    bits = np.full(total, 125, dtype=np.uint16)  # the view derives duration, start, end
     frame = pl.DataFrame({
         "run": pl.Series(["bench"] * 1, dtype=pl.String).extend_constant("bench", total - 1),
         "bus": pl.Series([f"B{i}" for i in range(buses)])[which % buses],
-        "t_ns": t, "start_ns": t - (dur - 3 * BIT_NS), "end_ns": t + 3 * BIT_NS,
-        "id": (0x100 + which).astype(np.uint32), "ext": np.zeros(total, bool),
+        "t_ns": t, "id": (0x100 + which).astype(np.uint32), "ext": np.zeros(total, bool),
         "rtr": np.zeros(total, bool), "fd": np.zeros(total, bool), "brs": np.zeros(total, bool),
         "esi": np.zeros(total, bool), "dlc": np.full(total, 8, np.uint8),
         "data": pl.Series([bytes(8)], dtype=pl.Binary).extend_constant(bytes(8), total - 1),
-        "bits": bits, "duration_ns": dur,
+        "bits": bits, "data_bits": np.zeros(total, np.uint16),
         "file": pl.Series(["bench.frames"]).extend_constant("bench.frames", total - 1),
         "line": np.arange(total, dtype=np.int64) + 1,
     })
@@ -61,12 +60,17 @@ def write_dataset(path: Path, frames: int, ids: int = 200, buses: int = 2,
     part = path / "parts" / sha16(sha)
     for table in schema.TABLES:
         (part / table).mkdir(parents=True, exist_ok=True)
-        data = schema.conform(frame, "frames") if table == "frames" else schema.empty(table)
+        data = (schema.conform(frame, "frames", stored=True) if table == "frames"
+                else schema.empty(table, stored=True))
         data.write_parquet(part / table / "0.parquet", compression="zstd",
                            row_group_size=1_000_000)
     manifest = {name: None for name in schema.MANIFEST}
     manifest.update(file="bench.frames", sha256=sha, frames=total, run="bench",
-                    first_t_ns=int(t.min()), last_t_ns=int(t.max()), buses="[]", meta="{}")
+                    first_t_ns=int(t.min()), last_t_ns=int(t.max()), meta="{}",
+                    layout=schema.PARTS_LAYOUT, buses=json.dumps([
+                        {"alias": f"B{i}", "nominal_bps": 1_000_000_000 // BIT_NS,
+                         "data_bps": None, "stamp": "end", "name": None}
+                        for i in range(buses)]))
     pl.DataFrame([manifest], schema=schema.MANIFEST).write_parquet(path / "manifest.parquet")
     print(f"dataset: {total:,} frames, {ids} ids, {buses} buses, "
           f"{duration_ns / 1e9:.0f} s of bus time, written in {time.perf_counter() - t0:.1f} s")

@@ -206,8 +206,7 @@ def test_frame_whose_end_overflows_int64_is_rejected(tmp_path: Path, stamp: str)
 
 
 def test_frames_at_the_limit_ingest_with_a_consistent_end(tmp_path: Path) -> None:
-    import duckdb
-
+    from tracelab.store.dataset import open_dataset
     from tracelab.store.ingest import ingest_logs
 
     last = last_frame_t_ns(500_000, 2_000_000)
@@ -216,8 +215,8 @@ def test_frames_at_the_limit_ingest_with_a_consistent_end(tmp_path: Path) -> Non
     path = _write(tmp_path, "%tracelab-frames 1\n%bus C nominal=500000 data=2000000 "
                             "stamp=start\n" + "\n".join(lines) + "\n")
     ingest_logs([path], tmp_path / "ds", strict=True, quiet=True)
-    rows = duckdb.sql(f"SELECT start_ns, end_ns, duration_ns FROM "
-                      f"'{tmp_path / 'ds'}/parts/*/frames/*.parquet'").fetchall()
+    rows = open_dataset(tmp_path / "ds").connect().execute(
+        "SELECT start_ns, end_ns, duration_ns FROM frames").fetchall()
     assert len(rows) == 2
     assert all(start == last and end == start + duration and end <= MAX_T_NS
                for start, end, duration in rows)

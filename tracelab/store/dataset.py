@@ -32,6 +32,7 @@ import polars as pl
 
 from tracelab.errors import StorageError, StoreError, UsageError
 from tracelab.store import schema
+from tracelab.store.frames_view import BusTiming, bus_timings, frames_view_sql
 from tracelab.store.limits import configure
 from tracelab.store.lock import LOCK_FILE, write_lock
 
@@ -197,6 +198,13 @@ class Dataset:
         if missing:  # a manifest of an older tracelab: the new columns are empty
             frame = frame.with_columns(pl.lit(None, schema.MANIFEST[name]).alias(name)
                                        for name in missing)
+        layouts = set(frame["layout"].fill_null(1).to_list())
+        if not layouts <= set(schema.KNOWN_LAYOUTS):
+            raise StoreError(
+                f"{self.path}: written by a newer tracelab (parts layout "
+                f"{max(layouts)}; this version reads layouts "
+                f"{', '.join(map(str, schema.KNOWN_LAYOUTS))}); upgrade tracelab, or re-ingest "
+                "the logs into a new dataset with this version")
         return frame
 
     def writing(self, what: str) -> contextlib.AbstractContextManager[None]:
@@ -224,7 +232,14 @@ class Dataset:
         return files
 
     def table(self, table: str) -> pl.LazyFrame:
-        """A lazy scan of one table over the committed parts."""
+        """One table over the committed parts, as the views show it (frames with its
+        derived columns; read through DuckDB, so held in memory: tests, small datasets)."""
+        if table == "frames":
+            con = self.connect()
+            try:
+                return con.sql("SELECT * FROM frames").pl().lazy()
+            finally:
+                con.close()
         files = self.part_files(table)
         if not files:
             return schema.empty(table).lazy()
@@ -240,10 +255,14 @@ class Dataset:
         try:
             con = duckdb.connect(":memory:")
             configure(con, self.path)  # memory budget, spill folder, threads (store/limits.py)
-            shas = self.manifest()["sha256"].to_list()
+            manifest = self.manifest()
+            shas = manifest["sha256"].to_list()
             for table in schema.TABLES:
                 files = self.part_files(table, shas)
-                if files:
+                if files and table == "frames":
+                    _check_parts(files)
+                    con.execute(f"CREATE VIEW frames AS {self._frames_sql(manifest)}")
+                elif files:
                     _check_parts(files)
                     listing = ", ".join(_sql_str(_sql_path(f)) for f in files)
                     con.execute(f"CREATE VIEW {table} AS SELECT * FROM read_parquet([{listing}])")
@@ -267,6 +286,20 @@ class Dataset:
             return con
         except duckdb.Error as error:
             raise StoreError(f"{self.path}: cannot open the dataset views ({error})") from error
+
+    def _frames_sql(self, manifest: pl.DataFrame) -> str:
+        """The frames view over every part: files of the same layout and bus settings share
+        one scan (store/frames_view.py derives start/end/duration for layout 2)."""
+        groups: dict[tuple[int, tuple[BusTiming, ...]], list[Path]] = {}
+        rows = manifest.select("sha256", "buses", pl.col("layout").fill_null(1)).iter_rows()
+        for sha, buses, layout in rows:  # one row per ingested file, not per frame
+            files = self.part_files("frames", [sha])
+            if files:
+                key = (layout, bus_timings(schema.manifest_buses(buses)))
+                groups.setdefault(key, []).extend(files)
+        return frames_view_sql([
+            (layout, buses, ", ".join(_sql_str(_sql_path(f)) for f in files))
+            for (layout, buses), files in groups.items()])
 
     def _analysis_files(self) -> list[Path]:
         folder = self.path / ANALYSES_DIR

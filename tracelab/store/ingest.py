@@ -29,7 +29,7 @@ from tracelab.errors import LogFormatError, UsageError, printable
 from tracelab.format.compression import compression_name, open_log
 from tracelab.format.reader import Block, Chunk, LogReader
 from tracelab.format.writer import LogHeader
-from tracelab.physics.bitlength import frame_bits, frame_durations_ns
+from tracelab.physics.bitlength import frame_bits
 from tracelab.progress import progress
 from tracelab.store import schema
 from tracelab.store.dataset import Dataset, create_or_open, storage_guard
@@ -42,7 +42,7 @@ PARQUET_ZSTD_LEVEL = 1  # level 1 compresses frame tables nearly as well as 3, m
 #: more waits read ahead, so memory stays at a few chunks whatever the file size.
 WORKERS = 2
 #: frames columns that rise (nearly) steadily within a chunk: delta encoding packs them small.
-DELTA_COLUMNS = ("t_ns", "start_ns", "end_ns", "line")
+DELTA_COLUMNS = ("t_ns", "line")
 
 
 @dataclass
@@ -113,6 +113,7 @@ class FileSummary:
             "ingested_at": datetime.now(UTC).isoformat(timespec="seconds"),
             "content_sha256": self.content_sha256 or self.sha256,
             "overlaps": ", ".join(self.overlaps) or None,
+            "layout": schema.PARTS_LAYOUT,
         }
 
 
@@ -200,36 +201,11 @@ def run_name(path: Path, header: LogHeader) -> str:
     return header.meta.get("run") or path.name.split(".")[0]
 
 
-def _with_physics(frames: pl.DataFrame, header: LogHeader) -> pl.DataFrame:
-    """Add bits, duration_ns, start_ns, end_ns (vectorised: each frame's bus settings are
-    gathered by bus index, one pass whatever the number of buses)."""
+def _with_physics(frames: pl.DataFrame) -> pl.DataFrame:
+    """Add bits and data_bits (u16): what the frames view derives durations and start / end
+    times from (store/frames_view.py), with the file's bus settings."""
     lengths = frame_bits(frames)
-    bits = lengths["bits"].to_numpy()
-    data_phase = lengths["data_phase_bits"].to_numpy()
-    t_ns = frames["t_ns"].to_numpy()
-    buses = header.buses
-    # per bus: nominal and data rates (a bus without data= has no BRS frames, so its
-    # data-phase bits are 0 and its nominal rate stands in), the 3-bit intermission for
-    # stamp=end (t_ns is the end of EOF) and 0 for stamp=start
-    nominal_bps = np.array([b.nominal_bps for b in buses], dtype=np.int64)
-    data_bps = np.array([b.data_bps or b.nominal_bps for b in buses], dtype=np.int64)
-    stamp_end = np.array([b.stamp == "end" for b in buses])
-    ifs_ns = np.array([frame_durations_ns(np.array([3]), np.array([0]), b.nominal_bps,
-                                          b.data_bps)[0] for b in buses], dtype=np.int64)
-    if len(buses) == 1:
-        duration = frame_durations_ns(bits, data_phase, int(nominal_bps[0]), int(data_bps[0]))
-        start = t_ns - (duration - ifs_ns[0]) if stamp_end[0] else t_ns
-    else:
-        code = frames["bus"].cast(pl.Enum([b.alias for b in buses])).to_physical().to_numpy()
-        fast = data_phase.astype(np.int64)
-        slow = bits.astype(np.int64) - fast
-        # the arithmetic of frame_durations_ns, with per-frame rates: the same float64 steps
-        duration = np.floor((slow * 1e9) / nominal_bps[code] + (fast * 1e9) / data_bps[code]
-                            + 0.5).astype(np.int64)
-        start = t_ns - np.where(stamp_end[code], duration - ifs_ns[code], 0)
-    return frames.with_columns(
-        bits=lengths["bits"].cast(pl.UInt16), duration_ns=pl.Series(duration),
-        start_ns=pl.Series(start), end_ns=pl.Series(start + duration))
+    return frames.with_columns(bits=lengths["bits"], data_bits=lengths["data_phase_bits"])
 
 
 class _PartWriter:
@@ -252,31 +228,32 @@ class _PartWriter:
             frame.write_parquet(path, compression="zstd", compression_level=PARQUET_ZSTD_LEVEL)
 
     def _write_frames(self, frame: pl.DataFrame, path: Path) -> None:
-        """The big table, with per-column Parquet settings: run and file (constant) and bus
-        as dictionaries, the rising times and line numbers delta-encoded, no min/max of the
-        payload bytes. Half the bytes of the default writer's output and ~5 ms less CPU per
-        190k-row chunk; readers see the same column types (no stored Arrow schema, so the
-        dictionaries read back as strings)."""
-        columns = [name for name in schema.FRAMES if name not in ("run", "file")]
-        frame = schema.conform(frame.with_columns(run=pl.lit(""), file=pl.lit("")), "frames")
-        table = frame.select(columns).with_columns(pl.col("bus").cast(pl.Categorical)).to_arrow()
+        """The big table (schema.FRAMES_STORED), with per-column Parquet settings: run and
+        file (constant) and bus as dictionaries, the rising times and line numbers
+        delta-encoded, no min/max of the payload bytes; readers see the schema's column types
+        (no stored Arrow schema, so the dictionaries read back as strings)."""
+        names = list(schema.FRAMES_STORED)
+        table = frame.select(
+            pl.col("bus").cast(pl.Categorical),
+            *(pl.col(name).cast(schema.FRAMES_STORED[name]) for name in names
+              if name not in ("run", "bus", "file"))).to_arrow()
         zeros = pa.array(np.zeros(frame.height, dtype=np.int32))
         constant = {name: pa.DictionaryArray.from_arrays(zeros, pa.array([value], pa.string()))
                     for name, value in (("run", self.run), ("file", self.file))}
         out = pa.table([constant[name] if name in constant else table.column(name)
-                        for name in schema.FRAMES], names=list(schema.FRAMES))
+                        for name in names], names=names)
         pq.write_table(out, path, compression="zstd", compression_level=PARQUET_ZSTD_LEVEL,
-                       use_dictionary=[name for name in schema.FRAMES if name not in DELTA_COLUMNS
+                       use_dictionary=[name for name in names if name not in DELTA_COLUMNS
                                        and name != "data"],
                        column_encoding=dict.fromkeys(DELTA_COLUMNS, "DELTA_BINARY_PACKED"),
-                       write_statistics=[name for name in schema.FRAMES if name != "data"],
+                       write_statistics=[name for name in names if name != "data"],
                        store_schema=False)
 
     def close(self) -> None:
         """Every table gets at least one (possibly empty) file so views keep their schema."""
         for table in schema.TABLES:
             if not any((self.folder / table).iterdir()):
-                self.write(table, schema.empty(table), 0)
+                self.write(table, schema.empty(table, stored=True), 0)
 
 
 def _check_paths(logs: list[Path]) -> None:
@@ -321,7 +298,7 @@ def _ingest_file(path: Path, sha_future: Future[str], is_new: Callable[[str], bo
                 chunk = reader.parse(block, strict)
                 counts = {table: getattr(chunk, table).height for table in schema.TABLES}
                 if counts["frames"]:
-                    parts.write("frames", _with_physics(chunk.frames, header), index)
+                    parts.write("frames", _with_physics(chunk.frames), index)
                 for table in ("errors", "status", "marks", "losses", "rejects"):
                     if counts[table]:
                         parts.write(table, getattr(chunk, table), index)

@@ -11,6 +11,7 @@ from typing import Any
 
 import polars as pl
 
+#: The ``frames`` view (what every analysis and query sees).
 FRAMES = pl.Schema({
     "run": pl.String, "bus": pl.String, "t_ns": pl.Int64, "start_ns": pl.Int64,
     "end_ns": pl.Int64, "id": pl.UInt32, "ext": pl.Boolean, "rtr": pl.Boolean,
@@ -18,6 +19,19 @@ FRAMES = pl.Schema({
     "data": pl.Binary, "bits": pl.UInt16, "duration_ns": pl.Int64, "file": pl.String,
     "line": pl.Int64,
 })
+#: Columns of the view that parts of layout 2 do not store: ``store/frames_view.py`` derives
+#: them from t_ns, bits, data_bits and the file's ``%bus`` settings (manifest ``buses``).
+DERIVED = ("start_ns", "end_ns", "duration_ns")
+#: A frames part file of layout 2: the view's columns minus DERIVED, plus ``data_bits``
+#: (bits sent at the data bit rate: ESI through the CRC delimiter of a BRS frame, else 0).
+FRAMES_STORED = pl.Schema([
+    *((name, dtype) for name, dtype in FRAMES.items() if name not in (*DERIVED, "file", "line")),
+    ("data_bits", pl.UInt16), ("file", pl.String), ("line", pl.Int64),
+])
+#: How part files are laid out, recorded per file in the manifest's ``layout`` column:
+#: 1 (tracelab 0.1, no column: null) stores FRAMES as is; 2 stores FRAMES_STORED.
+PARTS_LAYOUT = 2
+KNOWN_LAYOUTS = (1, 2)
 ERRORS = pl.Schema({
     "run": pl.String, "bus": pl.String, "t_ns": pl.Int64, "type": pl.String,
     "field": pl.String, "id": pl.UInt32, "ext": pl.Boolean, "form": pl.String,
@@ -51,6 +65,8 @@ MANIFEST = pl.Schema({
     "content_sha256": pl.String,
     # files of the same run whose time span overlaps this one's on a common bus (", "-joined)
     "overlaps": pl.String,
+    # the parts layout (PARTS_LAYOUT) the file's parts were written in; null: layout 1
+    "layout": pl.Int64,
 })
 
 
@@ -68,13 +84,17 @@ TABLES: dict[str, pl.Schema] = {
 }
 
 
-def empty(table: str) -> pl.DataFrame:
-    """A zero-row frame with the table's schema."""
-    schema = MANIFEST if table == "manifest" else TABLES[table]
+#: What a part folder's files hold, per table (frames: FRAMES_STORED, the others as TABLES).
+STORED: dict[str, pl.Schema] = {**TABLES, "frames": FRAMES_STORED}
+
+
+def empty(table: str, stored: bool = False) -> pl.DataFrame:
+    """A zero-row frame with the table's schema (``stored``: as a part file holds it)."""
+    schema = MANIFEST if table == "manifest" else (STORED if stored else TABLES)[table]
     return pl.DataFrame(schema=schema)
 
 
-def conform(frame: pl.DataFrame, table: str) -> pl.DataFrame:
+def conform(frame: pl.DataFrame, table: str, stored: bool = False) -> pl.DataFrame:
     """Select and cast the table's columns in schema order (extra columns are dropped)."""
-    schema = MANIFEST if table == "manifest" else TABLES[table]
+    schema = MANIFEST if table == "manifest" else (STORED if stored else TABLES)[table]
     return frame.select(pl.col(name).cast(dtype) for name, dtype in schema.items())
