@@ -12,6 +12,7 @@ import numpy as np
 import polars as pl
 import pyarrow as pa
 
+from tracelab.format.blocks import count_byte
 from tracelab.format.chunk import (
     FIELDS,
     Chunk,
@@ -90,7 +91,7 @@ def parse_fast(header: LogHeader, reasons: pl.Expr, body: bytes, first_line: int
                            missing_columns="insert")
     except (pl.exceptions.PolarsError, UnicodeDecodeError):
         return None
-    n = body.count(b"\n") if newlines is None else newlines
+    n = count_byte(body, 10) if newlines is None else newlines
     if rows.height != n:
         return None
     # The CSV reader reads an empty field as null, the same as a missing one (and drops
@@ -100,7 +101,7 @@ def parse_fast(header: LogHeader, reasons: pl.Expr, body: bytes, first_line: int
     rows = rows.with_columns(
         n_fields=pl.sum_horizontal(x.is_not_null() for x in f).cast(pl.UInt32))
     tabs_accounted = (rows["n_fields"].cast(pl.Int64) - 1).clip(lower_bound=0).sum()
-    if int(tabs_accounted) != body.count(b"\t"):
+    if int(tabs_accounted) != count_byte(body, 9):
         return None
     c = pl.col
     if not header.buses:
