@@ -4,7 +4,9 @@
 
 (a) baseline: polars scan_csv(...).sink_parquet(...) of the same file with hex decoding of id
 and data; (b) ``tracelab ingest``. Each runs in its own subprocess so its peak RSS
-(ru_maxrss from wait4) is its own. Prints lines/s, MB/s, peak RSS and the ratio (b)/(a).
+(ru_maxrss from wait4) is its own. Prints lines/s, MB/s, peak RSS, the throughput and CPU-time
+ratios (a)/(b), then a per-step CPU profile of the ingest: a few chunks of the same log taken
+through the ingest's steps one at a time on one thread (a third subprocess).
 """
 
 from __future__ import annotations
@@ -16,7 +18,9 @@ import subprocess
 import sys
 import tempfile
 import time
+from collections.abc import Callable
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import polars as pl
@@ -74,6 +78,66 @@ def generate(path: Path, n_lines: int, seed: int = 7) -> None:
             frame.write_csv(out, include_header=False, quote_style="never")
 
 
+def profile(log: Path, chunks: int, repeat: int = 3) -> None:
+    """CPU per step and chunk (process CPU time, best of ``repeat`` per chunk, polars on one
+    thread), as the ingest's worker runs them; printed as ms per chunk and share."""
+    import resource
+
+    from tracelab.format.fast import _FAST_SCHEMA
+    from tracelab.format.reader import LogReader
+    from tracelab.physics.bitlength import frame_bits
+    from tracelab.store import ingest
+
+    def cpu() -> float:
+        usage = resource.getrusage(resource.RUSAGE_SELF)
+        return usage.ru_utime + usage.ru_stime
+
+    steps: dict[str, float] = {}
+
+    def step(name: str, fn: Callable[..., Any], *args: Any, times: int = repeat) -> Any:
+        best = float("inf")
+        for _ in range(times):
+            t0 = cpu()
+            out = fn(*args)
+            best = min(best, cpu() - t0)
+        steps[name] = steps.get(name, 0.0) + best
+        return out
+
+    def read_csv(body: bytes) -> pl.DataFrame:
+        return pl.read_csv(body, separator="\t", has_header=False, quote_char=None,
+                           schema=_FAST_SCHEMA, truncate_ragged_lines=True,
+                           missing_columns="insert")
+
+    def write_others(chunk: Any, index: int) -> None:
+        for table in ("errors", "status", "marks", "losses", "rejects"):
+            if getattr(chunk, table).height:
+                parts.write(table, getattr(chunk, table), index)
+
+    work = Path(tempfile.mkdtemp(prefix="tracelab-profile-"))
+    with LogReader(log) as reader:
+        (work / "part").mkdir()
+        parts = ingest._PartWriter(work / "part", "bench", str(log))
+        blocks = reader.blocks()
+        lines = 0
+        for index in range(chunks):
+            block = step("main thread: read a block, cut at the last LF, count LFs",
+                         next, blocks, times=1)
+            lines += block.newlines or 0
+            chunk = step("parse: CSV read, typing and checks", reader.parse, block)
+            step("  of which the CSV read (polars, as the baseline)", read_csv, block.body)
+            frames = step("physics: bits and data_bits", ingest._with_physics, chunk.frames)
+            step("  of which frame_bits", frame_bits, chunk.frames)
+            step("write the frames part (pyarrow, zstd 1)", parts.write, "frames", frames, index)
+            step("write the other tables", write_others, chunk, index)
+    shutil.rmtree(work, ignore_errors=True)
+    total = sum(v for k, v in steps.items() if not k.startswith("  "))
+    print(f"per-step CPU, {chunks} chunks of ~{lines // chunks:,} lines (one thread, best of "
+          f"{repeat} each):")
+    for name, secs in steps.items():
+        print(f"  {name:58s} {secs / chunks * 1e3:6.1f} ms/chunk  {secs / total:4.0%}")
+    print(f"  {'sum of the steps':58s} {total / chunks * 1e3:6.1f} ms/chunk")
+
+
 def timed(cmd: list[str]) -> tuple[float, float, int, int]:
     """(wall seconds, CPU seconds, peak RSS bytes, exit code) of a child process."""
     start = time.perf_counter()
@@ -92,10 +156,16 @@ def main() -> int:
                              "(a shared machine's load then hurts both alike)")
     parser.add_argument("--workdir", type=Path, default=None,
                         help="keep the generated log here (reused when present)")
+    parser.add_argument("--profile-chunks", type=int, default=4,
+                        help="chunks the per-step profile takes (0: no profile)")
     parser.add_argument("--generate-only", type=Path, default=None, help=argparse.SUPPRESS)
+    parser.add_argument("--profile-only", type=Path, default=None, help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.generate_only is not None:
         generate(args.generate_only, args.lines)
+        return 0
+    if args.profile_only is not None:
+        profile(args.profile_only, args.profile_chunks)
         return 0
     work = args.workdir or Path(tempfile.mkdtemp(prefix="tracelab-bench-"))
     work.mkdir(parents=True, exist_ok=True)
@@ -138,6 +208,11 @@ def main() -> int:
     print(f"ratio ingest/baseline throughput: {base_s / ingest_s:.2f} (target >= 0.7); "
           f"CPU-time ratio {base_cpu / ingest_cpu:.2f}; "
           f"ingest peak RSS {'ok' if ingest_rss <= 2**30 else 'OVER'} (target <= 1 GiB)")
+    if args.profile_chunks:
+        subprocess.run([sys.executable, __file__, "--profile-only", str(log), "--profile-chunks",
+                        str(args.profile_chunks)], check=True,
+                       env={**os.environ, "POLARS_MAX_THREADS": "1"})
+        print(f"load average after the profile {os.getloadavg()[0]:.1f}")
     if args.workdir is None:
         shutil.rmtree(work, ignore_errors=True)
     return 0

@@ -24,11 +24,15 @@ from tracelab.format.chunk import (
     status_table,
 )
 from tracelab.format.grammar import (
+    ALL_BUSES,
     CLASSIC_PAYLOAD_BYTES,
+    ERROR_FIELDS,
+    ERROR_TYPES,
     FD_PAYLOAD_BYTES,
     MAX_BASE_ID,
     MAX_EXTENDED_ID,
     NONE,
+    RECORD_FIELDS,
     last_frame_t_ns,
 )
 from tracelab.format.writer import LogHeader
@@ -70,6 +74,26 @@ def decode_hex(text: pl.Series) -> pl.Series | None:
         pa.large_binary(), len(arr), [validity, pa.py_buffer(offsets >> 1), pa.py_buffer(out)])
     return pl.Series(text.name, decoded)
 
+
+
+def _plain_record_ok(f: list[pl.Expr]) -> pl.Expr:
+    """True for error, status and mark records that are valid in their commonest form (an
+    error without id / form, a status, a mark), on the fast path's typed rows: stricter than
+    the exact rules (record_reasons), so a row it passes needs no reason; the others get one.
+    The fast path has no empty field (the TAB count), so n_fields counts them all."""
+    c = pl.col
+    timed = c("t_ns").is_not_null()  # 1-19 digits, no sign, fits int64 (as DIGITS)
+    on_bus = c("bus_code").is_not_null()  # a declared alias
+    tec_rec = r"^[0-9]{1,9}$"
+    return pl.when(f[2] == "error").then(
+        (c("n_fields") == 3 + len(RECORD_FIELDS["error"])) & timed & on_bus
+        & f[3].is_in(ERROR_TYPES) & f[4].is_in(ERROR_FIELDS) & (f[5] == NONE) & (f[6] == NONE)
+    ).when(f[2] == "status").then(
+        (c("n_fields") == 3 + len(RECORD_FIELDS["status"])) & timed & on_bus
+        & f[4].str.contains(tec_rec) & f[5].str.contains(tec_rec)
+    ).when(f[2] == "mark").then(
+        (c("n_fields") == 3 + len(RECORD_FIELDS["mark"])) & timed & (on_bus | (f[1] == ALL_BUSES))
+    ).otherwise(False).fill_null(False)
 
 
 def _unsigned(text: pl.Expr) -> pl.Expr:
@@ -156,8 +180,10 @@ def parse_fast(header: LogHeader, reasons: pl.Expr, body: bytes, first_line: int
     rest_mask = ~ok_mask & ~rows["other"]
     n_ok, n_rest = int(ok_mask.sum()), int(rest_mask.sum())
     rest = rows.filter(rest_mask) if n_rest else rows.clear()
-    # other kinds and odd-but-valid frames: the exact checks, on the few rows
-    if n_rest and rest.select(reasons.is_not_null().any()).item():
+    # other kinds and odd-but-valid frames: the exact checks, on the few rows that the
+    # plain-record check does not already pass (it costs 0.1 ms where they cost ~5 ms)
+    doubtful = rest.filter(~_plain_record_ok(f)) if n_rest else rest
+    if doubtful.height and doubtful.select(reasons.is_not_null().any()).item():
         return None
     frames = rows.select(
         "bus", "t_ns", c("id").cast(pl.UInt32), "ext", "rtr", "fd", "brs", "esi",
