@@ -36,6 +36,9 @@ class Chunk:
     bytes_read: int = 0  # bytes of the file on disk consumed so far (for progress bars)
     bus_first: dict[str, tuple[int, int]] = field(default_factory=dict)  # bus: (t_ns, line)
     bus_last: dict[str, int] = field(default_factory=dict)  # bus: last t_ns
+    #: each frame's bus as its index in the header's %bus order (u32; the fast path's, when
+    #: its frames are in this order), so writers need not look the names up again
+    frame_bus_codes: pl.Series | None = None
 
     @property
     def records(self) -> int:

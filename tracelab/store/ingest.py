@@ -211,13 +211,16 @@ def _with_physics(frames: pl.DataFrame) -> pl.DataFrame:
 class _PartWriter:
     """Writes one file's tables into a staging folder: <table>/<chunk index>.parquet."""
 
-    def __init__(self, folder: Path, run: str, file: str) -> None:
-        self.folder, self.run, self.file = folder, run, file
+    def __init__(self, folder: Path, run: str, file: str, aliases: list[str] | None = None
+                 ) -> None:
+        self.folder, self.run, self.file, self.aliases = folder, run, file, aliases or []
         with storage_guard(folder):
             for table in schema.TABLES:
                 (folder / table).mkdir()
 
     def write(self, table: str, frame: pl.DataFrame, index: int) -> None:
+        """Write one chunk's rows of ``table``; frames may carry ``bus_code``, each row's
+        bus as an index into the header's aliases (Chunk.frame_bus_codes)."""
         path = self.folder / table / f"{index}.parquet"
         with storage_guard(path):  # disk full, read-only: one line naming the path
             if table == "frames":
@@ -233,13 +236,16 @@ class _PartWriter:
         delta-encoded, no min/max of the payload bytes; readers see the schema's column types
         (no stored Arrow schema, so the dictionaries read back as strings)."""
         names = list(schema.FRAMES_STORED)
-        table = frame.select(
-            pl.col("bus").cast(pl.Categorical),
-            *(pl.col(name).cast(schema.FRAMES_STORED[name]) for name in names
-              if name not in ("run", "bus", "file"))).to_arrow()
+        table = frame.select(pl.col(name).cast(schema.FRAMES_STORED[name]) for name in names
+                             if name not in ("run", "bus", "file")).to_arrow()
         zeros = pa.array(np.zeros(frame.height, dtype=np.int32))
         constant = {name: pa.DictionaryArray.from_arrays(zeros, pa.array([value], pa.string()))
                     for name, value in (("run", self.run), ("file", self.file))}
+        if "bus_code" in frame.columns and self.aliases:
+            constant["bus"] = pa.DictionaryArray.from_arrays(
+                frame["bus_code"].cast(pl.Int32).to_arrow(), pa.array(self.aliases, pa.string()))
+        else:  # the exact path's frames: look the names up
+            constant["bus"] = frame["bus"].cast(pl.Categorical).to_arrow()
         out = pa.table([constant[name] if name in constant else table.column(name)
                         for name in names], names=names)
         pq.write_table(out, path, compression="zstd", compression_level=PARQUET_ZSTD_LEVEL,
@@ -292,13 +298,17 @@ def _ingest_file(path: Path, sha_future: Future[str], is_new: Callable[[str], bo
             summary = FileSummary(file=str(path), sha256="", bytes=path.stat().st_size,
                                   run=run_name(path, header), header=header,
                                   lines=reader.header_lines, header_lines=reader.header_lines)
-            parts = _PartWriter(folder, summary.run, summary.file)
+            parts = _PartWriter(folder, summary.run, summary.file,
+                                [b.alias for b in header.buses])
 
             def work(index: int, block: Block) -> tuple[Chunk, dict[str, int]]:
                 chunk = reader.parse(block, strict)
                 counts = {table: getattr(chunk, table).height for table in schema.TABLES}
                 if counts["frames"]:
-                    parts.write("frames", _with_physics(chunk.frames), index)
+                    frames = _with_physics(chunk.frames)
+                    if chunk.frame_bus_codes is not None:  # the fast path's, in frame order
+                        frames = frames.with_columns(bus_code=chunk.frame_bus_codes)
+                    parts.write("frames", frames, index)
                 for table in ("errors", "status", "marks", "losses", "rejects"):
                     if counts[table]:
                         parts.write(table, getattr(chunk, table), index)
