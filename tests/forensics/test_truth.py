@@ -228,14 +228,19 @@ def test_status_records_agree_with_the_replay(tmp: Path) -> None:
 
 def test_sampled_bus_time_path_gives_the_same_verdict(tmp: Path,
                                                       monkeypatch: pytest.MonkeyPatch) -> None:
-    from tracelab.forensics import replay
+    from tracelab.forensics import evidence
 
     _run(tmp, "rx-noise", 1, False)
     ds = tmp / "ds-rx-noise-1-0-0"
     cat = load_catalog(tmp / "rx-noise-1-0-0.toml")
     exact = replay_faults(open_dataset(ds).connect(), cat).as_json()["results"][0]
-    monkeypatch.setattr(replay, "SAMPLED_BY_ID_FRAMES", 0)
+    monkeypatch.setattr(evidence, "SAMPLED_BY_ID_FRAMES", 0)
+    counted = []
+    real = evidence._counted_by_id
+    monkeypatch.setattr(evidence, "_counted_by_id",
+                        lambda *a: counted.append(1) or real(*a))  # the sampled path ran
     sampled = replay_faults(open_dataset(ds).connect(), cat).as_json()["results"][0]
+    assert counted
     assert sampled["cause"] == exact["cause"]
     assert sampled["first_degraded"]["t_ns"] == exact["first_degraded"]["t_ns"]
     assert sampled["nodes"] == exact["nodes"]
