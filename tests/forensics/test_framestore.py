@@ -99,6 +99,17 @@ def test_spilled_blocks_live_in_the_scratch_folder_until_dropped(tmp_path: Path,
     assert not folder.exists()
 
 
+def test_a_scratch_folder_that_cannot_be_made_is_a_storage_error(tmp_path: Path,
+                                                                  small_blocks: None) -> None:
+    from tracelab.errors import StorageError
+
+    blocker = tmp_path / "file"
+    blocker.write_text("not a folder")
+    col = Column(np.int64, Spill(0, blocker / "scratch"))
+    with pytest.raises(StorageError, match="cannot write the replay's frame columns"):
+        col.append(np.arange(5000))
+
+
 @pytest.mark.parametrize("fault, fd", [("tx", False), ("rx", True), ("bus", False)])
 def test_replay_with_spilled_frames_equals_the_replay_in_memory(
         tmp_path: Path, monkeypatch: pytest.MonkeyPatch, fault: str, fd: bool) -> None:

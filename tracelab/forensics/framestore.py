@@ -21,6 +21,10 @@ from typing import Any
 
 import numpy as np
 
+from tracelab.store.dataset import storage_error
+
+#: What a failed write to the scratch folder was doing (StorageError, exit 5).
+SPILL_DOING = "cannot write the replay's frame columns (give --temp-dir a folder with room)"
 #: Values per block (a column buffers this many before it stores a block).
 BLOCK = 1 << 20
 #: Blocks of a spilled column kept in memory after a read.
@@ -51,9 +55,12 @@ class Spill:
     def new_file(self) -> Path:
         if self.folder is None:
             parent = self.parent
-            if parent is not None:
-                parent.mkdir(parents=True, exist_ok=True)
-            self.folder = Path(tempfile.mkdtemp(prefix="tl-frames-", dir=parent))
+            try:
+                if parent is not None:
+                    parent.mkdir(parents=True, exist_ok=True)
+                self.folder = Path(tempfile.mkdtemp(prefix="tl-frames-", dir=parent))
+            except OSError as error:
+                raise storage_error(parent or Path.cwd(), error, SPILL_DOING) from error
             weakref.finalize(self, shutil.rmtree, self.folder, True)
         self.files += 1
         return self.folder / f"{self.files}.bin"
@@ -121,10 +128,13 @@ class Column:
             return
         if self._file is None:
             self._file = self._spill.new_file()
-        with open(self._file, "ab") as out:
-            self._offsets.append(out.tell())
-            for piece in pieces:
-                piece.tofile(out)
+        try:
+            with open(self._file, "ab") as out:
+                self._offsets.append(out.tell())
+                for piece in pieces:
+                    piece.tofile(out)
+        except OSError as error:  # a full scratch disk, most likely
+            raise storage_error(self._file, error, SPILL_DOING) from error
         self._kept.append(None)
         self._blocks.append(None)
 
