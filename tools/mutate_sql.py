@@ -1,7 +1,8 @@
 """Mutation probe for the analyses' SQL (tracelab/analyses/sql/*.sql).
 
 Plants one mutation at a time (comparison operators, integer and decimal constants, +/- 1
-window arithmetic, min/max, least/greatest, floor/ceil, DESC/ASC) in the code part of one SQL
+window arithmetic, min/max, least/greatest, floor/ceil, DESC/ASC, <> -> =, arg_min/arg_max,
+a dropped NOT, IS NULL -> IS NOT NULL) in the code part of one SQL
 file (comments are left alone), serves the mutated text through
 ``tracelab.analyses.sql_text`` and runs the tests that exercise that file, in this process
 (``pytest.main`` once per mutant). A mutant is killed when the tests fail (or the SQL no
@@ -25,7 +26,10 @@ TESTS: dict[str, list[str]] = {
              "tests/analyses/test_load_bitrates.py"],
     "timing": ["tests/analyses/test_timing.py", "tests/analyses/test_ground_truth.py"],
     "gaps": ["tests/analyses/test_timing.py", "tests/analyses/test_ground_truth.py"],
+    "envelope_signal": ["tests/analyses/test_signals_report.py",
+                        "tests/analyses/test_envelopes.py"],
     "envelope": ["tests/analyses/test_envelopes.py"],
+    "signals": ["tests/analyses/test_signals.py", "tests/analyses/test_signals_report.py"],
     "macros": ["tests/test_query.py", "tests/analyses/test_envelopes.py",
                "tests/analyses/test_timing.py", "tests/test_incident_queries.py"],
 }
@@ -35,6 +39,8 @@ _SWAPS = [
     (r"(?<=\s)=(?=\s)", "<>"), (r"\+ 1\b", "- 1"), (r"- 1\b", "+ 1"),
     (r"\bmin\(", "max("), (r"\bmax\(", "min("), (r"\bleast\(", "greatest("),
     (r"\bgreatest\(", "least("), (r"\bfloor\(", "ceil("), (r"\bDESC\b", "ASC"),
+    (r"(?<=\s)<>(?=\s)", "="), (r"\barg_min\(", "arg_max("), (r"\bNOT\s+(?!NULL)", ""),
+    (r"\bIS NULL\b", "IS NOT NULL"),
 ]
 _INT = re.compile(r"(?<![\w$.])(\d+)(?![\w.])")
 _DEC = re.compile(r"(?<![\w$.])(\d+\.\d+)(?![\w.])")
@@ -44,12 +50,13 @@ _DEC = re.compile(r"(?<![\w$.])(\d+\.\d+)(?![\w.])")
 class Mutant:
     file: str
     line: int
+    column: int
     before: str
     after: str
     text: str
 
     def label(self) -> str:
-        return f"{self.file}:{self.line}: {self.before!r} -> {self.after!r}"
+        return f"{self.file}:{self.line}:{self.column}: {self.before!r} -> {self.after!r}"
 
 
 def _code_span(line: str) -> int:
@@ -78,7 +85,7 @@ def mutants_of(path: Path) -> list[Mutant]:
         for a, b, repl in sorted(set(candidates)):
             new_line = line[:a] + repl + line[b:]
             text = "".join(lines[:n] + [new_line] + lines[n + 1:])
-            out.append(Mutant(path.stem, n + 1, line[a:b], repl, text))
+            out.append(Mutant(path.stem, n + 1, a + 1, line[a:b], repl, text))
     return out
 
 

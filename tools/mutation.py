@@ -32,12 +32,15 @@ TARGETS: dict[str, tuple[str, list[str]]] = {
         "tests/analyses/test_load.py", "tests/analyses/test_load_bitrates.py",
         "tests/analyses/test_timing.py", "tests/analyses/test_envelopes.py",
         "tests/analyses/test_jobs.py", "tests/analyses/test_signals.py",
-        "tests/oracles/test_load_oracle.py",
+        "tests/oracles/test_load_oracle.py", "tests/analyses/test_compare.py",
+        "tests/analyses/test_counter_envelopes.py", "tests/analyses/test_signals_report.py",
+        "tests/fleet/test_regressions.py", "tests/analyses/test_scale_timing.py",
     ]),
     "forensics": ("tracelab/forensics/", [
         "tests/forensics/test_replay.py", "tests/forensics/test_verdict.py",
         "tests/forensics/test_truth.py", "tests/forensics/test_bitrates.py",
-        "tests/oracles/test_counter_boundaries.py",
+        "tests/forensics/test_framestore.py", "tests/forensics/test_scoring.py",
+        "tests/forensics/test_every_change.py", "tests/oracles/test_counter_boundaries.py",
     ]),
 }
 
@@ -93,11 +96,11 @@ def _status(work: Path) -> dict[str, str]:
     return status
 
 
-#: one mutant per target, tested first to make mutmut generate all mutants and collect its
-#: test statistics before a sample is drawn
+#: a few mutants per target (fnmatch patterns, as mutmut takes them), tested first to make
+#: mutmut generate all mutants and collect its test statistics before a sample is drawn
 PROBE = {"physics": "tracelab.physics.confinement.x_recovery_bits__mutmut_1",
-         "analyses": "tracelab.analyses.load.x_check_window__mutmut_1",
-         "forensics": "tracelab.forensics.evidence.x__sql__mutmut_1"}
+         "analyses": "tracelab.analyses.load.x_*__mutmut_1",
+         "forensics": "tracelab.forensics.replay.x_*__mutmut_1"}
 
 
 #: appended to the scratch copy's tests/conftest.py: no shrinking (a mutant that fails a

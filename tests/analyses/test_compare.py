@@ -134,3 +134,19 @@ def test_unknown_run_is_a_usage_error(pair: Path, capsys: pytest.CaptureFixture[
     err = capsys.readouterr().err
     assert "no run 'night-c'" in err and "night-b" in err
     assert main(["compare", str(pair / "ds"), "--run", "night-a"]) == 2
+
+
+def test_missing_frames_rule_and_the_verdict_lines() -> None:
+    from tracelab.analyses.compare import Comparison, _message_flags
+
+    # source: docs/report.md, regression rule: B at least twice A and above it by 3 frames
+    assert _message_flags({"missing": 1}, {"missing": 4}, 0.0) == ["missing"]
+    assert _message_flags({"missing": 2}, {"missing": 4}, 0.0) == []  # +2 < 3 frames
+    assert _message_flags({"missing": 3}, {"missing": 5}, 0.0) == []  # 5 < 2 x 3
+    assert _message_flags({"missing": None}, {"missing": 9}, 0.0) == []  # no reference
+    # the text names each run's first degraded node, or says none degraded
+    text = Comparison(["night-a", "night-b"], verdicts={
+        "a": {"first_degraded": {"node": "ecu_b", "bus": "can0", "state": "error-passive"}},
+        "b": None}).describe().splitlines()
+    assert text[-2:] == ["  verdict night-a: ecu_b on bus can0 degraded first (error-passive)",
+                         "  verdict night-b: no node degraded"]

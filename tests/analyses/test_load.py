@@ -43,6 +43,17 @@ def test_one_frame_every_10ms_at_500k_published_figures() -> None:
         assert result.summary["mean"].item() == pytest.approx(expected, abs=1e-12)
         assert result.windows["load_ratio"].max() == pytest.approx(expected, abs=1e-12)
         assert result.summary["frames_per_s"].item() == pytest.approx(100, rel=1e-3)
+    # source: docs/analyses.md, "Bus load": --window defaults to 100 ms
+    con = connect_tables(frames_table(t, 0x123, duration_ns=exact_bits * BIT_NS_500K,
+                                      bits=exact_bits))
+    default = bus_load(con)
+    assert default.windows["window_ns"].unique().to_list() == [100_000_000]
+    assert default.windows["t_ns"].to_list() == [k * 100_000_000 for k in range(100)]
+    # the readable table gives the loads in percent: 2.5 % (derived: 125 bits x 2 us / 10 ms)
+    head, _, row = default.describe().splitlines()[1:4]
+    cells = dict(zip([c.strip() for c in head.split("|")], [c.strip() for c in row.split("|")],
+                     strict=True))
+    assert (cells["window_ms"], cells["mean_%"], cells["max_%"]) == ("100.0", "2.5", "2.5")
     rng = np.random.default_rng(0)  # no 8-byte payload exceeds the published worst case
     payloads = [bytes(rng.integers(0, 256, 8, dtype=np.uint8)) for _ in range(200)]
     assert max(_frame_bits_of(0x123, p) for p in payloads + [b"\x00" * 8, b"\xff" * 8]) <= 135

@@ -275,3 +275,37 @@ def test_counter_wrap_is_explained_by_the_gap() -> None:
     # derived: a 4-bit counter wraps every 16 releases; 15 + 1 = 16 = 0 and 16 + 1 = 1 mod 16
     assert found.select("t_ns", "kind", "count").rows() == [
         (180, "counter-lost", 15), (350, "counter-lost", 16), (360, "counter-repeat", None)]
+
+
+def test_plain_signal_names_of_a_message_whose_name_has_a_dot(tmp_path: Path) -> None:
+    """A message name may hold dots (the catalog takes any name without blanks); the plain
+    signal name is the signal's own name, not what follows the first dot of message.signal."""
+    from tracelab.analyses.signals import select_signals
+    from tracelab.network.catalog import load_catalog
+
+    text = CATALOG.replace('name = "coolant_loop"', 'name = "coolant.loop"')
+    (tmp_path / "net.toml").write_text(text, encoding="utf-8")
+    catalog = load_catalog(tmp_path / "net.toml")
+    (msg, chosen), = select_signals(catalog, ["coolant_temp"])
+    assert (msg.label, [s.name for s in chosen]) == ("coolant.loop", ["coolant_temp"])
+    (msg, chosen), = select_signals(catalog, ["coolant.loop.alive"])
+    assert [s.name for s in chosen] == ["alive"]
+    with pytest.raises(UsageError, match="did you mean 'coolant_temp'"):
+        select_signals(catalog, ["coolant_tmp"])
+
+
+def test_decode_signals_decodes_only_the_named_ones(dataset: tuple[Path, Path]) -> None:
+    from tracelab.analyses.signals import decode_signals
+    from tracelab.network.catalog import load_catalog
+
+    ds, cat = dataset
+    con = open_session(ds)
+    try:
+        got = decode_signals(con, load_catalog(cat), names=["coolant_temp"])
+        # one value per 8-byte frame of 0x310 (the catalog's length), counted in SQL here
+        (frames,) = con.sql("SELECT count(*) FROM frames WHERE id = 784 AND NOT ext "
+                            "AND octet_length(data) = 8").fetchall()[0]
+    finally:
+        con.close()
+    assert got["signal"].unique().to_list() == ["coolant_temp"]
+    assert got.height == frames > 0

@@ -131,6 +131,13 @@ def test_catalog_periods_drift_and_node_median() -> None:
     assert abs(nodes["ecu_a"]["drift_ppm"] - 35.0) < 2.0
     assert result.unseen["id"].to_list() == [0x40]
     assert result.unknown["id"].to_list() == [0x7FF]
+    # the readable summary has the per-sender drift table when the catalog names senders,
+    # and not without a catalog (no sender, no per-node drift)
+    text = result.describe()
+    assert "clock drift per sender" in text
+    drift_part = text.split("clock drift per sender", 1)[1].split("not in the catalog")[0]
+    assert "ecu_a" in drift_part and "ecu_b" in drift_part
+    assert "clock drift per sender" not in timing(con).describe()
 
 
 def test_gaps_rows_and_logger_loss() -> None:

@@ -100,7 +100,7 @@ def select_signals(catalog: Catalog, names: list[str] | None = None
     message.signal names; a selected multiplexed signal brings its selector along)."""
     chosen = []
     known = [f"{m.label}.{s.name}" for m in catalog.messages for s in m.signals]
-    plain = {k.split(".", 1)[1] for k in known}
+    plain = {s.name for m in catalog.messages for s in m.signals}  # message names may hold dots
     for name in names or []:
         if name not in plain and name not in known:
             raise UsageError(f"--signal {name!r} is not a catalogued signal"
