@@ -223,28 +223,13 @@ def analyse(ev: BusEvidence, gaps: pl.DataFrame | None, cat: CatalogView,
     first = base if attributed else [
         _logged(replay_node(src, n, True, config, keep_rows=False), keep)
         for n in range(len(ev.nodes))]
-    fills: dict[int, str] = {}
-    if walk is not None and not attributed:
-        first, fills = _profile_losses(ev, first, config)
     silences = node_silences(ev, gaps, cat.keys)
     floods = find_floods(ev, cat.periods)
     hyps = candidates(ev, base, first, silences, floods)
-    others: dict[str, list[NodeReplay]] = {}
-    for h in hyps:
-        if h.kind == "receive-fault" and h.node in fills:
-            h.facts["fill"] = fills[h.node]
-            if fills[h.node] != "rate":
-                # every node of the hypothesis through the same reading of the losses
-                mode = fills[h.node]
-                if mode not in others:
-                    alt = _loss_reading(ev, mode)
-                    others[mode] = [
-                        _logged(replay_node(alt if alt is not None else ev, m, False, config),
-                                original_rows(alt) if alt is not None else None)
-                        for m in range(len(ev.nodes))]
-                h.replays = [rep if m == h.node else others[mode][m]
-                             for m, rep in enumerate(h.replays)]
-    score(ev, hyps, silences)
+    readings = _loss_variants(ev, hyps, config) if walk is not None and not attributed else []
+    score(ev, hyps + readings, silences)
+    if readings:
+        hyps = _best_readings(hyps, readings)
     # ties (to rounding): a cut-off node before a plain silence, since only the former makes
     # rule-based predictions (docs/forensics.md); otherwise the order of candidates()
     hyps.sort(key=lambda h: (-round(h.score, 6), 0 if h.facts.get("far_side") else 1))
@@ -256,44 +241,57 @@ def analyse(ev: BusEvidence, gaps: pl.DataFrame | None, cat: CatalogView,
 LOSS_READINGS = ("rate", "upper", "none")
 
 
-def _leaks(ev: BusEvidence, rep: NodeReplay, n: int) -> int:
-    """Errors on other nodes' frames while node n is replayed error-passive or bus-off (a
-    receive fault in n predicts none: its flags are recessive then)."""
-    errors = ev.events.with_row_index("k").filter(pl.col("kind") == KIND_ERROR)
-    if len(rep.state_before) != ev.events.height or errors.height == 0:
-        return 0
-    st = np.asarray(rep.state_before, dtype=object)[errors["k"].to_numpy()]
-    tx = errors["tx"].to_numpy()
-    return int((np.isin(st, ["error-passive", "bus-off"]) & (tx >= 0) & (tx != n)).sum())
-
-
 def _loss_reading(ev: BusEvidence, mode: str) -> BusEvidence | None:
     return None if mode == "none" else filled_evidence(ev, mode)
 
 
-def _profile_losses(ev: BusEvidence, first: list[NodeReplay], config: ConfinementConfig
-                    ) -> tuple[list[NodeReplay], dict[int, str]]:
+def _loss_variants(ev: BusEvidence, hyps: list[Hypothesis],
+                   config: ConfinementConfig) -> list[Hypothesis]:
     """Through a logger loss the counters a receive fault leaves are unknown: the loss may
     have held few errors or many, and a node can even have gone bus-off and recovered inside
-    it. Each receive-fault replay takes the reading of the losses (LOSS_READINGS) under which
-    it fits the logged errors best, i.e. leaves the fewest errors on others' frames while it
-    is replayed passive (the counters at the loss's end are a nuisance parameter, profiled
-    out); ties keep the earlier reading."""
-    best = list(first)
-    fills = {n: "rate" for n in range(len(first))}
-    leaks = [_leaks(ev, rep, n) for n, rep in enumerate(first)]
+    it. Each receive-fault hypothesis is also replayed, every node of it, through the other
+    readings of the losses (LOSS_READINGS); _best_readings keeps the one that explains the
+    log best (the counters at the loss's end are a nuisance parameter, profiled out)."""
+    rx = [h for h in hyps if h.kind == "receive-fault" and h.node is not None]
+    out: list[Hypothesis] = []
+    if not rx:
+        return out
     for mode in LOSS_READINGS[1:]:  # loop over two more readings
-        src = _loss_reading(ev, mode)
-        keep = original_rows(src) if src is not None else None
-        for n in range(len(first)):  # loop over nodes
-            if leaks[n] == 0:
-                continue
-            rep = _logged(replay_node(src if src is not None else ev, n, True, config,
-                                      keep_rows=False), keep)
-            k = _leaks(ev, rep, n)
-            if k < leaks[n]:
-                best[n], fills[n], leaks[n] = rep, mode, k
-    return best, fills
+        alt = _loss_reading(ev, mode)
+        src = alt if alt is not None else ev
+        keep = original_rows(alt) if alt is not None else None
+        base = [_logged(replay_node(src, m, False, config), keep) for m in range(len(ev.nodes))]
+        for h in rx:  # loop over the receive-fault hypotheses (one per node)
+            assert h.node is not None
+            reps = list(base)
+            reps[h.node] = _logged(replay_node(src, h.node, True, config, keep_rows=False), keep)
+            v = Hypothesis(h.name, h.kind, h.node, reps, prior=h.prior)
+            v.facts = {**h.facts, "fill": mode}
+            out.append(v)
+    return out
+
+
+def _best_readings(hyps: list[Hypothesis], readings: list[Hypothesis]) -> list[Hypothesis]:
+    """Per receive-fault hypothesis the reading of the losses with the highest likelihood
+    (ties keep the earlier reading of LOSS_READINGS), posteriors renormalised over what is
+    kept."""
+    best: dict[str, Hypothesis] = {}
+    for h in hyps + readings:  # the most likely reading comes first in hyps
+        if h.kind != "receive-fault":
+            continue
+        h.facts.setdefault("fill", "rate")
+        if h.name not in best or h.loglik > best[h.name].loglik:
+            best[h.name] = h
+    kept = [best[h.name] if h.kind == "receive-fault" else h for h in hyps]
+    finite = [h.loglik + math.log(h.prior) for h in kept if math.isfinite(h.loglik)]
+    if finite:
+        top = max(finite)
+        weights = [math.exp(h.loglik + math.log(h.prior) - top) if math.isfinite(h.loglik)
+                   else 0.0 for h in kept]
+        total = sum(weights)
+        for h, w in zip(kept, weights, strict=True):
+            h.score = w / total
+    return kept
 
 
 def _logged(rep: NodeReplay, keep: np.ndarray | None) -> NodeReplay:
