@@ -73,8 +73,8 @@ def _rx_behind_a_loss(seed: int, extra: int) -> tuple[synth.Synth, int]:
 @pytest.mark.parametrize("extra", [200, 600])
 def test_a_receive_fault_behind_a_logger_loss_is_read_through_the_loss(
         extra: int, monkeypatch: pytest.MonkeyPatch) -> None:
-    # derived: the counters at the loss's end are unknown; the receive-fault reading takes the
-    # loss reading under which its node's passive phases hold no errors on others' frames
+    # derived: the counters at the loss's end are unknown; the receive-fault hypothesis takes
+    # the reading of the loss under which it explains the logged errors best
     s, _ = _rx_behind_a_loss(12, extra)
     v = replay_faults(s.connect(), synth.catalog()).as_json()["results"][0]
     assert v["cause"] == {"kind": "receive-fault", "node": "charlie"}
