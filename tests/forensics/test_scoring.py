@@ -100,8 +100,8 @@ def test_an_unidentified_error_can_belong_to_the_back_to_back_run_after_it() -> 
 
     import polars as pl
 
+    from tracelab.forensics.bounds import GUESS_RUN_FRAMES, guess_candidates
     from tracelab.forensics.evidence import KIND_ERROR
-    from tracelab.forensics.verdict import GUESS_RUN_FRAMES, _guess_candidates
 
     bit = 2000.0  # ns at 500 kbit/s
     frame = 125 * bit
@@ -113,11 +113,11 @@ def test_an_unidentified_error_can_belong_to_the_back_to_back_run_after_it() -> 
         frames_by_id=pl.DataFrame({"busy_ns": [5 * frame], "frames": [5]}),
         events=pl.DataFrame({"kind": [KIND_ERROR], "t_ns": [int(0.5 * frame)]},
                             schema={"kind": pl.Int8, "t_ns": pl.Int64}))
-    cand = _guess_candidates(cast(Any, ev), np.array([int(0.5 * frame)], dtype=np.int64))
+    cand = guess_candidates(cast(Any, ev), np.array([int(0.5 * frame)], dtype=np.int64))
     assert cand.shape == (1, GUESS_RUN_FRAMES)
     assert cand[0].tolist()[:4] == [2, 1, 3, -1]  # the run stops at the idle
     # an error right before the idle: nothing follows back to back except the next frame
-    late = _guess_candidates(cast(Any, ev), np.array([int(3.2 * frame)], dtype=np.int64))
+    late = guess_candidates(cast(Any, ev), np.array([int(3.2 * frame)], dtype=np.int64))
     assert late[0].tolist()[0] == -1  # the next frame is 1 ms away: anyone
 
 
@@ -128,14 +128,14 @@ def test_a_whole_bus_verdict_that_leaves_an_onset_run_unexplained_is_not_confide
     # every sender's frames are missing too, its score is capped
     from typing import Any, cast
 
+    from tracelab.forensics.bounds import ONSET_UNEXPLAINED_SCORE, calibrated_score
     from tracelab.forensics.hypotheses import Hypothesis
-    from tracelab.forensics.verdict import ONSET_UNEXPLAINED_SCORE, _calibrated
 
     h = Hypothesis("bus-disturbance", "bus-disturbance", None, [])
     h.score = 1.0
     ev = cast(Any, None)
-    assert _calibrated(ev, h, [h], None, False, False, [], []) == 1.0
+    assert calibrated_score(ev, h, [h], None, False, False, [], []) == 1.0
     h.facts["onset_cuts"] = 1
-    assert _calibrated(ev, h, [h], None, False, False, [], []) == 1.0  # CRC errors seen
+    assert calibrated_score(ev, h, [h], None, False, False, [], []) == 1.0  # CRC errors seen
     h.parts["types"] = -40.0  # no CRC error on the other senders' frames
-    assert _calibrated(ev, h, [h], None, False, False, [], []) == ONSET_UNEXPLAINED_SCORE < 0.9
+    assert calibrated_score(ev, h, [h], None, False, False, [], []) == ONSET_UNEXPLAINED_SCORE < 0.9

@@ -6,7 +6,6 @@ object ``tracelab faults --json`` prints (the shape is spec: issue 5, section 2)
 
 from __future__ import annotations
 
-import dataclasses
 import math
 from dataclasses import dataclass
 from typing import Any
@@ -15,6 +14,7 @@ import duckdb
 import numpy as np
 import polars as pl
 
+from tracelab.forensics.bounds import bound_first, calibrated_score
 from tracelab.forensics.evidence import (
     ASSUMED_BPS,
     KIND_ERROR,
@@ -23,10 +23,10 @@ from tracelab.forensics.evidence import (
     evidence_window,
     frames_by_id,
     load_bus_evidence,
-    prepare_counts,
     run_buses,
     single_pair,
 )
+from tracelab.forensics.explain import assumptions, describe_results, evidence_json, sentence, why
 from tracelab.forensics.hypotheses import (
     MIN_ERRORS,
     PASSIVE_BOUNDARY_ERRORS,
@@ -38,9 +38,15 @@ from tracelab.forensics.hypotheses import (
     node_silences,
     score,
 )
-from tracelab.forensics.losses import filled_evidence, loss_before, original_rows
+from tracelab.forensics.losses import filled_evidence, original_rows
 from tracelab.forensics.replay import NodeReplay, replay_node
-from tracelab.forensics.steps import every_change
+from tracelab.forensics.tables import (
+    COUNTERS_SCHEMA,
+    NODE_STATES_SCHEMA,
+    counters_frame,
+    states_frame,
+    verdicts_frame,
+)
 from tracelab.format.grammar import wall_time
 from tracelab.physics.confinement import DEFAULT_CONFIG, ConfinementConfig
 
@@ -49,8 +55,6 @@ MIN_CONFIDENCE = 0.4
 #: The catalog must know at least this share of the logged identifiers, and this share of its
 #: identifiers must be in the log, before a node is named.
 CATALOG_MATCH_MIN = 0.5
-#: The confidence falls with the width of [earliest_ns, latest_ns]: halved at this width.
-HALF_CONFIDENCE_WIDTH_NS = 50_000_000
 #: A reading of the evidence within this factor of the best is stated as an alternative.
 ALTERNATIVE_RATIO = 0.2
 #: Errors before (after) a node-specific winner's onset that make the earlier (later) window
@@ -58,26 +62,10 @@ ALTERNATIVE_RATIO = 0.2
 WINDOW_MIN_ERRORS = 8
 #: Errors in the run that marks a node's transmit-side onset (at least 60 % on its frames).
 SEGMENT_RUN = 30
-#: The score of a whole-bus verdict whose log holds a transmit-side onset run (SEGMENT_RUN)
-#: that no window explained and whose errors lack the CRC errors a whole-bus disturbance
-#: leaves on every sender's frames: two signs against the whole bus. (Onset runs alone come
-#: by chance under a busy whole-bus disturbance: the run test is scanned over every error
-#: and node.)
-ONSET_UNEXPLAINED_SCORE = 0.5
 #: A window's receive-fault verdict counts only when its node was error-passive over at least
 #: this many frames there (otherwise it predicts nothing the whole-bus reading does not).
 PASSIVE_MIN_FRAMES = 20
 
-COUNTERS_SCHEMA = {"run": pl.String, "bus": pl.String, "node": pl.String, "t_ns": pl.Int64,
-                   "tec": pl.Int32, "rec": pl.Int32, "state": pl.String, "cause": pl.String,
-                   "uncertain": pl.Boolean, "hypothesis": pl.String}
-NODE_STATES_SCHEMA = {"run": pl.String, "bus": pl.String, "node": pl.String,
-                      "state": pl.String, "from_ns": pl.Int64, "to_ns": pl.Int64,
-                      "hypothesis": pl.String}
-VERDICTS_SCHEMA = {"run": pl.String, "bus": pl.String, "cause_kind": pl.String,
-                   "cause_node": pl.String, "first_node": pl.String, "first_state": pl.String,
-                   "first_t_ns": pl.Int64, "wall_time": pl.String, "confidence": pl.Float64,
-                   "winner": pl.String, "runner_up": pl.String, "errors": pl.Int64}
 
 #: The assumption a result lists when neither the catalog nor the log names the bit rate.
 ASSUMED_RATE_START = "nominal bit rate of bus"
@@ -189,12 +177,12 @@ def replay_faults(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run: str
         if ev.bit_rate_source == "assumed":
             result["assumptions"].append(ASSUMED_RATE.format(bus=bus, kbps=ASSUMED_BPS // 1000))
         results.append(result)
-        counters.append(_counters_frame(ev, winner, config))
-        states.append(_states_frame(ev, winner))
+        counters.append(counters_frame(ev, winner, config))
+        states.append(states_frame(ev, winner))
         del ev, winner  # this bus's frames (and their scratch files) go before the next loads
     counters_df = pl.concat(counters) if counters else pl.DataFrame(schema=COUNTERS_SCHEMA)
     states_df = pl.concat(states) if states else pl.DataFrame(schema=NODE_STATES_SCHEMA)
-    return FaultsResult(results, counters_df, states_df, _verdicts_frame(results), frames, events)
+    return FaultsResult(results, counters_df, states_df, verdicts_frame(results), frames, events)
 
 
 @dataclass
@@ -481,10 +469,10 @@ def bus_verdict(ev: BusEvidence, origin: str | None, gaps: pl.DataFrame | None,
         elif thin:
             cause["reason"] = "evidence too thin"
     if first_deg is not None and first_deg.get("state") != "silent":
-        _bound_first(ev, cause_h, first_deg, config)
+        bound_first(ev, cause_h, first_deg, config)
     for h in hyps:
-        h.why = _why(ev, h, hyps[0])
-    conf = _calibrated(ev, cause_h, hyps, first_deg, thin, clean, alternatives, findings)
+        h.why = why(ev, h, hyps[0])
+    conf = calibrated_score(ev, cause_h, hyps, first_deg, thin, clean, alternatives, findings)
     if first_deg is not None and first_deg.get("state") != "silent" \
             and cause_h.facts.get("far_side") and cause_h.node is not None \
             and first_deg["node"] == ev.nodes[cause_h.node]:
@@ -504,14 +492,14 @@ def bus_verdict(ev: BusEvidence, origin: str | None, gaps: pl.DataFrame | None,
                        for h in hyps],
         "nodes": [_node_json(rep) for rep in winner.replays],
         "status_agreement": _status_agreement(winner.replays),
-        "assumptions": _assumptions(config, attributed_everywhere, winner),
-        "verdict": _sentence(ev, cause, first_deg, hyps, thin, clean, cause_h, alternatives,
+        "assumptions": assumptions(config, attributed_everywhere, winner),
+        "verdict": sentence(ev, cause, first_deg, hyps, thin, clean, cause_h, alternatives,
                              findings, conf)
         + (f" The catalog names the sender of only {known_tx} of {n_errors} errored frames"
            f" ({len(ev.nodes)} nodes on bus {ev.bus}); check --catalog." if blind else ""),
         "runner_up": ({"name": hyps[1].name, "score": round(hyps[1].score, 4),
                        "why": hyps[1].why} if len(hyps) > 1 else None),
-        "evidence": _evidence(ev, winner, silences, first_deg),
+        "evidence": evidence_json(ev, winner, silences, first_deg),
         "findings": findings,
         "alternatives": alternatives,
         "catalog_match": catalog_match,
@@ -642,163 +630,6 @@ def _silent_reading(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Sile
     return first, alts
 
 
-def _bound_first(ev: BusEvidence, h: Hypothesis, first: dict[str, Any],
-                 config: ConfinementConfig) -> None:
-    """earliest_ns / latest_ns of the first degradation through logger losses before it:
-    the reading with as many errors as each loss can hold, and the one with none."""
-    t = int(first["t_ns"])
-    first["earliest_ns"] = first["latest_ns"] = t
-    n = ev.node_index(first["node"])
-    if n < 0:
-        return
-    bonus = h.kind == "receive-fault" and h.node == n
-    _bound_guessed(ev, n, bonus, first, config)
-    if loss_before(ev, t + 1) is None:
-        return
-    tx = h.node if h.kind in ("transmit-fault", "isolation") else None
-    up = filled_evidence(ev, "upper", tx, t)
-    readings = [t]
-    for src in (up, ev):
-        if src is None:
-            continue
-        rep = replay_node(src, n, bonus, config, keep_rows=False)
-        tr = rep.first_degradation()
-        if tr is not None:
-            readings.append(int(tr["t_ns"]))
-    lo = loss_before(ev, t + 1)
-    earliest = max(min(readings), lo[0]) if lo and min(readings) < t else min(readings)
-    widened = earliest < int(first["earliest_ns"]) or max(readings) > int(first["latest_ns"])
-    first["earliest_ns"] = min(earliest, int(first["earliest_ns"]))
-    first["latest_ns"] = max(max(readings), int(first["latest_ns"]))
-    first["uncertain"] = first["earliest_ns"] != first["latest_ns"]
-    if widened:
-        first.setdefault("bounds_from", []).append("a logger loss")
-
-
-#: At most this many frames of the back-to-back run after an unidentified error are taken as
-#: its possible retransmission (docs/forensics.md section 2 gives the coverage on the sweep).
-GUESS_RUN_FRAMES = 6
-
-
-def _guess_candidates(ev: BusEvidence, t_ns: np.ndarray) -> np.ndarray:
-    """Per error whose frame the logger could not identify: the transmitters it can have had,
-    one column per frame of the run that follows it (-1 past the run's end).
-
-    A destroyed frame is retransmitted at the next bus idle (ISO 11898-1 automatic
-    retransmission) and wins arbitration again unless frames of higher priority were released
-    meanwhile; those go first, back to back, and the retransmission follows them. A bus idle
-    ends that: the pending retransmission would have started in it. So the candidates are the
-    senders of the frames that follow the error back to back (each within the longest frame
-    of the bus and an 11-bit gap, an error-passive transmitter's suspend time and the
-    intermission, of the one before), up to GUESS_RUN_FRAMES.
-    """
-    ft, fn = ev.frame_t, ev.frame_node
-    out = np.full((t_ns.size, GUESS_RUN_FRAMES), -1, dtype=np.int64)
-    if ft.size == 0 or t_ns.size == 0:
-        return out
-    by_id = ev.frames_by_id
-    per_frame = (by_id["busy_ns"].cast(pl.Float64)
-                 / by_id["frames"].cast(pl.Float64).clip(1)).to_numpy()
-    longest = float(np.nanmax(per_frame)) if per_frame.size else 0.0
-    reach = longest + 11 * ev.bit_ns
-    # an error frame in between keeps the bus busy too: up to a frame and 31 bits more each
-    # (flag superposed 12, delimiter 8, intermission 3, suspend 8)
-    err_t = np.sort(ev.events.filter(pl.col("kind") == KIND_ERROR)["t_ns"].to_numpy())
-    per_error = longest + 31 * ev.bit_ns
-    i = ft.searchsorted(t_ns, side="right")
-    alive = i < ft.size
-    for k in range(GUESS_RUN_FRAMES):  # loop over a few positions in the run
-        j = np.minimum(i + k, ft.size - 1)
-        if k:
-            prev = np.minimum(i + k - 1, ft.size - 1)
-            between = (np.searchsorted(err_t, ft[j], side="left")
-                       - np.searchsorted(err_t, ft[prev], side="right"))
-            alive &= (i + k < ft.size) & (ft[j] - ft[prev] <= reach + between * per_error)
-        else:  # from the error itself to the first frame after it
-            first_gap = ft[j] - t_ns
-            between = (np.searchsorted(err_t, ft[j], side="left")
-                       - np.searchsorted(err_t, t_ns, side="right"))
-            alive &= first_gap <= reach + (between + 1) * per_error
-        out[:, k] = np.where(alive, fn[j], -1)
-    return out
-
-
-def _bound_guessed(ev: BusEvidence, n: int, bonus: bool, first: dict[str, Any],
-                   config: ConfinementConfig) -> None:
-    """Errors whose transmitter was guessed (flag inside the identifier): the first
-    degradation of node n with every such error that n can have sent charged to n, and with
-    only those that nobody else can have sent (_guess_candidates); the others go to another
-    candidate."""
-    t = int(first["t_ns"])
-    if "tx_inferred" not in ev.events.columns:
-        return
-    guessed_np = (ev.events["tx_inferred"].fill_null(False).to_numpy()
-                  & (ev.events["t_ns"].to_numpy() <= t))
-    if not guessed_np.any():
-        return
-    cand = _guess_candidates(ev, ev.events["t_ns"].to_numpy()[guessed_np].astype(np.int64))
-    tx_now = ev.events["tx"].to_numpy().astype(np.int64)
-    is_n = cand == n
-    someone = (cand >= 0) & ~is_n
-    # n is one of those it can have been (or nothing follows back to back: anyone)
-    may = is_n.any(axis=1) | (cand[:, 0] < 0)
-    must = may & ~someone.any(axis=1)   # n and nobody else
-    # someone else it can have been (the first such in the run)
-    other = np.where(someone.any(axis=1), cand[np.arange(cand.shape[0]),
-                                                someone.argmax(axis=1)], -1)
-    times = []
-    for charge in (np.where(may, n, tx_now[guessed_np]),
-                   np.where(must, n, np.where(may, other, tx_now[guessed_np]))):
-        tx_alt = tx_now.copy()
-        tx_alt[guessed_np] = charge
-        if np.array_equal(tx_alt, tx_now):
-            continue
-        alt = ev.events.with_columns(pl.Series("tx", tx_alt, dtype=pl.Int16))
-        src = dataclasses.replace(ev, events=alt, _recovery_cache={})
-        prepare_counts(src)
-        tr = replay_node(src, n, bonus, config, keep_rows=False).first_degradation()
-        if tr is not None:
-            times.append(int(tr["t_ns"]))
-    if times:
-        first["earliest_ns"] = min(times + [t])
-        first["latest_ns"] = max(times + [t])
-        first["uncertain"] = first["earliest_ns"] != first["latest_ns"]
-        if first["uncertain"]:
-            first.setdefault("bounds_from", []).append(
-                "errors whose frame the logger could not identify")
-
-
-def _calibrated(ev: BusEvidence, h: Hypothesis, hyps: list[Hypothesis],
-                first: dict[str, Any] | None, thin: bool, clean: bool,
-                alternatives: list[dict[str, Any]], findings: list[dict[str, Any]]) -> float:
-    """The verdict's score: the posterior of what it states, lowered by what the sweep
-    (bench/forensics_sweep.py, docs/forensics.md) shows to be less reliable."""
-    if clean:
-        return 1.0
-    if alternatives:
-        p = sum(a["score"] for a in alternatives)
-    else:
-        p = h.score
-    if thin:
-        p = min(p, 0.5)
-    if h.kind == "bus-disturbance" and h.facts.get("onset_cuts") and h.parts.get("types", 0) < 0:
-        p = min(p, ONSET_UNEXPLAINED_SCORE)
-    if first is not None:
-        width = int(first.get("latest_ns", first["t_ns"])) - int(first.get("earliest_ns",
-                                                                         first["t_ns"]))
-        # a logger loss before the first degradation hid errors: the hypotheses were scored
-        # on part of the evidence, and the wider the loss's reach the less the rest says.
-        # Bounds from unidentified frames hide nothing (every error is logged, only its
-        # sender is in doubt among the frames that follow it): they do not lower the score.
-        lost = ("a logger loss" in (first.get("bounds_from") or [])
-                or loss_before(ev, int(first.get("latest_ns", first["t_ns"])) + 1) is not None)
-        if first.get("state") != "silent" and width > 0 and lost:
-            p *= HALF_CONFIDENCE_WIDTH_NS / (HALF_CONFIDENCE_WIDTH_NS + width)
-            if "a logger loss" not in first.setdefault("bounds_from", []):
-                first["bounds_from"].append("a logger loss")
-    return round(float(min(max(p, 0.0), 1.0)), 3)
-
-
 def _first_degraded(ev: BusEvidence, h: Hypothesis, silences: list[Silence],
                     origin: str | None) -> dict[str, Any] | None:
     best: tuple[int, str, str] | None = None
@@ -841,286 +672,4 @@ def _status_agreement(replays: list[NodeReplay]) -> dict[str, Any] | None:
         "ratio": round(same_state / len(checks), 4),
     }
 
-
-def _assumptions(config: ConfinementConfig, attributed: bool, h: Hypothesis) -> list[str]:
-    out = [
-        "rules: ISO 11898-1 fault confinement (tracelab/physics/confinement.py RULES)",
-        f"warning limit {config.warning_level} ({'>=' if config.warning_inclusive else '>'})",
-        f"REC above 127 set to {config.rec_after_passive_reception} by a good reception",
-        f"bus-off recovery: {config.recovery}"
-        + (f" after {config.recovery_delay_ns} ns" if config.recovery == "software" else "")
-        + ", 128 x 11 recessive bits (one per error-free frame end, more from idle time)",
-        "transmitter of an errored frame: the catalog sender of the frame in progress",
-        "ACK errors concern the transmitter only; an error-passive transmitter sees no "
-        "dominant bit in its passive flag (rule c exception 1 applies)",
-        "rule c exception 2 (stuff error on a recessive stuff bit in arbitration) is not "
-        "applied: the log does not show the bit; such errors count +8",
-        "the log shows every error frame that destroyed a frame; errors only one node saw "
-        "while error-passive are invisible",
-    ]
-    if attributed:
-        out.append("first detector: from the error records (by)")
-    elif h.kind == "receive-fault" and h.node is not None:
-        out.append(f"first detector of unattributed errors: {h.replays[h.node].node} "
-                   "while it could send an active error flag (the winning hypothesis)")
-    else:
-        out.append("first detector of unattributed errors: unknown, no rule-b bonus given "
-                   "(receivers +1 only)")
-    return out
-
-
-def _why(ev: BusEvidence, h: Hypothesis, best: Hypothesis) -> str:
-    facts = h.facts
-    n_err = facts.get("errors", 0)
-    name = ev.nodes[h.node] if h.node is not None else None
-    if h.kind == "bus-disturbance":
-        text = (f"errors spread over senders by bus time; {n_err} errored frames with a known "
-                "sender" + _spread(ev))
-    elif h.kind == "transmit-fault":
-        text = (f"errors on {name}'s frames only: {facts['own_errors']} of {n_err} were "
-                f"({facts['own_frames']} good frames of its own)")
-    elif h.kind == "isolation" and facts.get("far_side"):
-        rep = h.replays[h.node] if h.node is not None else None
-        tr = rep.first_degradation() if rep else None
-        when = f"; it would reach {tr['to']} at {tr['t_ns'] / 1e9:.6f} s" if tr else ""
-        text = (f"{name} cut off on the far side of the logger: its frames vanish and its ACK "
-                f"errors go unseen{when}; a node that simply stopped looks the same unless "
-                "ESI bits or status records after its return tell them apart")
-    elif h.kind == "isolation":
-        text = f"ACK errors on {name}'s frames only: {facts['own_ack']} of {n_err} were"
-    elif h.kind == "receive-fault":
-        rep = h.replays[h.node] if h.node is not None else None
-        tr = rep.first_degradation() if rep else None
-        reach = f"reaches {tr['to']} at {tr['t_ns'] / 1e9:.6f} s" if tr else "never degrades"
-        text = f"{name} as first detector {reach}"
-        if facts.get("passive_frames", 0) or facts.get("after_passive", 0):
-            text += (f"; while it was error-passive {facts.get('after_passive_own', 0)} of "
-                     f"{facts.get('after_passive', 0)} errors fell on its own frames "
-                     f"(predicted: all) over {facts.get('passive_frames', 0)} frames")
-        else:
-            text += ", so it predicts nothing the whole-bus explanation does not"
-    elif h.kind == "flood" and h.flood is not None:
-        f = h.flood
-        rate = f.frames / max(1e-9, (f.to_ns - f.from_ns) / 1e9)
-        text = (f"identifier {f.id:03X} sent {f.frames} times from {f.from_ns / 1e9:.3f} s to "
-                f"{f.to_ns / 1e9:.3f} s ({rate:.0f}/s), "
-                + (f"{f.frames / f.catalog_frames:.0f} x its catalog rate"
-                   if f.catalog_frames else "an identifier the catalog does not list")
-                + (f", sent by {ev.nodes[f.sender]}" if f.sender >= 0 else ", sender unknown")
-                + "; the silences of lower-priority messages in that window follow from it")
-    else:
-        text = f"{name} fell silent with no errors explaining it"
-    parts = ", ".join(f"{k} {v:.1f}" for k, v in h.parts.items() if v)
-    if not math.isfinite(h.loglik):
-        return text + "; ruled out: the error rates do not differ by the factor it predicts"
-    text += f"; log-likelihood {h.loglik:.1f}" + (f" ({parts})" if parts else "")
-    if h is not best:
-        text += f", {best.loglik + _log(best.prior) - h.loglik - _log(h.prior):.1f} below the best"
-    return text
-
-
-def _spread(ev: BusEvidence) -> str:
-    """'; most on X: k of n errors for p % of the bus time' (the sender furthest above its
-    share)."""
-    tx = ev.events.filter(pl.col("kind") == KIND_ERROR)["tx"].to_numpy()
-    tx = tx[tx >= 0]
-    if tx.size == 0 or not ev.nodes:
-        return ""
-    counts = np.bincount(tx, minlength=len(ev.nodes))
-    n = int(np.argmax(counts / tx.size - ev.share))
-    return (f"; most above its share: {ev.nodes[n]} with {int(counts[n])} of {tx.size} errors "
-            f"for {ev.share[n]:.0%} of the bus time")
-
-
-def _log(x: float) -> float:
-    return math.log(x) if x > 0 else float("-inf")
-
-
-def _sentence(ev: BusEvidence, cause: dict[str, Any], first: dict[str, Any] | None,
-              hyps: list[Hypothesis], thin: bool, clean: bool, h: Hypothesis | None = None,
-              alternatives: list[dict[str, Any]] | None = None,
-              findings: list[dict[str, Any]] | None = None, conf: float | None = None) -> str:
-    if clean:
-        return f"{ev.run}/{ev.bus}: clean bus, no error frames and no unexplained silences."
-    h = h or hyps[0]
-    when = ""
-    if first and first.get("earliest_ns", first["t_ns"]) != first.get("latest_ns",
-                                                                       first["t_ns"]):
-        why = " and ".join(first.get("bounds_from") or ["a logger loss"])
-        when = (f" (between {first['earliest_ns'] / 1e9:.6f} s and "
-                f"{first['latest_ns'] / 1e9:.6f} s: {why})")
-    if first and first["state"] == "silent":
-        lead = (f"{first['node']} fell silent at {first['t_ns'] / 1e9:.6f} s"
-                + (f" ({first['wall_time']})" if first.get("wall_time") else "") + when)
-    elif first:
-        lead = (f"{first['node']} degraded first: {first['state']} at "
-                f"{first['t_ns'] / 1e9:.6f} s"
-                + (f" ({first['wall_time']})" if first.get("wall_time") else "") + when)
-    elif h.kind == "flood":
-        lead = "no node left error-active"
-    else:
-        lead = "no node left error-active in the replay"
-    if thin:
-        reason = cause.get("reason", "evidence too thin")
-        return (f"{ev.run}/{ev.bus}: {lead}. Cause unknown: {reason} "
-                f"(best: {hyps[0].name}, score {hyps[0].score:.2f}).")
-    f = h.flood
-    what = {"bus-disturbance": "a disturbance of the whole bus",
-            "receive-fault": f"a receive-side fault in {cause['node']}",
-            "transmit-fault": f"a transmit-side fault in {cause['node']}",
-            "isolation": f"{cause['node']} cut off from the bus (no ACK)",
-            "silence": f"{cause['node']} falling silent",
-            "flood": (f"a flood of identifier {f.id if f else 0:03X}"
-                      + (f" from {ev.nodes[f.sender]}" if f and f.sender >= 0
-                         else " (not in the catalog, sender unknown)")
-                      + (f", {f.frames} frames from {f.from_ns / 1e9:.3f} s to "
-                         f"{f.to_ns / 1e9:.3f} s, starving the lower-priority messages"
-                         if f else ""))}.get(cause["kind"], cause["kind"])
-    if conf is not None and conf < h.score - 0.1:
-        score_text = (f"score {conf:.2f}; its own score is {h.score:.2f}, lowered because a "
-                      "logger loss before the first degradation hid part of the evidence")
-    else:
-        score_text = f"score {h.score if conf is None else conf:.2f}"
-    text = f"{ev.run}/{ev.bus}: {lead}. Most likely cause: {what} ({score_text})."
-    if alternatives:
-        readings = []
-        for alt in alternatives:
-            steps = ", ".join(f"{tr['to']} at {tr['t_ns'] / 1e9:.6f} s"
-                              for tr in alt["transitions"][:3])
-            readings.append(f"if {alt['reading']} (score {alt['score']:.2f}): "
-                            + (steps if steps else "no counter change"))
-        text += (" Two readings fit equally well; " + "; ".join(readings)
-                 + ". ESI bits or status records after its return would tell them apart.")
-    later = [x for x in findings or [] if x["hypothesis"] != h.name]
-    if later:
-        text += " Also found: " + "; ".join(
-            f"{x['kind']}" + (f" in {x['node']}" if x["node"] else "")
-            + f" from {x['from_ns'] / 1e9:.3f} s" for x in later) + "."
-    return text
-
-
-def _evidence(ev: BusEvidence, h: Hypothesis, silences: list[Silence],
-              first: dict[str, Any] | None) -> dict[str, Any]:
-    errors = ev.events.filter(pl.col("kind") == KIND_ERROR)
-    names = dict(enumerate(ev.nodes))
-    by_sender = errors.group_by("tx").len().sort("tx")
-    decisive: list[dict[str, Any]] = []
-
-    def add(t_ns: int, what: str) -> None:
-        row = ev.events.filter(pl.col("t_ns") == t_ns).head(1)
-        where = row.select("file", "line").row(0) if row.height else (None, None)
-        decisive.append({"t_ns": int(t_ns), "what": what, "file": where[0], "line": where[1]})
-
-    if errors.height:
-        add(int(errors["t_ns"][0]), "first error frame")
-    for rep in h.replays:  # loop over nodes and their transitions (rare)
-        for tr in rep.transitions[:6]:
-            add(tr["t_ns"], f"{rep.node}: {tr['from']} -> {tr['to']}")
-    for s in silences[:10]:
-        decisive.append({"t_ns": s.from_ns, "what": f"{ev.nodes[s.node]} silent until "
-                         f"{s.to_ns if s.to_ns is not None else 'the end of the log'}",
-                         "file": None, "line": None})
-    esi_set = ev.esi_set_frames
-    decisive.sort(key=lambda d: d["t_ns"])
-    return {
-        "errors": errors.height,
-        "by_type": dict(sorted(errors.group_by("type").len().iter_rows())),
-        "by_sender": {names.get(int(tx), "unknown"): int(n)
-                      for tx, n in by_sender.iter_rows()},
-        "attributed": int((errors["by_node"] >= 0).sum()) if errors.height else 0,
-        "frames": ev.frames,
-        "esi_frames": esi_set,
-        "status_records": int(ev.events.filter(pl.col("kind") != KIND_ERROR).height),
-        "losses": int(ev.losses.shape[0]),
-        "silences": [{"node": ev.nodes[s.node], "from_ns": s.from_ns, "to_ns": s.to_ns}
-                     for s in silences],
-        "decisive": decisive[:40],
-    }
-
-
-def _counters_frame(ev: BusEvidence, h: Hypothesis,
-                    config: ConfinementConfig = DEFAULT_CONFIG) -> pl.DataFrame:
-    parts = []
-    names = ["t_ns", "tec", "rec", "state", "cause", "uncertain"]
-    for rep in h.replays:  # loop over nodes; rows are counter changes (rare)
-        if rep.rows_frame is not None:
-            frame = rep.rows_frame.select(pl.col(n).cast(COUNTERS_SCHEMA[n]) for n in names)
-        elif rep.rows:
-            frame = pl.DataFrame(rep.rows, schema=[(n, COUNTERS_SCHEMA[n]) for n in names],
-                                 orient="row")
-        else:
-            continue
-        # the step function the rules define: every decrement at the frame that made it
-        frame = every_change(frame, ev, ev.node_index(rep.node), config)
-        parts.append(frame.with_columns(pl.lit(rep.node).alias("node")))
-    if not parts:
-        return pl.DataFrame(schema=COUNTERS_SCHEMA)
-    out = pl.concat(parts).with_columns(pl.lit(ev.run).alias("run"), pl.lit(ev.bus).alias("bus"),
-                                        pl.lit(h.name).alias("hypothesis"))
-    return out.select(list(COUNTERS_SCHEMA)).sort(["node", "t_ns"], maintain_order=True)
-
-
-def _states_frame(ev: BusEvidence, h: Hypothesis) -> pl.DataFrame:
-    cols: dict[str, list[Any]] = {k: [] for k in NODE_STATES_SCHEMA}
-    end = ev.last_t_ns
-    for rep in h.replays:  # loop over nodes and transitions (rare)
-        t0, state = ev.first_t_ns, "error-active"
-        for tr in rep.transitions + [{"t_ns": end, "from": None, "to": None}]:
-            if tr["t_ns"] > t0 or tr["to"] is None:
-                cols["node"].append(rep.node)
-                cols["state"].append(state)
-                cols["from_ns"].append(t0)
-                cols["to_ns"].append(max(t0, tr["t_ns"]))
-            t0, state = tr["t_ns"], tr["to"] or state
-    n = len(cols["node"])
-    cols["run"], cols["bus"], cols["hypothesis"] = [ev.run] * n, [ev.bus] * n, [h.name] * n
-    return pl.DataFrame(cols, schema=NODE_STATES_SCHEMA)
-
-
-def _verdicts_frame(results: list[dict[str, Any]]) -> pl.DataFrame:
-    rows = []
-    for r in results:
-        f = r["first_degraded"] or {}
-        rows.append({"run": r["run"], "bus": r["bus"], "cause_kind": r["cause"]["kind"],
-                     "cause_node": r["cause"]["node"], "first_node": f.get("node"),
-                     "first_state": f.get("state"), "first_t_ns": f.get("t_ns"),
-                     "wall_time": f.get("wall_time"), "confidence": f.get("confidence"),
-                     "winner": r["hypotheses"][0]["name"] if r["hypotheses"] else None,
-                     "runner_up": (r["runner_up"] or {}).get("name"),
-                     "errors": r["evidence"]["errors"]})
-    return pl.DataFrame(rows, schema=VERDICTS_SCHEMA)
-
-
-def describe_results(results: list[dict[str, Any]]) -> str:
-    """A summary a validation engineer can paste into an incident report."""
-    if not results:
-        return "faults: no frames or errors in the selected runs."
-    lines: list[str] = []
-    for r in results:  # loop over (run, bus) verdicts
-        lines.append(r["verdict"])
-        ev = r["evidence"]
-        by_type = ", ".join(f"{k} {v}" for k, v in ev["by_type"].items()) or "none"
-        by_sender = ", ".join(f"{k} {v}" for k, v in ev["by_sender"].items()) or "none"
-        lines.append(f"  evidence: {ev['errors']} error frames ({by_type}); by sender: "
-                     f"{by_sender}; {ev['frames']} frames, {ev['esi_frames']} with ESI, "
-                     f"{ev['status_records']} status records, {ev['losses']} logger losses")
-        for h in r["hypotheses"][:3]:
-            lines.append(f"  {h['score']:6.3f}  {h['name']}: {h['why']}")
-        for node in r["nodes"]:
-            if node["transitions"]:
-                steps = "; ".join(f"{tr['to']} at {tr['t_ns'] / 1e9:.6f} s"
-                                  for tr in node["transitions"][:6])
-                more = " ..." if len(node["transitions"]) > 6 else ""
-                lines.append(f"  {node['node']}: max TEC {node['max_tec']}, max REC "
-                             f"{node['max_rec']}; {steps}{more}")
-        sa = r["status_agreement"]
-        if sa:
-            lines.append(f"  status records: {sa['state_equal']} of {sa['records']} agree on "
-                         f"the state (max TEC diff {sa['max_tec_diff']}, max REC diff "
-                         f"{sa['max_rec_diff']})")
-        for d in ev["decisive"][:8]:
-            where = f" [{d['file']}:{d['line']}]" if d.get("file") else ""
-            lines.append(f"  {d['t_ns'] / 1e9:12.6f} s  {d['what']}{where}")
-        lines.append("")
-    return "\n".join(lines).rstrip()
 
