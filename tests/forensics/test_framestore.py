@@ -68,6 +68,22 @@ def test_column_answers_as_numpy_does(tmp_path: Path, small_blocks: None,
     assert col.count(int(values[100])) == int(np.sum(values == values[100]))
 
 
+def test_batches_of_a_whole_block_kept_beside_spilled_ones(tmp_path: Path,
+                                                          small_blocks: None) -> None:
+    """A record batch at least a block long is a block of one piece (derived from
+    Column.append: it flushes as soon as a block's worth is pending); with an allowance for
+    some blocks only, the kept ones and the spilled ones read back as numpy has them."""
+    values = np.arange(0, 3 * 10_500, 3, dtype=np.int64)
+    col = Column(values.dtype, Spill(24_000, tmp_path))  # three 1,500-value blocks kept
+    for i in range(0, values.size, 1500):
+        col.append(values[i:i + 1500])
+    col.finish()
+    assert not col.in_memory and col.size == values.size
+    # source: numpy indexing and searchsorted are the reference
+    assert np.array_equal(col[np.arange(values.size)], values)
+    assert np.array_equal(col.searchsorted(values[::7] + 1), np.searchsorted(values, values[::7] + 1))
+
+
 @pytest.mark.parametrize("step", [4, 256])
 def test_the_two_level_search_answers_as_numpy_does(monkeypatch: pytest.MonkeyPatch,
                                                      step: int) -> None:
