@@ -139,3 +139,32 @@ def test_split_by_node_both_ways_agree() -> None:
         assert np.array_equal(many[i], expected)
         if i < 8:
             assert np.array_equal(few[i], expected)
+
+
+def test_an_evidence_window_holds_only_what_lies_inside_it() -> None:
+    """evidence_window's promise: frames and records in [t_from, t_to) only, the per-node
+    ESI times (CAN FD: set while the sender is error-passive) included; numpy on the whole
+    log's arrays is the reference."""
+    import numpy as np
+
+    from tracelab.forensics.evidence import evidence_window
+
+    s = synth.generate(3000, fault="tx", culprit="alpha", p=0.5, seed=4, fd=True)
+    ev = load_bus_evidence(s.connect(), synth.catalog(fd=True), "r1", "can0")
+    assert sum(on.size for on, _ in ev.esi_t) > 0  # alpha went passive: ESI set
+    lo = int(ev.frame_t[ev.frame_t.size // 3])
+    hi = int(ev.frame_t[2 * ev.frame_t.size // 3])
+    w = evidence_window(ev, lo, hi)
+
+    def inside(col) -> np.ndarray:  # type: ignore[no-untyped-def]
+        t = col.to_numpy()
+        return t[(t >= lo) & (t < hi)]
+
+    assert np.array_equal(w.frame_t.to_numpy(), inside(ev.frame_t))
+    for (on, off), (w_on, w_off) in zip(ev.esi_t, w.esi_t, strict=True):
+        assert np.array_equal(w_on.to_numpy(), inside(on))
+        assert np.array_equal(w_off.to_numpy(), inside(off))
+    assert w.esi_set_frames == sum(inside(on).size for on, _ in ev.esi_t)
+    assert 0 < w.esi_set_frames < sum(on.size for on, _ in ev.esi_t)  # the cut matters here
+    t = w.events["t_ns"].to_numpy()
+    assert t.size and t.min() >= lo and t.max() < hi
