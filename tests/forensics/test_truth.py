@@ -245,3 +245,28 @@ def test_sampled_bus_time_path_gives_the_same_verdict(tmp: Path,
     assert sampled["first_degraded"]["t_ns"] == exact["first_degraded"]["t_ns"]
     assert sampled["nodes"] == exact["nodes"]
     assert sampled["evidence"]["frames"] == exact["evidence"]["frames"]
+
+
+def test_a_flood_of_a_catalogued_identifier_against_its_catalog_rate(tmp: Path) -> None:
+    """The simulator babbles 0x500 at 5000 frames/s from 0.5 s to 1.5 s (its scenario may
+    not list a babbled identifier); the catalog the replay reads lists 0x500 every 100 ms, so
+    the flood is judged against that rate."""
+    scenario = tmp / "flood.toml"
+    scenario.write_text(BASE.format(duration="2000ms", seed=1, attribute="false", status="")
+                        + '\n[[fault]]\nkind = "babble"\nnode = "ecu_d"\nid = "500"\n'
+                          'rate = 5000\nstart = "500ms"\nend = "1500ms"\n')
+    simulate(load_scenario(scenario), tmp / "flood.frames", quiet=True)
+    ingest_logs([tmp / "flood.frames"], tmp / "ds-flood", quiet=True)
+    catalog = tmp / "flood-catalog.toml"
+    catalog.write_text(BASE.format(duration="2000ms", seed=1, attribute="false", status="")
+                       + '\n[[message]]\nbus = "can0"\nid = "500"\nform = "s"\ndlc = 8\n'
+                         'sender = "ecu_d"\nperiod = "100ms"\n')
+    v = replay_faults(open_dataset(tmp / "ds-flood").connect(),
+                      load_catalog(catalog)).as_json()["results"][0]
+    assert (v["cause"]["kind"], v["cause"]["node"], v["cause"]["id"]) == ("flood", "ecu_d", "500")
+    flood = v["flood"]
+    assert flood["in_catalog"] and flood["sender"] == "ecu_d"
+    # derived: the flood's span over the catalog's 100 ms period (about 1 s / 100 ms = 10)
+    span_s = (flood["to_ns"] - flood["from_ns"]) / 1e9
+    assert flood["catalog_frames"] == pytest.approx(span_s / 0.1, abs=0.05)
+    assert 0.9 < span_s <= 1.0 and flood["frames"] > 100 * flood["catalog_frames"]
