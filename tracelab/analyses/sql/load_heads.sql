@@ -43,7 +43,9 @@ GROUP BY run, bus, id, ext;
 
 -- First frame start and last frame end per (run, bus), for frames per second. Only frames
 -- that start in the first window, or late enough to end in the last one, can qualify; the
--- filters on start_ns let the Parquet row-group statistics skip the rest of the file.
+-- filters let the Parquet row-group statistics skip the rest of the file: on t_ns, which the
+-- parts store (start_ns <= t_ns < start_ns + duration_ns, so they drop no qualifying frame;
+-- start_ns is derived in the view and has no statistics).
 CREATE OR REPLACE TEMP TABLE tl_span AS
 WITH edges AS (
     SELECT h.run, h.bus, min(h.k) AS k0, max(h.k) AS k1, max(i.longest_ns) AS longest_ns
@@ -51,13 +53,16 @@ WITH edges AS (
     WHERE h.frames > 0
     GROUP BY h.run, h.bus
 ),
-lo AS (SELECT min(k0 * $window_ns::BIGINT) AS a, max((k0 + 1) * $window_ns::BIGINT) AS b
+lo AS (SELECT min(k0 * $window_ns::BIGINT) AS a, max((k0 + 1) * $window_ns::BIGINT) AS b,
+              max((k0 + 1) * $window_ns::BIGINT) + max(longest_ns) AS c
        FROM edges),
 hi AS (SELECT min(k1 * $window_ns::BIGINT - longest_ns) AS a FROM edges)
 SELECT e.run, e.bus,
        (SELECT min(f.start_ns) FROM frames f
         WHERE f.start_ns >= (SELECT a FROM lo) AND f.start_ns < (SELECT b FROM lo)
+          AND f.t_ns >= (SELECT a FROM lo) AND f.t_ns < (SELECT c FROM lo)
           AND f.run = e.run AND f.bus = e.bus) AS first_ns,
        (SELECT max(f.start_ns + f.duration_ns) FROM frames f
-        WHERE f.start_ns >= (SELECT a FROM hi) AND f.run = e.run AND f.bus = e.bus) AS last_ns
+        WHERE f.start_ns >= (SELECT a FROM hi) AND f.t_ns >= (SELECT a FROM hi)
+          AND f.run = e.run AND f.bus = e.bus) AS last_ns
 FROM edges e;
