@@ -154,6 +154,11 @@ def run_target(target: str, work: Path, children: int, sample: int = 0, seed: in
     if names:
         status = {k: v for k, v in status.items() if k in set(names)}
     counts = Counter(status.values())
+    if counts and set(counts) == {"not checked"}:
+        # mutmut stops before any mutant when its clean run of the tests fails (a test that
+        # failed once under load, say); the output went to /dev/null
+        print(f"{target}: mutmut tested nothing (its clean test run failed?); run again with "
+              f"--reuse, or `cd {work} && mutmut run NAME` to see why", file=sys.stderr)
     killed = counts.get("killed", 0)
     total = sum(n for s, n in counts.items() if s not in ("skipped", "not checked"))
     survivors = sorted(k for k, s in status.items() if s not in ("killed", "skipped"))
