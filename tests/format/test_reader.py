@@ -187,6 +187,15 @@ SIGNS = ["+5\tP\tframe\t0C0\ts\t0\t-", "-0\tP\tframe\t0C0\ts\t0\t-",
          "99999999999999999999\tP\tframe\t0C0\ts\t0\t-", "5\tP\tframe\t0C0\tS\t0\t-"]
 
 
+#: Near misses of the fast path's plain-record check (fast.py: _plain_record_ok): each must
+#: get the exact rules' verdict, not a pass.
+PLAIN = ["5\tP\tstatus\tinv\t+1\t0", "5\tP\tstatus\tinv\t1234567890\t0",
+         "5\t*\terror\tcrc\tcrc\t-\t-\tinv", "5\tP\terror\tcrc\tcrc\t-\t-",
+         "5\tP\terror\tCRC\tcrc\t-\t-\tinv", "5\tP\terror\tcrc\tcrc\t0C0\ts\tinv",
+         "5\tP\terror\tcrc\tcrc\t0C0\t-\tinv", "5\tP\tmark\tx\ty", "5\tQ\tmark\tx",
+         "+5\tP\tmark\tx", "5\tP\tstatus\tinv\t1\t2\t3"]
+
+
 @pytest.mark.parametrize("bad", [c[1] for c in RECORD_CASES] + SIGNS + [None])
 def test_fast_and_exact_paths_give_the_same_tables(tmp_path: Path, bad: str | None) -> None:
     lines = VARIETY + ([bad] if bad is not None else []) + VARIETY
@@ -197,6 +206,16 @@ def test_fast_and_exact_paths_give_the_same_tables(tmp_path: Path, bad: str | No
     assert (fast.lines, fast.other_lines, fast.backward_steps) == (
         exact.lines, exact.other_lines, exact.backward_steps)
     assert exact.backward_steps == 2 and exact.other_lines == 6
+
+
+@pytest.mark.parametrize("odd", PLAIN)
+def test_near_misses_of_the_plain_record_check_get_the_exact_verdict(tmp_path: Path,
+                                                                      odd: str) -> None:
+    path = _write(tmp_path, HEADER + "\n".join([*VARIETY, odd, *VARIETY]) + "\n")
+    fast, exact = read_log(path, fast=True), read_log(path, fast=False)
+    for name in ("frames", "errors", "status", "marks", "losses", "rejects"):
+        assert getattr(fast, name).equals(getattr(exact, name)), name
+    assert (fast.other_lines, fast.backward_steps) == (exact.other_lines, exact.backward_steps)
 
 
 def test_valid_chunks_take_the_fast_path(tmp_path: Path) -> None:
