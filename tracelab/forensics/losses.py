@@ -26,14 +26,6 @@ from tracelab.forensics.evidence import KIND_ERROR, PREDICTED, BusEvidence, with
 SHORTEST_ERROR_ATTEMPT_BITS = 37
 
 
-def in_loss(ev: BusEvidence, t_ns: int) -> bool:
-    """True when t_ns lies inside a logger-loss interval."""
-    if not ev.losses.shape[0]:
-        return False
-    i = int(np.searchsorted(ev.losses[:, 0], t_ns, side="right")) - 1
-    return i >= 0 and int(ev.losses[i, 1]) > t_ns
-
-
 def loss_before(ev: BusEvidence, t_ns: int) -> tuple[int, int] | None:
     """The last loss interval that starts before t_ns, or None."""
     if not ev.losses.shape[0]:
