@@ -29,7 +29,6 @@ from tracelab.forensics.evidence import (
 from tracelab.forensics.explain import assumptions, describe_results, evidence_json, sentence, why
 from tracelab.forensics.hypotheses import (
     MIN_ERRORS,
-    PASSIVE_BOUNDARY_ERRORS,
     Flood,
     Hypothesis,
     Silence,
@@ -330,44 +329,6 @@ def _run_start(tx: np.ndarray, t: np.ndarray, n: int, run: int, share: float) ->
     return int(t[int(hit[0])]) if hit.size else None
 
 
-def _leak_onsets(ev: BusEvidence, hyps: list[Hypothesis], run: int = SEGMENT_RUN,
-                 share: float = 0.6) -> list[int]:
-    """A receive fault followed by a transmit-side fault on another node: the receive-fault
-    reading of the whole log is ruled out by the errors on others' frames while its node was
-    replayed passive, and those errors begin where the second fault does. Among the errors
-    not on the culprit's own frames (its passive transmissions fail by its own fault), the
-    start of a run on one other node's frames; kept when hardly any such errors came before
-    it (PASSIVE_BOUNDARY_ERRORS, or 5 % of them)."""
-    errors = ev.events.with_row_index("k").filter(pl.col("kind") == KIND_ERROR)
-    if errors.height < run:
-        return []
-    k_idx = errors["k"].to_numpy()
-    tx = errors["tx"].to_numpy()
-    t = errors["t_ns"].to_numpy()
-    out: list[int] = []
-    for h in hyps:  # loop over the receive-fault hypotheses (one per node)
-        if h.kind != "receive-fault" or h.node is None or math.isfinite(h.loglik):
-            continue
-        n = h.node
-        states = h.replays[n].state_before
-        if len(states) != ev.events.height:
-            continue
-        passive = np.isin(np.asarray(states, dtype=object)[k_idx], ["error-passive",
-                                                                      "bus-off"])
-        leak = passive & (tx != n)
-        rest = tx != n
-        for m in range(len(ev.nodes)):  # loop over the other nodes
-            if m == n:
-                continue
-            t_on = _run_start(tx[rest], t[rest], m, run, share)
-            if t_on is None:
-                continue
-            before, total = int((leak & (t < t_on)).sum()), int(leak.sum())
-            if before <= max(PASSIVE_BOUNDARY_ERRORS, 0.05 * total) and total > before:
-                out.append(t_on)
-    return out
-
-
 def _finding(ev: BusEvidence, h: Hypothesis, win_from: int | None,
              win_to: int | None) -> dict[str, Any]:
     errors = ev.events.filter(pl.col("kind") == KIND_ERROR)
@@ -526,8 +487,7 @@ def _segment(ev: BusEvidence, cat: CatalogView, config: ConfinementConfig,
     # a run of 30 errors, 60 % on one node's frames: by chance (a node with a quarter of the
     # bus time under a whole-bus disturbance) about 1e-4 (binomial tail, derived)
     onsets = sorted({t for n in range(len(ev.nodes))
-                     if (t := _onset(ev, n, run=SEGMENT_RUN, share=0.6)) is not None}
-                    | set(_leak_onsets(ev, hyps)))
+                     if (t := _onset(ev, n, run=SEGMENT_RUN, share=0.6)) is not None})
     cuts: list[int] = []
     for t in onsets:  # loop over a few onset times
         prev = cuts[-1] if cuts else int(t_err[0]) if t_err.size else ev.first_t_ns
