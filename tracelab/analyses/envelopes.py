@@ -21,7 +21,7 @@ import polars as pl
 from tracelab.analyses import run_sql_frame
 from tracelab.analyses.signal_envelopes import signal_section
 from tracelab.format.grammar import wall_time
-from tracelab.store.schema import manifest_buses
+from tracelab.store.schema import manifest_buses, sql_string
 
 #: Bus-load windows a reader can pick in the report (each a multiple of the stored window).
 LOAD_WINDOWS_NS = (10_000_000, 100_000_000, 1_000_000_000, 10_000_000_000, 60_000_000_000)
@@ -285,7 +285,7 @@ def gap_cells(con: duckdb.DuckDBPyConnection, run: str, bucket_ns: int) -> pl.Da
     if start is None or end is None or "id" not in cols:
         return pl.DataFrame()
     ext = "ext" if "ext" in cols else "false"
-    run_col = "run" if "run" in cols else "'" + run.replace("'", "''") + "'"
+    run_col = "run" if "run" in cols else sql_string(run)
     logger = "in_loss" if "in_loss" in cols else "NULL"
     con.execute(f'CREATE OR REPLACE TEMP VIEW gap_source AS SELECT {run_col} AS run, bus, id, '
                 f'{ext} AS ext, "{start}" AS from_ns, "{end}" AS to_ns, {logger} AS in_loss '

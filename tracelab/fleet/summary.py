@@ -15,6 +15,7 @@ import polars as pl
 from tracelab.analyses.regression_rules import phase_jitter_p99  # noqa: F401
 from tracelab.fleet.discover import RunSpec
 from tracelab.format.grammar import ERROR_TYPES
+from tracelab.store.schema import sql_string
 
 BUS_LOAD = pl.List(pl.Struct({"bus": pl.String, "max_load_ratio": pl.Float64,
                               "p99_load_ratio": pl.Float64}))
@@ -194,7 +195,7 @@ def export_tables(con: duckdb.DuckDBPyConnection, out: Path,
         select = ", ".join(f'"{c}"' for c in keep)
         table = _RENAMED.get(view, view)
         target = out / f"{table}.parquet"
-        quoted = "'" + str(target).replace("'", "''") + "'"
+        quoted = sql_string(str(target))
         con.execute(f'COPY (SELECT {select} FROM "{view}" ORDER BY {order}) TO {quoted} '
                     "(FORMAT parquet, COMPRESSION zstd)")
         tables[table] = target

@@ -25,9 +25,6 @@ _HIVE = "hive_partitioning = true, union_by_name = true, " \
         "hive_types = {'vehicle': VARCHAR, 'date': DATE}"
 
 
-def _sql_str(text: str) -> str:
-    return "'" + text.replace("'", "''") + "'"
-
 
 def connect_fleet(path: str | Path) -> duckdb.DuckDBPyConnection:
     """In-memory DuckDB over a fleet directory; StoreError when ``path`` is not a fleet."""
@@ -46,7 +43,7 @@ def connect_fleet(path: str | Path) -> duckdb.DuckDBPyConnection:
     con = connect_runs(fleet, runs, regressions)
     try:
         con.execute("CREATE VIEW manifest AS SELECT * FROM read_parquet("
-                    f"{_sql_str(glob_escape((fleet / layout.MANIFEST_FILE).absolute()))})")
+                    f"{schema.sql_string(glob_escape((fleet / layout.MANIFEST_FILE).absolute()))})")
     except duckdb.Error as error:
         raise StoreError(f"{fleet}: cannot open the fleet manifest ({error})") from error
     return con
@@ -80,7 +77,7 @@ def connect_runs(fleet: Path, runs: pl.DataFrame,
         ok = runs.filter(pl.col("status").is_in(PUBLISHED))["key"].str.slice(0, 16).to_list()
         made = set()
         for table, files in table_files(fleet, set(ok)).items():
-            listing = ", ".join(_sql_str(glob_escape(f.absolute())) for f in files)
+            listing = ", ".join(schema.sql_string(glob_escape(f.absolute())) for f in files)
             con.execute(f'CREATE VIEW "{table}" AS SELECT * FROM read_parquet([{listing}], '
                         f"{_HIVE})")
             made.add(table)

@@ -21,7 +21,7 @@ import polars as pl
 
 from tracelab.forensics.framestore import Column, Spill
 from tracelab.store.limits import current_limits
-from tracelab.store.schema import manifest_buses
+from tracelab.store.schema import manifest_buses, sql_string
 
 KIND_ERROR = 0
 KIND_STATUS = 1
@@ -85,9 +85,6 @@ class BusEvidence:
             return -1
 
 
-def _sql(text: str) -> str:
-    return "'" + text.replace("'", "''") + "'"
-
 
 def _frame(con: duckdb.DuckDBPyConnection, query: str) -> pl.DataFrame:
     return con.sql(query).pl()
@@ -96,7 +93,7 @@ def _frame(con: duckdb.DuckDBPyConnection, query: str) -> pl.DataFrame:
 def run_buses(con: duckdb.DuckDBPyConnection, run: str | None = None,
               by_id: pl.DataFrame | None = None) -> list[tuple[str, str]]:
     """(run, bus) pairs that have any frames or errors, sorted."""
-    where = f"WHERE run = {_sql(run)}" if run is not None else ""
+    where = f"WHERE run = {sql_string(run)}" if run is not None else ""
     rows = set(con.execute(f"SELECT DISTINCT run, bus FROM errors {where}").fetchall())
     if by_id is None:
         rows |= set(con.execute(f"SELECT DISTINCT run, bus FROM frames {where}").fetchall())
@@ -125,7 +122,7 @@ def _nominal_bps(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run: str,
     if spec is not None:
         return int(spec.nominal_bps), "catalog"
     for (buses,) in con.execute(
-            f"SELECT buses FROM manifest WHERE run = {_sql(run)}").fetchall():
+            f"SELECT buses FROM manifest WHERE run = {sql_string(run)}").fetchall():
         try:
             for decl in manifest_buses(buses):
                 if decl.get("alias") == bus and decl.get("nominal_bps"):
@@ -187,7 +184,7 @@ def frames_by_id(con: duckdb.DuckDBPyConnection, run: str | None = None,
         return frame.select(pl.lit(pair[0]).alias("run"), pl.lit(pair[1]).alias("bus"),
                             pl.col("id").cast(pl.UInt32), pl.col("ext").cast(pl.Boolean),
                             "frames", "busy_ns", "fd_frames")
-    where = f"WHERE run = {_sql(run)}" if run is not None else ""
+    where = f"WHERE run = {sql_string(run)}" if run is not None else ""
     return _frame(con, "SELECT run, bus, id, ext, count(*) AS frames, "
                   "sum(duration_ns)::BIGINT AS busy_ns, count(*) FILTER (WHERE fd) AS fd_frames "
                   f"FROM frames {where} GROUP BY ALL").with_columns(
@@ -203,7 +200,7 @@ def load_bus_evidence(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run:
     """
     nodes = list(catalog.nodes_on(bus))
     codes = _sender_codes(catalog, bus, nodes)
-    where = f"run = {_sql(run)} AND bus = {_sql(bus)}"
+    where = f"run = {sql_string(run)} AND bus = {sql_string(bus)}"
     extra = [n for (n,) in con.execute(
         f"SELECT DISTINCT node FROM status WHERE {where} UNION SELECT DISTINCT \"by\" FROM "
         f"errors WHERE {where} AND \"by\" IS NOT NULL ORDER BY 1").fetchall() if n not in nodes]

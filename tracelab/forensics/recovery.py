@@ -10,12 +10,13 @@ from __future__ import annotations
 import numpy as np
 import polars as pl
 
-from tracelab.forensics.evidence import KIND_ERROR, BusEvidence, _sql
+from tracelab.forensics.evidence import KIND_ERROR, BusEvidence
 from tracelab.physics.confinement import (
     RECOVERY_SEQUENCE_BITS,
     RECOVERY_SEQUENCES,
     ConfinementConfig,
 )
+from tracelab.store.schema import sql_string
 
 #: Error flag bits: a first detector's flag superposed with everybody else's (12), or a lone
 #: transmitter's flag on an ACK error (6); then error delimiter (8) and intermission (3).
@@ -38,8 +39,8 @@ def _busy_intervals(ev: BusEvidence, t_from: int, t_to: int) -> tuple[np.ndarray
     starts = ends = np.zeros(0, dtype=np.int64)
     if ev.con is not None:
         rows = ev.con.execute(
-            f"SELECT start_ns, end_ns FROM frames WHERE run = {_sql(ev.run)} AND bus = "
-            f"{_sql(ev.bus)} AND t_ns >= {t_from} AND t_ns <= {t_to} "
+            f"SELECT start_ns, end_ns FROM frames WHERE run = {sql_string(ev.run)} AND bus = "
+            f"{sql_string(ev.bus)} AND t_ns >= {t_from} AND t_ns <= {t_to} "
             "ORDER BY start_ns").fetchnumpy()
         starts = np.asarray(rows["start_ns"], dtype=np.int64)
         ends = np.asarray(rows["end_ns"], dtype=np.int64)

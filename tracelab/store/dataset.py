@@ -54,9 +54,6 @@ def sha16(sha256: str) -> str:
     return sha256[:16]
 
 
-def _sql_str(text: str) -> str:
-    return "'" + text.replace("'", "''") + "'"
-
 
 def glob_escape(path: str | Path) -> str:
     """``path`` as a DuckDB file pattern that matches only itself (``[`` -> ``[[]`` ...)."""
@@ -264,14 +261,14 @@ class Dataset:
                     con.execute(f"CREATE VIEW frames AS {self._frames_sql(manifest)}")
                 elif files:
                     _check_parts(files)
-                    listing = ", ".join(_sql_str(_sql_path(f)) for f in files)
+                    listing = ", ".join(schema.sql_string(_sql_path(f)) for f in files)
                     con.execute(f"CREATE VIEW {table} AS SELECT * FROM read_parquet([{listing}])")
                 else:
                     con.register(f"_empty_{table}", schema.empty(table).to_arrow())
                     con.execute(f"CREATE VIEW {table} AS SELECT * FROM _empty_{table}")
             if self.manifest_path.exists():
                 con.execute("CREATE VIEW manifest AS SELECT * FROM read_parquet("
-                            f"{_sql_str(_sql_path(self.manifest_path))})")
+                            f"{schema.sql_string(_sql_path(self.manifest_path))})")
             else:
                 con.register("_empty_manifest", schema.empty("manifest").to_arrow())
                 con.execute("CREATE VIEW manifest AS SELECT * FROM _empty_manifest")
@@ -282,7 +279,7 @@ class Dataset:
                 if not parquet_intact(file):  # stale: the next analysis run rewrites it
                     continue
                 con.execute(f'CREATE VIEW "{file.stem}" AS SELECT * FROM read_parquet('
-                            f"{_sql_str(_sql_path(file))})")
+                            f"{schema.sql_string(_sql_path(file))})")
             return con
         except duckdb.Error as error:
             raise StoreError(f"{self.path}: cannot open the dataset views ({error})") from error
@@ -298,7 +295,7 @@ class Dataset:
                 key = (layout, bus_timings(schema.manifest_buses(buses)))
                 groups.setdefault(key, []).extend(files)
         return frames_view_sql([
-            (layout, buses, ", ".join(_sql_str(_sql_path(f)) for f in files))
+            (layout, buses, ", ".join(schema.sql_string(_sql_path(f)) for f in files))
             for (layout, buses), files in groups.items()])
 
     def _analysis_files(self) -> list[Path]:

@@ -56,9 +56,6 @@ def bus_timings(buses: Iterable[dict[str, Any]]) -> tuple[BusTiming, ...]:
          for b in buses), key=lambda b: b.alias))
 
 
-def _sql_str(text: str) -> str:
-    return "'" + text.replace("'", "''") + "'"
-
 
 def _per_bus(buses: Sequence[BusTiming], values: Sequence[str | None]) -> str:
     """One SQL value per bus: the value itself when all buses agree (None: any value does),
@@ -68,7 +65,7 @@ def _per_bus(buses: Sequence[BusTiming], values: Sequence[str | None]) -> str:
         return known.pop() if known else "0"
     pairs = [(b.alias, v) for b, v in zip(buses, values, strict=True) if v is not None]
     # the last value stands for itself and for the buses where any value does
-    cases = " ".join(f"WHEN {_sql_str(alias)} THEN {v}" for alias, v in pairs[:-1])
+    cases = " ".join(f"WHEN {schema.sql_string(alias)} THEN {v}" for alias, v in pairs[:-1])
     return f"(CASE bus {cases} ELSE {pairs[-1][1]} END)"
 
 

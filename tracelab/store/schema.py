@@ -71,6 +71,12 @@ MANIFEST = pl.Schema({
 
 
 
+def sql_string(text: str) -> str:
+    """``text`` as a SQL string literal (quotes doubled), for the names and paths the views
+    and queries spell into their SQL."""
+    return "'" + text.replace("'", "''") + "'"
+
+
 def manifest_buses(text: str | None) -> list[dict[str, Any]]:
     """The manifest's ``buses`` JSON, as ingest writes it: one object per ``%bus`` with
     ``alias``, ``nominal_bps``, ``data_bps``, ``stamp``, ``name``."""
