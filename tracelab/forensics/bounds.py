@@ -38,7 +38,8 @@ def bound_first(ev: BusEvidence, h: Hypothesis, first: dict[str, Any],
         return
     bonus = h.kind == "receive-fault" and h.node == n
     _bound_guessed(ev, n, bonus, first, config)
-    if loss_before(ev, t + 1) is None:
+    lo = loss_before(ev, t + 1)
+    if lo is None:
         return
     tx = h.node if h.kind in ("transmit-fault", "isolation") else None
     up = filled_evidence(ev, "upper", tx, t)
@@ -50,8 +51,7 @@ def bound_first(ev: BusEvidence, h: Hypothesis, first: dict[str, Any],
         tr = rep.first_degradation()
         if tr is not None:
             readings.append(int(tr["t_ns"]))
-    lo = loss_before(ev, t + 1)
-    earliest = max(min(readings), lo[0]) if lo and min(readings) < t else min(readings)
+    earliest = max(min(readings), lo[0]) if min(readings) < t else min(readings)
     widened = earliest < int(first["earliest_ns"]) or max(readings) > int(first["latest_ns"])
     first["earliest_ns"] = min(earliest, int(first["earliest_ns"]))
     first["latest_ns"] = max(max(readings), int(first["latest_ns"]))
