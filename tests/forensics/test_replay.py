@@ -168,3 +168,58 @@ def test_an_evidence_window_holds_only_what_lies_inside_it() -> None:
     assert 0 < w.esi_set_frames < sum(on.size for on, _ in ev.esi_t)  # the cut matters here
     t = w.events["t_ns"].to_numpy()
     assert t.size and t.min() >= lo and t.max() < hi
+
+
+def _rule_b_log(others_passive: bool) -> synth.Synth:
+    """A log in which alpha, bravo and delta first fail 16 of their own frames each (so, by
+    rule c, they are error-passive) or not, then 10 unattributed errors hit alpha's frames
+    back to back. Charlie is the candidate first detector of those 10."""
+    s = synth.Synth()
+    t, line = 0, 0
+
+    def frame(node: str) -> None:
+        nonlocal t, line
+        line += 1
+        end = t + int(synth.FRAME_BITS * synth.BIT_NS)
+        s.frames.append({"run": "r1", "bus": "can0", "t_ns": end - int(3 * synth.BIT_NS),
+                         "start_ns": t, "end_ns": end, "id": synth.IDS[node], "ext": False,
+                         "rtr": False, "fd": False, "brs": False, "esi": False, "dlc": 8,
+                         "data": bytes(8), "bits": synth.FRAME_BITS,
+                         "duration_ns": end - t, "file": "synthetic.frames", "line": line})
+        t = end
+
+    def error(node: str, by: str | None) -> None:
+        nonlocal t, line
+        line += 1
+        s.errors.append({"run": "r1", "bus": "can0", "t_ns": t + int(62 * synth.BIT_NS),
+                         "type": "bit" if by == node else "stuff", "field": "data",
+                         "id": synth.IDS[node], "ext": False, "form": "s", "by": by,
+                         "file": "synthetic.frames", "line": line})
+        t += int(synth.ERROR_BITS * synth.BIT_NS)
+
+    for node in ("alpha", "bravo", "charlie", "delta"):
+        frame(node)
+    if others_passive:
+        for node in ("alpha", "bravo", "delta"):
+            for _ in range(16):  # its own monitoring finds each error: TEC +8, 16 x -> 128
+                error(node, by=node)
+    for _ in range(10):
+        error("alpha", by=None)
+    frame("bravo")
+    return s
+
+
+@pytest.mark.parametrize("others_passive", [False, True])
+def test_assumed_first_detector_gets_rule_b_only_while_another_node_flags_actively(
+        others_passive: bool) -> None:
+    # from memory: ISO 11898-1:2015 12.1.4.2 rule b (REC +8 when the first bit after the
+    # node's own error flag is dominant) and 10.4.4 (an error-passive node's error flag is 6
+    # recessive bits): with every other node error-passive, nothing dominant follows the first
+    # detector's flag, so each error is REC +1 (rule a) only
+    s = _rule_b_log(others_passive)
+    ev = load_bus_evidence(s.connect(), synth.catalog(), "r1", "can0")
+    charlie = replay_node(ev, ev.nodes.index("charlie"), assume_first=True)
+    before = 48 if others_passive else 0  # rule a: +1 for each error on the others' frames
+    per_error = 1 if others_passive else 9
+    assert charlie.max_rec == before + 10 * per_error
+    assert charlie.first_bonus_events == (0 if others_passive else 10)

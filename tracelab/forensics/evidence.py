@@ -63,6 +63,9 @@ class BusEvidence:
     frames_by_id: pl.DataFrame  # id, ext, sender, frames, busy_ns
     con: duckdb.DuckDBPyConnection | None = None
     _recovery_cache: dict[tuple[int, int], int] = field(default_factory=dict)
+    #: per confinement config: (the events it was computed for, per node and event whether
+    #: the node could flag actively before the event), see replay.others_active
+    _active_cache: dict[Any, tuple[pl.DataFrame, np.ndarray]] = field(default_factory=dict)
     # per-event cumulative counts (filled by prepare_counts)
     ev_t: list[int] = field(default_factory=list)
     ev_frames_before: list[int] = field(default_factory=list)

@@ -160,6 +160,26 @@ def _reflected_walk(jumps: np.ndarray, declines: np.ndarray) -> np.ndarray:
     return a - d + np.maximum.accumulate(d - a_before)
 
 
+def others_active(ev: BusEvidence, node: int, config: ConfinementConfig) -> np.ndarray:
+    """Per event: whether a node other than ``node`` could flag actively just before it
+    (error-active or warning in its replay without the first-detector bonus).
+
+    Rule b (REC +8) needs a dominant bit right after the first detector's flag: the flags of
+    the others, which only nodes that are not error-passive send. Once every other node is
+    error-passive, an assumed first detector gets REC +1 per error, as any receiver.
+    """
+    cached = ev._active_cache.get(config)
+    if cached is None or cached[0] is not ev.events:
+        states = np.array([replay_node(ev, m, False, config, keep_rows=False).state_before
+                           for m in range(len(ev.nodes))], dtype=object).reshape(
+                               len(ev.nodes), len(ev.ev_t))
+        active = (states == "error-active") | (states == "warning")
+        cached = (ev.events, active)
+        ev._active_cache[config] = cached
+    active = cached[1]
+    return (active.sum(axis=0) - active[node]) > 0
+
+
 def _quiet_replay(ev: BusEvidence, node: int, assume_first: bool,
                   config: ConfinementConfig, keep_rows: bool) -> NodeReplay | None:
     """The replay of a node that never reaches the warning level, without a Python loop.
@@ -179,7 +199,10 @@ def _quiet_replay(ev: BusEvidence, node: int, assume_first: bool,
     own_d = np.diff(own, prepend=0)
     recv_d = np.diff(all_, prepend=0) - own_d
     tx = (role == ROLE_TX) | (role == ROLE_TX_ACK)
-    rx_first = (role == ROLE_RX_FIRST) | ((role == ROLE_RX_UNKNOWN) & assume_first)
+    assumed = (role == ROLE_RX_UNKNOWN) & assume_first
+    if assume_first and assumed.any():
+        assumed &= others_active(ev, node, config)
+    rx_first = (role == ROLE_RX_FIRST) | assumed
     rx = rx_first | (role == ROLE_RX) | (role == ROLE_RX_UNKNOWN)
     a_tec = np.where(tx, TRANSMIT_ERROR_TEC, 0)
     a_rec = np.where(rx, RECEIVE_ERROR_REC, 0) + np.where(rx_first, FIRST_DETECTOR_EXTRA_REC, 0)
@@ -190,7 +213,7 @@ def _quiet_replay(ev: BusEvidence, node: int, assume_first: bool,
         return None
     out = NodeReplay(ev.nodes[node], assume_first)
     out.state_before = ["error-active"] * len(ev.ev_t)
-    out.first_bonus_events = int(np.sum((role == ROLE_RX_UNKNOWN) & assume_first))
+    out.first_bonus_events = int(np.sum(assumed))
     out.max_tec, out.max_rec = int(tec.max()), int(rec.max())
     if keep_rows:
         t = np.asarray(ev.ev_t, dtype=np.int64)
@@ -233,6 +256,8 @@ def replay_node(ev: BusEvidence, node: int, assume_first: bool = False,
     frames_before = ev.ev_frames_before
     loss_since = ev.ev_loss_since_prev
     roles = _roles(ev, node)
+    reactors = others_active(ev, node, config).tolist() \
+        if assume_first and ROLE_RX_UNKNOWN in roles else None
     fb_prev = ob_prev = 0
     t_prev = ev.first_t_ns
     status_tec = ev.events["tec"].to_list()
@@ -320,8 +345,8 @@ def replay_node(ev: BusEvidence, node: int, assume_first: bool = False,
                 max_tec = c.tec
         else:
             bonus = role == ROLE_RX_FIRST
-            if role == ROLE_RX_UNKNOWN and assume_first and state in ("error-active",
-                                                                      "warning"):
+            if role == ROLE_RX_UNKNOWN and assume_first and state in (
+                    "error-active", "warning") and reactors is not None and reactors[k]:
                 bonus = True
                 out.first_bonus_events += 1
             c.rec += RECEIVE_ERROR_REC + (FIRST_DETECTOR_EXTRA_REC if bonus else 0)  # a, b
