@@ -142,6 +142,14 @@ def scenarios() -> list[Scenario]:
                      [{"kind": "rx-noise", "node": node, "start": "500ms", "end": end,
                        "rate": rate}], conditions=("burst",), seed=seed,
                      fast=(node == "ecu_d")))
+    # strong receive faults: every other node soon goes error-passive (no more rule-b bonus
+    # for the culprit), and its own errors keep coming while it is passive
+    for node, end, rate, status, seed in (("ecu_c", "770ms", 0.78, False, 25),
+                                          ("ecu_b", "740ms", 0.68, True, 26)):
+        add(Scenario(f"rx-strong-{node}", "rx-noise",
+                     [{"kind": "rx-noise", "node": node, "start": "500ms", "end": end,
+                       "rate": rate}], conditions=("burst",) + (("status",) if status else ()),
+                     status=status, seed=seed))
     # transmit faults
     for node, rate, seed in (("ecu_b", 0.3, 31), ("ecu_a", 0.15, 32), ("ecu_c", 0.5, 33),
                              ("ecu_d", 0.25, 34), ("ecu_e", 0.4, 35)):

@@ -496,9 +496,9 @@ def score(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Silence]) -> N
                              np.where(by == n, math.log(0.9), math.log(0.1 / n_nodes)),
                              lp_by_uniform)
             lp = lp_type_other + lp_by
-            # its own frames while it could flag actively (its monitoring) against the rest
-            h.parts["positions"] = _position_split(stuff, usable, mine & ~passive,
-                                                   pos_penalty)
+            # its own frames (its monitoring flags them at once, passive or not: a passive
+            # transmitter's flag still breaks its frame) against the rest
+            h.parts["positions"] = _position_split(stuff, usable, mine, pos_penalty)
             h.facts["after_passive"] = k_pown + k_poth
             h.facts["after_passive_own"] = k_pown
             h.facts["passive_frames"] = f_in
