@@ -139,3 +139,35 @@ def test_a_whole_bus_verdict_that_leaves_an_onset_run_unexplained_is_not_confide
     assert calibrated_score(ev, h, [h], None, False, False, [], []) == 1.0  # CRC errors seen
     h.parts["types"] = -40.0  # no CRC error on the other senders' frames
     assert calibrated_score(ev, h, [h], None, False, False, [], []) == ONSET_UNEXPLAINED_SCORE < 0.9
+
+
+@pytest.mark.parametrize("k,n", [(0, 40), (1, 500), (5, 60), (30, 100)])
+def test_crc_deficit_is_the_binomial_likelihood_ratio(k: int, n: int) -> None:
+    # source: scipy.stats.binom (a general-purpose reference): the ratio of the binomial
+    # likelihoods at the whole-bus share and at the share seen (the coefficients cancel)
+    from tracelab.forensics.hypotheses import P_CRC_BUS, crc_deficit
+
+    want = binom.logpmf(k, n, P_CRC_BUS) - binom.logpmf(k, n, k / n)
+    assert crc_deficit(k, n) == pytest.approx(want, abs=1e-9)
+
+
+def test_a_whole_bus_verdict_with_a_decisive_crc_deficit_is_not_confident() -> None:
+    # common practice, no source: a listen-only logger records CRC errors only where
+    # corrupted bits were on the wire; a whole-bus disturbance puts them on every sender's
+    # frames, so far too few of them leave the whole-bus reading as the least bad one only
+    from typing import Any, cast
+
+    from tracelab.forensics.bounds import (
+        CRC_DEFICIT_DECISIVE,
+        ONSET_UNEXPLAINED_SCORE,
+        calibrated_score,
+    )
+    from tracelab.forensics.hypotheses import Hypothesis
+
+    h = Hypothesis("bus-disturbance", "bus-disturbance", None, [])
+    h.score = 1.0
+    ev = cast(Any, None)
+    h.parts["types"] = -CRC_DEFICIT_DECISIVE / 2  # a small deficit: chance at few errors
+    assert calibrated_score(ev, h, [h], None, False, False, [], []) == 1.0
+    h.parts["types"] = -CRC_DEFICIT_DECISIVE
+    assert calibrated_score(ev, h, [h], None, False, False, [], []) == ONSET_UNEXPLAINED_SCORE

@@ -25,6 +25,10 @@ HALF_CONFIDENCE_WIDTH_NS = 50_000_000
 #: by chance under a busy whole-bus disturbance: the run test is scanned over every error
 #: and node.)
 ONSET_UNEXPLAINED_SCORE = 0.5
+#: The same cap when the CRC errors alone make the whole-bus reading this much less likely
+#: (log-likelihood ratio) than the share seen: it is then only the least bad reading (a
+#: mixture of two node faults, most likely, which no single hypothesis describes).
+CRC_DEFICIT_DECISIVE = 10.0
 
 
 def bound_first(ev: BusEvidence, h: Hypothesis, first: dict[str, Any],
@@ -166,7 +170,9 @@ def calibrated_score(ev: BusEvidence, h: Hypothesis, hyps: list[Hypothesis],
         p = h.score
     if thin:
         p = min(p, 0.5)
-    if h.kind == "bus-disturbance" and h.facts.get("onset_cuts") and h.parts.get("types", 0) < 0:
+    crc_deficit = h.parts.get("types", 0.0)
+    if h.kind == "bus-disturbance" and (crc_deficit <= -CRC_DEFICIT_DECISIVE
+                                        or (h.facts.get("onset_cuts") and crc_deficit < 0)):
         p = min(p, ONSET_UNEXPLAINED_SCORE)
     if first is not None:
         width = int(first.get("latest_ns", first["t_ns"])) - int(first.get("earliest_ns",

@@ -365,6 +365,15 @@ def _binomial(k: int, n: int) -> float:
     return k * math.log(p) + (n - k) * math.log(1 - p)
 
 
+def crc_deficit(k: int, n: int, share: float = P_CRC_BUS) -> float:
+    """How much less likely k CRC errors among n are at the share a whole-bus disturbance
+    leaves than at the share seen: the log-likelihood ratio of two binomials (<= 0)."""
+    if n <= 0:
+        return 0.0
+    at_bus = k * math.log(share) + (n - k) * math.log(1 - share)
+    return at_bus - _binomial(k, n)
+
+
 def _position_split(stuff: np.ndarray, usable: np.ndarray, group: np.ndarray,
                     penalty: float) -> float:
     """Gain in log-likelihood of the stuff share of errors when ``group`` gets its own share
@@ -438,8 +447,10 @@ def score(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Silence]) -> N
     usable = known & ~ack & np.isin(types, ["stuff", "form", "crc"])
     pos_penalty = 0.5 * math.log(max(2, int(usable.sum())))
     crc_bus = 0.0
-    if crc_rest == 0 and int(rest.sum()) >= CRC_MIN_ERRORS and not bool(np.any(types == "bit")):
-        crc_bus = max(-FLAG_CAP, int(rest.sum()) * math.log(1 - P_CRC_BUS))
+    n_rest = int(rest.sum())
+    if n_rest >= CRC_MIN_ERRORS and crc_rest < P_CRC_BUS * n_rest \
+            and not bool(np.any(types == "bit")):
+        crc_bus = max(-FLAG_CAP, crc_deficit(crc_rest, n_rest))
     for h in hyps:  # loop over hypotheses (a few per node)
         n = h.node
         if h.kind in ("bus-disturbance", "silence", "flood") or n is None \
