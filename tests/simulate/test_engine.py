@@ -19,9 +19,9 @@ BIT_NS = 2_000  # 500 kbit/s
 
 
 def scenario(tmp_path: Path, body: str, duration: str = "1s", nodes: str = "a b",
-             extra_run: str = "") -> Any:
+             extra_run: str = "", data_bps: int | None = None) -> Any:
     head = [f'[run]\nname = "t"\nduration = "{duration}"\nseed = 11\n{extra_run}\n',
-            "[bus.P]\nnominal = 500000\n"]
+            "[bus.P]\nnominal = 500000\n" + (f"data = {data_bps}\n" if data_bps else "")]
     head += [f'[node.{n}]\nbuses = ["P"]\n' for n in nodes.split()]
     path = tmp_path / "t.toml"
     path.write_text("\n".join(head) + "\n" + body, encoding="utf-8")
@@ -244,3 +244,22 @@ def sent_by_node(res: BusResult, sender: str) -> np.ndarray:
     s = res.schedule
     mine = np.array([s.messages[r].sender == sender for r in s.rank[res.release]], dtype=bool)
     return res.start_ns[mine]
+
+
+def test_isolated_fd_node_retransmits_with_its_data_phase_at_the_data_rate(
+        tmp_path: Path) -> None:
+    # from memory: ISO 11898-1 FD frame format (the bit rate switches at BRS and back at the
+    # CRC delimiter, also for a node alone on its piece of wire) and error signalling (an
+    # ACK error is flagged after the ACK slot: flag 6, delimiter 8, intermission 3 bits). So
+    # attempts follow each other by the frame's bits up to the ACK slot, then 17 nominal bits:
+    # the frame's duration (ACK delimiter, EOF and intermission are 11 of its bits) + 6 bits
+    from tracelab.physics.bitlength import frame_durations_ns
+
+    body = message("100", "a", "10ms", form="sfb", dlc=0) + message("200", "b", "10ms") + (
+        '[[fault]]\nnode = "a"\nkind = "isolated"\nstart = "100ms"\nend = "400ms"\n')
+    res = run(scenario(tmp_path, body, duration="600ms", nodes="a b c", data_bps=2_000_000))
+    times = [p[0] for p in node(res, "a").trajectory[1:17]]  # the 16 ACK errors
+    bits, dpb = frame_bits_reference(0x100, False, False, True, True, False, 0, b"")
+    want = int(frame_durations_ns(np.array([bits]), np.array([dpb]), 500_000, 2_000_000)[0]) \
+        + 6 * BIT_NS
+    assert all(abs((b - a) - want) <= 2 for a, b in zip(times, times[1:], strict=False))

@@ -391,10 +391,13 @@ class BusEngine:
             if len(mine) == 0:
                 return
             rank, t = int(s.rank[mine[0]]), int(s.t_ns[mine[0]])
-        bits = int(np.median(s.bits[s.rank == rank])) if np.any(s.rank == rank) else 64
-        attempt_ns = self._time_to_bit(bits - ACK_DELIMITER_FROM_END, bits, 0) + int(
+        same = s.rank == rank
+        bits = int(np.median(s.bits[same])) if np.any(same) else 64
+        # a BRS frame's data phase runs at the data rate on its own piece of wire too
+        dpb = int(np.median(s.data_phase_bits[same])) if np.any(same) else 0
+        ack_after_ns = self._time_to_bit(bits - ACK_DELIMITER_FROM_END, bits, dpb)
+        attempt_ns = ack_after_ns + int(
             (ACTIVE_FLAG_BITS + ERROR_DELIMITER_BITS + INTERMISSION_BITS) * self.bit_ns)
-        ack_after_ns = self._time_to_bit(bits - ACK_DELIMITER_FROM_END, bits, 0)
         stop_ns = min(until_ns, self.duration_ns)
         while not c.error_passive and not c.bus_off and t + ack_after_ns < stop_ns:
             c.transmit_error(ack_error=True)
