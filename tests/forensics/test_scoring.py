@@ -171,3 +171,26 @@ def test_a_whole_bus_verdict_with_a_decisive_crc_deficit_is_not_confident() -> N
     assert calibrated_score(ev, h, [h], None, False, False, [], []) == 1.0
     h.parts["types"] = -CRC_DEFICIT_DECISIVE
     assert calibrated_score(ev, h, [h], None, False, False, [], []) == ONSET_UNEXPLAINED_SCORE
+
+
+def test_a_receive_fault_named_by_a_few_nats_over_another_node_is_not_confident() -> None:
+    # derived (docs/forensics.md section 8, seed 2035): which node a receive fault sits in
+    # rests on small likelihood differences, so the node's score is its share among the
+    # receive faults of every node with likelihoods tempered by NODE_TEMPER
+    from typing import Any, cast
+
+    from tracelab.forensics.bounds import NODE_TEMPER, calibrated_score
+    from tracelab.forensics.hypotheses import Hypothesis
+
+    def rx(node: int, loglik: float, score: float) -> Hypothesis:
+        h = Hypothesis(f"receive-fault:n{node}", "receive-fault", node, [])
+        h.loglik, h.score = loglik, score
+        return h
+
+    ev = cast(Any, None)
+    best, near, far = rx(0, -831.5, 0.99), rx(1, -836.9, 0.01), rx(2, -900.0, 0.0)
+    got = calibrated_score(ev, best, [best, near, far], None, False, False, [], [])
+    want = 1 / (1 + math.exp(-5.4 / NODE_TEMPER) + math.exp(-68.5 / NODE_TEMPER))
+    assert got == round(want, 3) and got < 0.9
+    clear = rx(1, -860.0, 0.0)  # 28.5 nats behind: the node is not in doubt
+    assert calibrated_score(ev, best, [best, clear], None, False, False, [], []) == 0.99
