@@ -263,3 +263,18 @@ def test_isolated_fd_node_retransmits_with_its_data_phase_at_the_data_rate(
     want = int(frame_durations_ns(np.array([bits]), np.array([dpb]), 500_000, 2_000_000)[0]) \
         + 6 * BIT_NS
     assert all(abs((b - a) - want) <= 2 for a, b in zip(times, times[1:], strict=False))
+
+
+def test_status_records_hold_the_counters_at_their_own_time(tmp_path: Path) -> None:
+    # common practice, no source: a controller's status read at t reports its counters at t;
+    # an error flagged later in a frame already on the wire at t is not in it
+    body = message("100", "a", "2ms") + message("200", "b", "3ms") + (
+        '[[fault]]\nnode = "b"\nkind = "rx-noise"\nrate = 0.3\nstart = "100ms"\n')
+    res = run(scenario(tmp_path, body, duration="3s",
+                       extra_run='status_every = "50ms"'))
+    status = [line.split("\t") for _, _, line in res.records if "\tstatus\t" in line]
+    assert len(status) > 100
+    for t, _bus, _kind, name, tec, rec in status:
+        traj = node(res, name).trajectory
+        at = [p for p in traj if p[0] <= int(t)][-1]  # the last change at or before t
+        assert (int(tec), int(rec)) == (at[1], at[2]), (t, name)

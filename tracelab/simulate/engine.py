@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import math
 from array import array
+from bisect import bisect_right
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
@@ -337,9 +338,12 @@ class BusEngine:
         silent)."""
         for n, name in enumerate(self.names):
             quiet = any(a <= t_ns < b for a, b in self.silent.get(n, ()))
-            if self._participating(n) and not quiet:
-                c = self.counters[n]
-                self.records.append((t_ns, -1, status_line(t_ns, self.bus, name, c.tec, c.rec)))
+            # the counters as they were at t_ns: a frame in flight then has already been
+            # applied (its error may fall after t_ns), so they come from the trajectory
+            traj = self.truth[n].trajectory
+            _, tec, rec, state = traj[bisect_right(traj, t_ns, key=lambda p: p[0]) - 1]
+            if state != "bus-off" and not self.isolated[n] and not quiet:
+                self.records.append((t_ns, -1, status_line(t_ns, self.bus, name, tec, rec)))
 
     def _recover(self, n: int, t_ns: int) -> None:
         """Rule l: 128 x 11 recessive bits seen while bus-off: restart with zero counters."""
