@@ -160,6 +160,18 @@ def _reflected_walk(jumps: np.ndarray, declines: np.ndarray) -> np.ndarray:
     return a - d + np.maximum.accumulate(d - a_before)
 
 
+def base_replays(ev: BusEvidence, config: ConfinementConfig = DEFAULT_CONFIG,
+                 keep_rows: bool = True) -> list[NodeReplay]:
+    """Every node's replay without the first-detector bonus; which nodes could flag actively
+    before each event is kept on the evidence for others_active (computed once)."""
+    reps = [replay_node(ev, m, False, config, keep_rows=keep_rows)
+            for m in range(len(ev.nodes))]
+    states = np.array([rep.state_before for rep in reps], dtype=object).reshape(
+        len(ev.nodes), len(ev.ev_t))
+    ev._active_cache[config] = (ev.events, (states == "error-active") | (states == "warning"))
+    return reps
+
+
 def others_active(ev: BusEvidence, node: int, config: ConfinementConfig) -> np.ndarray:
     """Per event: whether a node other than ``node`` could flag actively just before it
     (error-active or warning in its replay without the first-detector bonus).
@@ -170,12 +182,8 @@ def others_active(ev: BusEvidence, node: int, config: ConfinementConfig) -> np.n
     """
     cached = ev._active_cache.get(config)
     if cached is None or cached[0] is not ev.events:
-        states = np.array([replay_node(ev, m, False, config, keep_rows=False).state_before
-                           for m in range(len(ev.nodes))], dtype=object).reshape(
-                               len(ev.nodes), len(ev.ev_t))
-        active = (states == "error-active") | (states == "warning")
-        cached = (ev.events, active)
-        ev._active_cache[config] = cached
+        base_replays(ev, config, keep_rows=False)
+        cached = ev._active_cache[config]
     active = cached[1]
     return (active.sum(axis=0) - active[node]) > 0
 

@@ -38,7 +38,7 @@ from tracelab.forensics.hypotheses import (
     score,
 )
 from tracelab.forensics.losses import filled_evidence, original_rows
-from tracelab.forensics.replay import NodeReplay, replay_node
+from tracelab.forensics.replay import NodeReplay, base_replays, replay_node
 from tracelab.forensics.tables import (
     COUNTERS_SCHEMA,
     NODE_STATES_SCHEMA,
@@ -204,7 +204,7 @@ def analyse(ev: BusEvidence, gaps: pl.DataFrame | None, cat: CatalogView,
     walk = filled_evidence(ev, "rate") if ev.losses.shape[0] else None
     keep = original_rows(walk) if walk is not None else None
     src = walk if walk is not None else ev
-    base = [_logged(replay_node(src, n, False, config), keep) for n in range(len(ev.nodes))]
+    base = [_logged(rep, keep) for rep in base_replays(src, config)]
     attributed = bool((ev.events.filter(pl.col("kind") == KIND_ERROR)["by_node"]
                        >= 0).all()) if ev.events.height else True
     first = base if attributed else [
@@ -247,7 +247,7 @@ def _loss_variants(ev: BusEvidence, hyps: list[Hypothesis],
         alt = _loss_reading(ev, mode)
         src = alt if alt is not None else ev
         keep = original_rows(alt) if alt is not None else None
-        base = [_logged(replay_node(src, m, False, config), keep) for m in range(len(ev.nodes))]
+        base = [_logged(rep, keep) for rep in base_replays(src, config)]
         for h in rx:  # loop over the receive-fault hypotheses (one per node)
             assert h.node is not None
             reps = list(base)
