@@ -167,12 +167,12 @@ NODE_TEMPER = 3.0
 
 def _node_share(h: Hypothesis, hyps: list[Hypothesis]) -> float:
     """The tempered posterior of h's node among the receive faults of every node."""
-    rivals = [x for x in hyps if x.kind == "receive-fault" and math.isfinite(x.loglik)]
-    if h not in rivals or len(rivals) < 2:
+    rivals = [x.loglik for x in hyps if x.kind == "receive-fault" and math.isfinite(x.loglik)]
+    if len(rivals) < 2 or not any(x is h for x in hyps) or not math.isfinite(h.loglik):
         return 1.0
-    best = max(x.loglik for x in rivals)
-    weights = {id(x): math.exp((x.loglik - best) / NODE_TEMPER) for x in rivals}
-    return weights[id(h)] / sum(weights.values())
+    best = max(rivals)
+    total = sum(math.exp((ll - best) / NODE_TEMPER) for ll in rivals)
+    return math.exp((h.loglik - best) / NODE_TEMPER) / total
 
 
 def calibrated_score(ev: BusEvidence, h: Hypothesis, hyps: list[Hypothesis],
