@@ -42,6 +42,11 @@ def node(res: BusResult, name: str) -> NodeTruth:
     return next(n for n in res.nodes if n.node == name)
 
 
+def records(res: BusResult, kind: str) -> list[list[str]]:
+    """The log lines of one record kind (status, error, ...), split into fields."""
+    return [line.split("\t") for _, _, line in res.records if f"\t{kind}\t" in line]
+
+
 def tec_values(truth: NodeTruth) -> list[int]:
     return [p[1] for p in truth.trajectory]
 
@@ -219,10 +224,10 @@ def test_status_records_and_attribution(tmp_path: Path) -> None:
         '[[fault]]\nnode = "b"\nkind = "rx-noise"\nrate = 0.5\nstart = "100ms"\nend = "200ms"\n')
     res = run(scenario(tmp_path, body, duration="2.5s",
                        extra_run='status_every = "1s"\nattribute_errors = true'))
-    status = [line.split("\t") for _, _, line in res.records if "\tstatus\t" in line]
+    status = records(res, "status")
     assert [(s[0], s[3]) for s in status] == [("1000000000", "a"), ("1000000000", "b"),
                                               ("2000000000", "a"), ("2000000000", "b")]
-    errors = [line.split("\t") for _, _, line in res.records if "\terror\t" in line]
+    errors = records(res, "error")
     assert errors and all(e[7] == "b" for e in errors)
 
 
@@ -272,7 +277,7 @@ def test_status_records_hold_the_counters_at_their_own_time(tmp_path: Path) -> N
         '[[fault]]\nnode = "b"\nkind = "rx-noise"\nrate = 0.3\nstart = "100ms"\n')
     res = run(scenario(tmp_path, body, duration="3s",
                        extra_run='status_every = "50ms"'))
-    status = [line.split("\t") for _, _, line in res.records if "\tstatus\t" in line]
+    status = records(res, "status")
     assert len(status) > 100
     for t, _bus, _kind, name, tec, rec in status:
         traj = node(res, name).trajectory
