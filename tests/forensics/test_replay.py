@@ -6,6 +6,7 @@ tests/forensics/synth.py applies them at every frame, the replay only at error e
 
 from __future__ import annotations
 
+import polars as pl
 import pytest
 
 from tests.forensics import synth
@@ -223,3 +224,46 @@ def test_assumed_first_detector_gets_rule_b_only_while_another_node_flags_active
     per_error = 1 if others_passive else 9
     assert charlie.max_rec == before + 10 * per_error
     assert charlie.first_bonus_events == (0 if others_passive else 10)
+
+
+def test_an_unidentified_error_goes_to_the_sender_of_the_error_right_after_it() -> None:
+    # derived from ISO 11898-1 automatic retransmission: a destroyed frame goes out again at
+    # the next bus idle; when that attempt fails too, the next thing on the bus is its error
+    # record (which names the frame), not the next complete frame, which can be another
+    # sender's. An unidentified error followed by a complete frame keeps that frame's sender.
+    s = synth.Synth()
+    t, line = 0, 0
+
+    def frame(node: str) -> None:
+        nonlocal t, line
+        line += 1
+        end = t + int(synth.FRAME_BITS * synth.BIT_NS)
+        s.frames.append({"run": "r1", "bus": "can0", "t_ns": end - int(3 * synth.BIT_NS),
+                         "start_ns": t, "end_ns": end, "id": synth.IDS[node], "ext": False,
+                         "rtr": False, "fd": False, "brs": False, "esi": False, "dlc": 8,
+                         "data": bytes(8), "bits": synth.FRAME_BITS,
+                         "duration_ns": end - t, "file": "synthetic.frames", "line": line})
+        t = end
+
+    def error(node: str | None) -> None:
+        nonlocal t, line
+        line += 1
+        s.errors.append({"run": "r1", "bus": "can0", "t_ns": t + int(20 * synth.BIT_NS),
+                         "type": "stuff", "field": "arbitration" if node is None else "data",
+                         "id": None if node is None else synth.IDS[node],
+                         "ext": None if node is None else False,
+                         "form": None if node is None else "s", "by": None,
+                         "file": "synthetic.frames", "line": line})
+        t += int(synth.ERROR_BITS * synth.BIT_NS)
+
+    frame("alpha")
+    error(None)        # delta's attempt, unidentified
+    error("delta")     # delta's retransmission fails too, identified
+    frame("bravo")     # bravo wins the next arbitration
+    error(None)        # charlie's attempt, unidentified; charlie's retransmission succeeds
+    frame("charlie")
+    frame("delta")
+    ev = load_bus_evidence(s.connect(), synth.catalog(), "r1", "can0")
+    blind = ev.events.filter(pl.col("id").is_null())
+    assert [ev.nodes[i] for i in blind["tx"].to_list()] == ["delta", "charlie"]
+    assert blind["tx_inferred"].to_list() == [True, True]

@@ -530,16 +530,29 @@ def _events(con: duckdb.DuckDBPyConnection, where: str, codes: pl.DataFrame,
 def _retransmitted(events: pl.DataFrame, frame_t: Column,
                    frame_node: Column) -> pl.DataFrame:
     """Errors whose frame the logger could not tell (``id`` ``-``: the flag came inside the
-    identifier) get as transmitter the sender of the next frame on the bus: a transmitter
-    retransmits a destroyed frame at the next bus idle (ISO 11898-1, automatic
-    retransmission) and, having won arbitration once, normally wins it again."""
-    blind = ((events["kind"] == KIND_ERROR) & events["id"].is_null()).to_numpy()
+    identifier) get as transmitter the sender of what next appears on the bus, a frame or an
+    error record that names its frame: a transmitter retransmits a destroyed frame at the
+    next bus idle (ISO 11898-1, automatic retransmission) and, having won arbitration once,
+    normally wins it again. Under a fault the retransmission often fails too, so the next
+    frame in the log can be someone else's, sent after the retransmissions' error frames."""
+    kind = events["kind"].to_numpy()
+    named = events["id"].is_not_null().to_numpy()
+    blind = (kind == KIND_ERROR) & ~named
     if not blind.any() or frame_t.size == 0:
         return events.with_columns(pl.lit(False).alias("tx_inferred"))
     t = events["t_ns"].to_numpy().astype(np.int64)
+    tx_now = events["tx"].to_numpy().astype(np.int16)
     i = frame_t.searchsorted(t, side="right")
+    frame_at = np.where(i < frame_t.size, frame_t[np.minimum(i, frame_t.size - 1)],
+                        np.iinfo(np.int64).max)
     nxt = np.where(i < frame_t.size, frame_node[np.minimum(i, frame_t.size - 1)], -1)
-    tx = np.where(blind, nxt, events["tx"].to_numpy()).astype(np.int16)
+    told = np.flatnonzero((kind == KIND_ERROR) & named)  # error records naming their frame
+    if told.size:
+        j = np.searchsorted(told, np.arange(t.size), side="right")
+        k = told[np.minimum(j, told.size - 1)]
+        first = (j < told.size) & (t[k] < frame_at)
+        nxt = np.where(first, tx_now[k], nxt)
+    tx = np.where(blind, nxt, tx_now).astype(np.int16)
     return events.with_columns(pl.Series("tx", tx, dtype=pl.Int16),
                                pl.Series("tx_inferred", blind & (nxt >= 0)))
 
