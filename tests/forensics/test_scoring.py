@@ -194,3 +194,37 @@ def test_a_receive_fault_named_by_a_few_nats_over_another_node_is_not_confident(
     assert got == round(want, 3) and got < 0.9
     clear = rx(1, -860.0, 0.0)  # 28.5 nats behind: the node is not in doubt
     assert calibrated_score(ev, best, [best, clear], None, False, False, [], []) == 0.99
+
+
+def test_a_clean_stretch_after_the_last_error_does_not_change_the_scores() -> None:
+    # derived: each hypothesis fits its error rates over the stretch of the log that has
+    # errors, so a fault burst followed by an hour of clean traffic is not read as a low rate
+    # spread over the hour; without that the receive-fault reading (its node's passive time
+    # is fixed, its active time grows with the clean tail) lost ground to the others as the
+    # log got longer
+    from tracelab.forensics.evidence import load_bus_evidence
+    from tracelab.forensics.verdict import _catalog_view, analyse
+
+    def error_parts(s: synth.Synth) -> dict[str, float]:
+        ev = load_bus_evidence(s.connect(), synth.catalog(), "r1", "can0")
+        an = analyse(ev, None, _catalog_view(synth.catalog(), "can0", ev.nodes))
+        return {h.name: h.parts["errors"] for h in an.hyps if "errors" in h.parts}
+
+    burst = synth.generate(400, fault="rx", culprit="charlie", p=0.5, attribute=False, seed=3)
+    short = error_parts(burst)
+    t = max(f["end_ns"] for f in burst.frames)
+    line = len(burst.frames) + len(burst.errors)
+    for k in range(20_000):  # clean frames in the usual pattern, back to back
+        sender = synth.PATTERN[k % len(synth.PATTERN)]
+        line += 1
+        end = t + int(FRAME_NS)
+        burst.frames.append({**burst.frames[0], "t_ns": end - int(3 * synth.BIT_NS),
+                             "start_ns": t, "end_ns": end, "id": synth.IDS[sender],
+                             "line": line})
+        t = end
+    long_ = error_parts(burst)
+    assert short.keys() == long_.keys() and "receive-fault:charlie" in short
+    base_s, base_l = short["bus-disturbance"], long_["bus-disturbance"]
+    for name in short:
+        if math.isfinite(short[name]):
+            assert long_[name] - base_l == pytest.approx(short[name] - base_s, abs=1e-6)

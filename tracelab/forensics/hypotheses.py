@@ -113,6 +113,9 @@ class Hypothesis:
     score: float = 0.0
     why: str = ""
     flood: Flood | None = None
+    #: the reading of the log this hypothesis was scored on when it is not the bus's own
+    #: (unidentified errors charged to its node: verdict._attribution_variants)
+    evidence: BusEvidence | None = None
 
 
 def node_silences(ev: BusEvidence, gaps: pl.DataFrame | None = None,
@@ -408,6 +411,9 @@ def score(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Silence]) -> N
     a receive fault, the time while the node could flag errors vs the time it was
     error-passive, its own frames apart (where a receive fault predicts no errors on others'
     frames). A hypothesis wins by predicting where and when errors are absent as well.
+    Rates are fitted over the stretch from the first error to the last (the clean rest of the
+    log says nothing about them). A hypothesis scored on its own reading of who sent the
+    unidentified frames (``h.evidence``) pays one more penalty for that choice.
     """
     errors = ev.events.with_row_index("k").filter(pl.col("kind") == KIND_ERROR)
     k_idx = errors["k"].to_numpy()
@@ -416,13 +422,23 @@ def score(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Silence]) -> N
     ack = (errors["type"] == "ack").to_numpy()
     known = tx >= 0
     n_err = int(tx.size)
-    penalty = 0.5 * math.log(max(2, ev.frames + n_err))
     total_busy = float(ev.frames_by_id["busy_ns"].sum() or 0.0)
     mean_ns = total_busy / ev.frames if ev.frames else 250_000.0
-    node_busy = ev.share * total_busy
-    node_mean = np.array([node_busy[n] / own.size if own.size else mean_ns
+    node_mean = np.array([ev.share[n] * total_busy / own.size if own.size else mean_ns
                           for n, own in enumerate(ev.own_t)])
+    # the rates are fitted over the stretch of the log that has errors (a burst in a long
+    # clean log is not a low rate spread over all of it): frames from the first error to the
+    # last, a mean frame either side
+    err_t = errors["t_ns"].to_numpy().astype(np.int64)
+    lo = int(err_t.min()) - int(mean_ns) if err_t.size else ev.first_t_ns
+    hi = int(err_t.max()) + int(mean_ns) if err_t.size else ev.last_t_ns + 1
+    own_w = np.array([int(own.searchsorted(hi, side="right") - own.searchsorted(lo))
+                      for own in ev.own_t], dtype=np.int64)
+    frames_w = int(ev.frame_t.searchsorted(hi, side="right") - ev.frame_t.searchsorted(lo))
+    node_busy = own_w * node_mean
+    total_busy = float(node_busy.sum()) + max(0, frames_w - int(own_w.sum())) * mean_ns
     exposure = total_busy + n_err * mean_ns
+    penalty = 0.5 * math.log(max(2, frames_w + n_err))
     lp_type_other = np.where(ack, math.log(P_ACK_OTHER), math.log(1 - P_ACK_OTHER))
     n_nodes = max(1, len(ev.nodes))
     attributed = (by >= 0) & known & (by != tx)
@@ -453,20 +469,25 @@ def score(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Silence]) -> N
         crc_bus = max(-FLAG_CAP, crc_deficit(crc_rest, n_rest))
     for h in hyps:  # loop over hypotheses (a few per node)
         n = h.node
+        tx_h, known_h = tx, known
+        if h.evidence is not None:  # its own reading of who sent the unidentified frames
+            tx_h = h.evidence.events.filter(pl.col("kind") == KIND_ERROR)["tx"].to_numpy(
+                ).astype(np.int64)
+            known_h = tx_h >= 0
         if h.kind in ("bus-disturbance", "silence", "flood") or n is None \
                 or h.facts.get("far_side"):
             rate = bus_rate
             lp = lp_type_other + lp_by_uniform
         elif h.kind in ("transmit-fault", "isolation"):
-            mine = known & (tx == n)
+            mine = known_h & (tx_h == n)
             k_own = int(mine.sum())
             own_exp = node_busy[n] + k_own * node_mean[n]
             rate = (_poisson(k_own, own_exp) + _poisson(n_err - k_own, exposure - own_exp)
                     - 2 * penalty)
             # per bus time (noise per bit) and per attempt (noise per frame): its frames must
             # fail clearly more often both ways, and it must explain most of the errors
-            own_att = int(ev.own_t[n].size) + k_own
-            oth_att = max(1, ev.frames + n_err - own_att)
+            own_att = int(own_w[n]) + k_own
+            oth_att = max(1, frames_w + n_err - own_att)
             h.facts["share"] = k_own / max(1, n_err)
             if k_own * (exposure - own_exp) <= RATE_MARGIN * (n_err - k_own) * own_exp \
                     or k_own * oth_att <= RATE_MARGIN * (n_err - k_own) * own_att \
@@ -483,10 +504,11 @@ def score(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Silence]) -> N
                       if k_idx.size else np.zeros(0, dtype=object))
             passive = np.isin(states, ["error-passive", "bus-off"]) if states.size else \
                 np.zeros(0, dtype=bool)
-            spans = h.replays[n].passive_intervals(ev.last_t_ns + 1)
+            spans = [(max(a, lo), min(b, hi)) for a, b in
+                     h.replays[n].passive_intervals(ev.last_t_ns + 1) if b > lo and a < hi]
             f_in = _count_in(ev.frame_t, spans)
             own_in = _count_in(ev.own_t[n], spans)
-            mine = known & (tx == n)
+            mine = known_h & (tx_h == n)
             k_pown, k_poth = int((passive & mine).sum()), int((passive & ~mine).sum())
             k_act = n_err - k_pown - k_poth
             pown_exp = (own_in + k_pown) * node_mean[n]
@@ -513,6 +535,8 @@ def score(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Silence]) -> N
             h.facts["after_passive"] = k_pown + k_poth
             h.facts["after_passive_own"] = k_pown
             h.facts["passive_frames"] = f_in
+        if h.evidence is not None:  # its own reading of the unidentified frames: a choice
+            rate -= penalty         # fitted to the log, charged like a fitted rate
         h.parts["errors"] = float(rate + lp.sum())
         if h.kind in ("bus-disturbance", "silence", "flood") or h.facts.get("far_side"):
             h.parts["flags"] = flags_bus
@@ -523,8 +547,8 @@ def score(ev: BusEvidence, hyps: list[Hypothesis], silences: list[Silence]) -> N
         h.parts["status"] = _status_loglik(h)
         h.loglik = float(sum(h.parts.values()))
         if n is not None:
-            h.facts["own_errors"] = int(np.sum(known & (tx == n)))
-            h.facts["own_ack"] = int(np.sum(known & (tx == n) & ack))
+            h.facts["own_errors"] = int(np.sum(known_h & (tx_h == n)))
+            h.facts["own_ack"] = int(np.sum(known_h & (tx_h == n) & ack))
             h.facts["own_frames"] = int(ev.own_t[n].size)
         h.facts["errors"] = int(known.sum())
     finite = [h for h in hyps if math.isfinite(h.loglik)]

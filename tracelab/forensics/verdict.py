@@ -6,6 +6,7 @@ object ``tracelab faults --json`` prints (the shape is spec: issue 5, section 2)
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from dataclasses import dataclass
 from typing import Any
@@ -14,7 +15,7 @@ import duckdb
 import numpy as np
 import polars as pl
 
-from tracelab.forensics.bounds import bound_first, calibrated_score
+from tracelab.forensics.bounds import bound_first, calibrated_score, guess_candidates
 from tracelab.forensics.evidence import (
     ASSUMED_BPS,
     KIND_ERROR,
@@ -23,6 +24,7 @@ from tracelab.forensics.evidence import (
     evidence_window,
     frames_by_id,
     load_bus_evidence,
+    prepare_counts,
     run_buses,
     single_pair,
 )
@@ -176,6 +178,8 @@ def replay_faults(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run: str
         if ev.bit_rate_source == "assumed":
             result["assumptions"].append(ASSUMED_RATE.format(bus=bus, kbps=ASSUMED_BPS // 1000))
         results.append(result)
+        if winner.evidence is not None:  # the reading the verdict was written from
+            ev = winner.evidence
         counters.append(counters_frame(ev, winner, config))
         states.append(states_frame(ev, winner))
         del ev, winner  # this bus's frames (and their scratch files) go before the next loads
@@ -214,6 +218,8 @@ def analyse(ev: BusEvidence, gaps: pl.DataFrame | None, cat: CatalogView,
     floods = find_floods(ev, cat.periods)
     hyps = candidates(ev, base, first, silences, floods)
     readings = _loss_variants(ev, hyps, config) if walk is not None and not attributed else []
+    if walk is None:
+        readings += _attribution_variants(ev, hyps, config)
     score(ev, hyps + readings, silences)
     if readings:
         hyps = _best_readings(hyps, readings)
@@ -258,18 +264,67 @@ def _loss_variants(ev: BusEvidence, hyps: list[Hypothesis],
     return out
 
 
+def _attribution_variants(ev: BusEvidence, hyps: list[Hypothesis],
+                          config: ConfinementConfig) -> list[Hypothesis]:
+    """Errors whose frame the logger could not identify carry a guessed transmitter (the
+    sender of what followed them, evidence._retransmitted). Under a fault at node n many of
+    them are n's own failed retransmissions, and one wrong guess shifts n's replayed TEC by
+    8 and its bus-off by a frame or more. So each receive- and transmit-fault hypothesis of a
+    node that may have sent some of them (bounds.guess_candidates) is also scored with those
+    charged to n; _best_readings keeps the reading that explains the log best (who sent those
+    frames is a nuisance parameter, profiled out as the losses' contents are)."""
+    if "tx_inferred" not in ev.events.columns:
+        return []
+    guessed = ev.events["tx_inferred"].fill_null(False).to_numpy()
+    if not guessed.any():
+        return []
+    tx_now = ev.events["tx"].to_numpy().astype(np.int64)
+    cand = guess_candidates(ev, ev.events["t_ns"].to_numpy()[guessed].astype(np.int64))
+    readings: dict[int, tuple[BusEvidence, list[NodeReplay]] | None] = {}
+    out: list[Hypothesis] = []
+    for h in hyps:  # loop over the node hypotheses (a few per node)
+        n = h.node
+        if h.kind not in ("receive-fault", "transmit-fault") or n is None:
+            continue
+        if n not in readings:
+            may = (cand == n).any(axis=1) | (cand[:, 0] < 0)
+            charge = np.where(may, n, tx_now[guessed])
+            readings[n] = None
+            if not np.array_equal(charge, tx_now[guessed]):
+                tx_alt = tx_now.copy()
+                tx_alt[guessed] = charge
+                alt = dataclasses.replace(
+                    ev, events=ev.events.with_columns(pl.Series("tx", tx_alt, dtype=pl.Int16)),
+                    _recovery_cache={}, _active_cache={})
+                prepare_counts(alt)
+                readings[n] = (alt, base_replays(alt, config, keep_rows=False))
+        reading = readings[n]
+        if reading is None:
+            continue
+        alt, base = reading
+        reps = list(base)
+        if h.kind == "receive-fault":
+            reps[n] = replay_node(alt, n, True, config, keep_rows=False)
+        v = Hypothesis(h.name, h.kind, n, reps, prior=h.prior, evidence=alt)
+        v.facts = dict(h.facts)
+        out.append(v)
+    return out
+
+
 def _best_readings(hyps: list[Hypothesis], readings: list[Hypothesis]) -> list[Hypothesis]:
-    """Per receive-fault hypothesis the reading of the losses with the highest likelihood
-    (ties keep the earlier reading of LOSS_READINGS), posteriors renormalised over what is
-    kept."""
+    """Per node hypothesis the reading (of the losses, or of who sent the unidentified
+    frames) with the highest likelihood (ties keep the earlier reading: the bus's own, then
+    LOSS_READINGS in order), posteriors renormalised over what is kept."""
+    varied = ("receive-fault", "transmit-fault")
     best: dict[str, Hypothesis] = {}
     for h in hyps + readings:  # the most likely reading comes first in hyps
-        if h.kind != "receive-fault":
+        if h.kind not in varied:
             continue
-        h.facts.setdefault("fill", "rate")
+        if h.kind == "receive-fault":
+            h.facts.setdefault("fill", "rate")
         if h.name not in best or h.loglik > best[h.name].loglik:
             best[h.name] = h
-    kept = [best[h.name] if h.kind == "receive-fault" else h for h in hyps]
+    kept = [best[h.name] if h.kind in varied else h for h in hyps]
     finite = [h.loglik + math.log(h.prior) for h in kept if math.isfinite(h.loglik)]
     if finite:
         top = max(finite)
@@ -381,6 +436,8 @@ def bus_verdict(ev: BusEvidence, origin: str | None, gaps: pl.DataFrame | None,
         cat = CatalogView(cat, {}, set())
     an = analyse(ev, gaps, cat, config)
     hyps, silences = an.hyps, an.silences
+    if hyps[0].evidence is not None:  # the winner's reading of who sent unidentified frames
+        ev = hyps[0].evidence
     for h in hyps:
         h.facts["silences"] = silences
     attributed_everywhere = an.attributed
@@ -537,8 +594,8 @@ def _segment(ev: BusEvidence, cat: CatalogView, config: ConfinementConfig,
     out = []
     for w, lo, hi in windows:
         if w.kind == "receive-fault" and w.node is not None:
-            w.replays[w.node] = _replay_full(evidence_window(ev, lo, hi), w.node, config,
-                                             w.facts.get("fill", "rate"))
+            src = w.evidence if w.evidence is not None else evidence_window(ev, lo, hi)
+            w.replays[w.node] = _replay_full(src, w.node, config, w.facts.get("fill", "rate"))
         out.append(_finding(ev, w, lo, hi))
     times = [(f["first_transition"] or {}).get("t_ns") for f in out]
     known = [(t, i) for i, t in enumerate(times) if t is not None]
