@@ -167,20 +167,20 @@ def frames_by_id(con: duckdb.DuckDBPyConnection, run: str | None = None,
             "SELECT coalesce(bool_or(ext), false), count(*) FILTER (WHERE fd), count(*) "
             "FROM frames").fetchall()[0]
         if not any_ext and not fd_frames and total >= SAMPLED_BY_ID_FRAMES:
-            # Counts per identifier come from the identifier array the replay reads anyway
-            # (load_bus_evidence); the bus time per identifier from a 2 % block sample of
-            # durations (frame lengths barely vary per identifier).
+            # Counts per identifier from a scan of the identifiers alone; the bus time per
+            # identifier from a 2 % block sample of durations (frame lengths barely vary
+            # per identifier), which spares the scan the derived durations.
+            counts = _frame(con, "SELECT id, count(*) AS frames FROM frames GROUP BY id")
             mean = _frame(con, "SELECT id, avg(duration_ns)::DOUBLE AS mean_ns FROM (SELECT "
                           "id, duration_ns FROM frames USING SAMPLE 2 PERCENT (system)) "
                           "GROUP BY id")
             if mean.height == 0:
                 mean = _frame(con, "SELECT id, avg(duration_ns)::DOUBLE AS mean_ns "
                               "FROM frames GROUP BY id")
-            return mean.select(pl.lit(pair[0]).alias("run"), pl.lit(pair[1]).alias("bus"),
-                               pl.col("id").cast(pl.UInt32), pl.lit(False).alias("ext"),
-                               pl.lit(None, pl.Int64).alias("frames"),
-                               pl.lit(None, pl.Int64).alias("busy_ns"),
-                               pl.lit(0, pl.Int64).alias("fd_frames"), "mean_ns")
+            return _counted_by_id(counts, mean).select(
+                pl.lit(pair[0]).alias("run"), pl.lit(pair[1]).alias("bus"),
+                pl.col("id").cast(pl.UInt32), pl.lit(False).alias("ext"), "frames",
+                "busy_ns", pl.lit(0, pl.Int64).alias("fd_frames"))
         frame = _frame(con, "SELECT id, ext, count(*) AS frames, sum(duration_ns)::BIGINT "
                        "AS busy_ns, count(*) FILTER (WHERE fd) AS fd_frames FROM frames "
                        "GROUP BY ALL")
@@ -218,10 +218,13 @@ def load_bus_evidence(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run:
     any_fd = bool(int(by_id["fd_frames"].sum() or 0))
     n_frames = int(by_id["frames"].sum() or 0) if by_id["frames"].null_count() == 0 else \
         int(con.sql(f"SELECT count(*) {scan}").fetchall()[0][0])
-    frames = load_frames(con, scan, codes, len(nodes), any_ext, any_fd,
-                         count_ids="mean_ns" in by_id.columns, total=n_frames)
-    if "mean_ns" in by_id.columns:
-        by_id = _counted_by_id(frames.id_values, frames.id_counts, by_id, codes)
+    own_sizes = np.zeros(len(nodes), dtype=np.int64)
+    for code, count in zip(by_id["code"].fill_null(-1).to_list(),
+                           by_id["frames"].fill_null(0).to_list(), strict=True):
+        if code >= 0:
+            own_sizes[code] += int(count)
+    frames = load_frames(con, scan, codes, len(nodes), any_ext, any_fd, total=n_frames,
+                         own_sizes=own_sizes)
     frame_t, frame_node, own_t = frames.t, frames.node, frames.own
     busy = np.zeros(len(nodes), dtype=np.float64)
     for code, ns in zip(by_id["code"].fill_null(-1).to_list(), by_id["busy_ns"].to_list(),
@@ -267,8 +270,6 @@ class Frames:
     own: list[Column]
     esi: list[tuple[Column, Column]]
     esi_set: int
-    id_values: np.ndarray
-    id_counts: np.ndarray
 
 
 def _spill(con: duckdb.DuckDBPyConnection) -> Spill:
@@ -283,18 +284,19 @@ def _spill(con: duckdb.DuckDBPyConnection) -> Spill:
 
 
 #: Bytes a frame takes while the columns of a bus are built in memory: its time and sender,
-#: and the per-sender copy of its time twice (pieces, then one array): 8 + 2 + 8 + 8.
-IN_MEMORY_BYTES_PER_FRAME = 26
+#: and the per-sender copy of its time: 8 + 2 + 8.
+IN_MEMORY_BYTES_PER_FRAME = 18
 
 
 def load_frames(con: duckdb.DuckDBPyConnection, scan: str, codes: pl.DataFrame, n_nodes: int,
-                any_ext: bool, any_fd: bool, count_ids: bool = False,
-                total: int | None = None) -> Frames:
+                any_ext: bool, any_fd: bool, total: int | None = None,
+                own_sizes: np.ndarray | None = None) -> Frames:
     """One streaming pass over the frames (``SELECT ... {scan}``) in record batches of
     ``BATCH_ROWS``: frame times, senders and per-sender times. When ``total`` frames fit the
-    memory allowance they fill arrays of that size; otherwise they go into columns that
-    spill beyond it. Frames out of time order (logs with backward time steps) are read
-    again sorted by time, in the view's order at equal times (as a stable sort would)."""
+    memory allowance they fill arrays of that size (each sender's times its stretch of one
+    array, ``own_sizes`` frames long); otherwise they go into columns that spill beyond it.
+    Frames out of time order (logs with backward time steps) are read again sorted by time,
+    in the view's order at equal times (as a stable sort would)."""
     cols = "t_ns, id" + (", ext" if any_ext else "") \
         + (", (fd::INT + (fd AND esi)::INT)::TINYINT AS esi" if any_fd else "")
     spill = _spill(con)
@@ -304,28 +306,28 @@ def load_frames(con: duckdb.DuckDBPyConnection, scan: str, codes: pl.DataFrame, 
                f"SELECT {cols} FROM (SELECT *, row_number() OVER () AS _order {scan}) "
                "ORDER BY t_ns, _order"]
     for query in queries:
-        batches = _Batches(con, query, codes, any_ext, any_fd, count_ids)
-        frames = (_in_memory(batches, n_nodes, int(total or 0)) if fits
-                  else _streamed(batches, n_nodes, spill))
+        batches = _Batches(con, query, codes, any_ext, any_fd)
+        frames = (_in_memory(batches, n_nodes, int(total or 0), own_sizes)
+                  if fits and own_sizes is not None else _streamed(batches, n_nodes, spill))
+        if frames is None and batches.ordered:  # counts that did not match: the plain way
+            frames = _streamed(_Batches(con, query, codes, any_ext, any_fd), n_nodes, spill)
         if frames is not None:
             return frames
     raise AssertionError("frames sorted by time came out of order")  # pragma: no cover
 
 
 class _Batches:
-    """The record batches of one frames query as (t_ns, sender, ESI flag or None) arrays,
-    counting frames per identifier on the way; ``ordered`` turns False (and the iteration
-    stops) at the first frame earlier than the one before it."""
+    """The record batches of one frames query as (t_ns, sender, ESI flag or None) arrays;
+    ``ordered`` turns False (and the iteration stops) at the first frame earlier than the
+    one before it."""
 
     def __init__(self, con: duckdb.DuckDBPyConnection, query: str, codes: pl.DataFrame,
-                 any_ext: bool, any_fd: bool, count_ids: bool) -> None:
+                 any_ext: bool, any_fd: bool) -> None:
         self.reader = con.sql(query).to_arrow_reader(BATCH_ROWS)
         self.mapper = _KeyMap(codes, any_ext)
-        self.any_ext, self.any_fd, self.count_ids = any_ext, any_fd, count_ids
+        self.any_ext, self.any_fd = any_ext, any_fd
         self.ordered = True
         self.esi_set = 0
-        self._counts = np.zeros(0, dtype=np.int64)
-        self._other: dict[int, int] = {}
 
     def __iter__(self) -> Iterator[tuple[np.ndarray, np.ndarray, np.ndarray | None]]:
         last = None
@@ -338,8 +340,6 @@ class _Batches:
                 return
             last = int(t[-1])
             ids = batch.column(1).to_numpy()
-            if self.count_ids:
-                self._count(ids)
             keys = ids.astype(np.int64) * 2 + batch.column(2).to_numpy(zero_copy_only=False) \
                 if self.any_ext else ids
             flag = None
@@ -348,29 +348,6 @@ class _Batches:
                     zero_copy_only=False), dtype=np.int8)
                 self.esi_set += int(np.count_nonzero(flag == 2))
             yield t, self.mapper(keys), flag
-
-    def _count(self, ids: np.ndarray) -> None:
-        if int(ids.max()) < 1 << 16:
-            counts = np.bincount(ids)
-            if counts.size > self._counts.size:
-                counts[:self._counts.size] += self._counts
-                self._counts = counts
-            else:
-                self._counts[:counts.size] += counts
-        else:
-            for v, c in zip(*np.unique(ids, return_counts=True), strict=True):
-                self._other[int(v)] = self._other.get(int(v), 0) + int(c)
-
-    def id_counts(self) -> tuple[np.ndarray, np.ndarray]:
-        """(identifier, frames) of the identifiers seen, sorted."""
-        values = np.flatnonzero(self._counts)
-        counts = self._counts[values]
-        if self._other:
-            extra = sorted(self._other)
-            values = np.concatenate([values, np.array(extra, dtype=np.int64)])
-            counts = np.concatenate([counts, np.array([self._other[v] for v in extra],
-                                                      dtype=np.int64)])
-        return values, counts
 
 
 def _esi_columns(t: np.ndarray, node: np.ndarray, flag: np.ndarray, n_nodes: int
@@ -383,12 +360,17 @@ def _esi_columns(t: np.ndarray, node: np.ndarray, flag: np.ndarray, n_nodes: int
     return out
 
 
-def _in_memory(batches: _Batches, n_nodes: int, total: int) -> Frames | None:
-    """The pass into arrays of ``total`` frames; per-sender times from one stable sort."""
+def _in_memory(batches: _Batches, n_nodes: int, total: int,
+               own_sizes: np.ndarray) -> Frames | None:
+    """The pass into arrays of ``total`` frames; each sender's times go straight into its
+    stretch of one array (its size known from the counts per identifier), batch by batch
+    while the batch is in cache. None when the frames do not match the counts."""
     t = np.empty(total, dtype=np.int64)
     node = np.empty(total, dtype=np.int16)
     flags = np.empty(total, dtype=np.int8) if batches.any_fd else None
-    pieces: list[list[np.ndarray]] = [[] for _ in range(n_nodes)]
+    ends = np.cumsum(own_sizes)
+    own_all = np.empty(int(ends[-1]) if ends.size else 0, dtype=np.int64)
+    filled = (ends - own_sizes).tolist()
     at = 0
     for bt, bn, bf in batches:
         if at + bt.size > total:
@@ -398,15 +380,17 @@ def _in_memory(batches: _Batches, n_nodes: int, total: int) -> Frames | None:
         if flags is not None and bf is not None:
             flags[at:at + bt.size] = bf
         at += bt.size
-        for n, times in enumerate(_split_by_node(bt, bn, n_nodes)):  # batch by batch: in cache
-            pieces[n].append(times)
-    if not batches.ordered or at != total:
+        for n, k in enumerate(_split_into(bt, bn, n_nodes, own_all, filled, ends)):
+            if k < 0:
+                return None
+            filled[n] += k
+    if not batches.ordered or at != total or filled != ends.tolist():
         return None
-    own = [Column.of(np.concatenate(p) if p else np.zeros(0, np.int64)) for p in pieces]
+    starts = ends - own_sizes
+    own = [Column.of(own_all[a:z]) for a, z in zip(starts.tolist(), ends.tolist(), strict=True)]
     esi = [(Column.of(a), Column.of(b)) for a, b in _esi_columns(t, node, flags, n_nodes)] \
         if flags is not None else []
-    values, counts = batches.id_counts()
-    return Frames(Column.of(t), Column.of(node), own, esi, batches.esi_set, values, counts)
+    return Frames(Column.of(t), Column.of(node), own, esi, batches.esi_set)
 
 
 def _streamed(batches: _Batches, n_nodes: int, spill: Spill) -> Frames | None:
@@ -427,29 +411,18 @@ def _streamed(batches: _Batches, n_nodes: int, spill: Spill) -> Frames | None:
                 off.append(b)
     if not batches.ordered:
         return None
-    values, counts = batches.id_counts()
     return Frames(t_col.finish(), node_col.finish(), [c.finish() for c in own],
-                  [(a.finish(), b.finish()) for a, b in esi], batches.esi_set, values, counts)
+                  [(a.finish(), b.finish()) for a, b in esi], batches.esi_set)
 
 
-def _counted_by_id(values: np.ndarray, counts: np.ndarray, sampled: pl.DataFrame,
-                   codes: pl.DataFrame) -> pl.DataFrame:
-    """frames and busy_ns per identifier from the identifier counts and sampled durations."""
+def _counted_by_id(counts: pl.DataFrame, sampled: pl.DataFrame) -> pl.DataFrame:
+    """frames and busy_ns per identifier from the counts and the sampled mean durations (an
+    identifier the sample missed takes the mean over the sampled identifiers)."""
     overall = float(np.mean(sampled["mean_ns"].to_numpy())) if sampled.height else 0.0
-    mean = dict(zip(sampled["id"].to_list(), sampled["mean_ns"].to_list(), strict=True))
-    frame = pl.DataFrame({
-        "id": values.astype(np.uint32), "ext": np.zeros(values.size, bool),
-        "frames": counts.astype(np.int64),
-        "busy_ns": np.round(counts * np.array([mean.get(int(v), overall) for v in values],
-                                              dtype=np.float64)).astype(np.int64),
-        "fd_frames": np.zeros(values.size, np.int64)})
-    return frame.join(codes.select("id", "ext", "sender", "code"), on=["id", "ext"], how="left")
-
-
-def _bincount_ids(ids: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    counts = np.bincount(ids)
-    values = np.flatnonzero(counts)
-    return values, counts[values]
+    return counts.join(sampled, on="id", how="left").with_columns(
+        pl.col("frames").cast(pl.Int64),
+        (pl.col("frames") * pl.col("mean_ns").fill_null(overall)).round().cast(pl.Int64)
+        .alias("busy_ns")).drop("mean_ns")
 
 
 def _split_by_node(frame_t: np.ndarray, frame_node: np.ndarray, n: int,
@@ -464,6 +437,31 @@ def _split_by_node(frame_t: np.ndarray, frame_node: np.ndarray, n: int,
     bounds = np.searchsorted(frame_node[order], np.arange(-1, n + 1, dtype=np.int16),
                              side="left")
     return [grouped[bounds[i + 1]:bounds[i + 2]] for i in range(n)]
+
+
+def _split_into(frame_t: np.ndarray, frame_node: np.ndarray, n: int, into: np.ndarray,
+                at: list[int], ends: np.ndarray) -> list[int]:
+    """_split_by_node written into ``into``: node i's times at at[i] (not past ends[i]);
+    per node the number written, -1 when they would not fit."""
+    if n > 8:
+        parts = _split_by_node(frame_t, frame_node, n)
+        out = []
+        for i, part in enumerate(parts):  # a loop over nodes
+            if at[i] + part.size > ends[i]:
+                return [-1] * n
+            into[at[i]:at[i] + part.size] = part
+            out.append(int(part.size))
+        return out
+    out = []
+    for i in range(n):  # a loop over a few nodes
+        mask = frame_node == i
+        k = int(np.count_nonzero(mask))
+        if at[i] + k > ends[i]:
+            return [-1] * n
+        if k:
+            np.compress(mask, frame_t, out=into[at[i]:at[i] + k])
+        out.append(k)
+    return out
 
 
 class _KeyMap:
