@@ -228,3 +228,27 @@ def test_a_clean_stretch_after_the_last_error_does_not_change_the_scores() -> No
     for name in short:
         if math.isfinite(short[name]):
             assert long_[name] - base_l == pytest.approx(short[name] - base_s, abs=1e-6)
+
+
+def test_a_transmit_fault_named_by_a_few_nats_over_a_receive_fault_of_its_node_is_not_confident(
+        ) -> None:
+    # derived (docs/forensics.md section 9, seed 2039): a receive-faulty node fails its own
+    # frames as well, so for a node with short frames the two kinds at that node differ by a
+    # few nats; the verdict's score is the kind's share at the node, tempered by NODE_TEMPER
+    from typing import Any, cast
+
+    from tracelab.forensics.bounds import NODE_TEMPER, calibrated_score
+    from tracelab.forensics.hypotheses import Hypothesis
+
+    def h(kind: str, node: int, loglik: float, score: float) -> Hypothesis:
+        x = Hypothesis(f"{kind}:n{node}", kind, node, [])
+        x.loglik, x.score = loglik, score
+        return x
+
+    ev = cast(Any, None)
+    tx, rx = h("transmit-fault", 4, -2222.1, 0.93), h("receive-fault", 4, -2224.7, 0.07)
+    other = h("receive-fault", 1, float("-inf"), 0.0)
+    got = calibrated_score(ev, tx, [tx, rx, other], None, False, False, [], [])
+    assert got == round(1 / (1 + math.exp(-2.6 / NODE_TEMPER)), 3) and got < 0.9
+    far = h("receive-fault", 4, -2300.0, 0.0)  # 78 nats behind: the kind is not in doubt
+    assert calibrated_score(ev, tx, [tx, far], None, False, False, [], []) == 0.93

@@ -175,6 +175,21 @@ def _node_share(h: Hypothesis, hyps: list[Hypothesis]) -> float:
     return math.exp((h.loglik - best) / NODE_TEMPER) / total
 
 
+def _kind_share(h: Hypothesis, hyps: list[Hypothesis]) -> float:
+    """The tempered posterior of h's kind (a transmit or a receive fault) at its node,
+    against the other of the two at the same node: a receive-faulty node fails its own
+    frames too, so when it sends short frames the two readings differ by a few nats only."""
+    kinds = ("transmit-fault", "receive-fault")
+    if h.kind not in kinds or h.node is None or not any(x is h for x in hyps) \
+            or not math.isfinite(h.loglik):
+        return 1.0
+    rivals = [x.loglik for x in hyps if x.kind in kinds and x.node == h.node
+              and math.isfinite(x.loglik)]
+    best = max(rivals)
+    total = sum(math.exp((ll - best) / NODE_TEMPER) for ll in rivals)
+    return math.exp((h.loglik - best) / NODE_TEMPER) / total
+
+
 def calibrated_score(ev: BusEvidence, h: Hypothesis, hyps: list[Hypothesis],
                 first: dict[str, Any] | None, thin: bool, clean: bool,
                 alternatives: list[dict[str, Any]], findings: list[dict[str, Any]]) -> float:
@@ -190,6 +205,8 @@ def calibrated_score(ev: BusEvidence, h: Hypothesis, hyps: list[Hypothesis],
         p = min(p, 0.5)
     if h.kind == "receive-fault" and not alternatives:
         p = min(p, _node_share(h, hyps))
+    if not alternatives:
+        p = min(p, _kind_share(h, hyps))
     crc_deficit = h.parts.get("types", 0.0)
     if h.kind == "bus-disturbance" and (crc_deficit <= -CRC_DEFICIT_DECISIVE
                                         or (h.facts.get("onset_cuts") and crc_deficit < 0)):
