@@ -67,6 +67,15 @@ class Synth:
         return con
 
 
+def frame_row(node: str, start: int, line: int) -> dict[str, Any]:
+    """One classic 8-byte frame of ``node`` starting at ``start`` (ns), FRAME_BITS long."""
+    end = start + int(FRAME_BITS * BIT_NS)
+    return {"run": "r1", "bus": "can0", "t_ns": end - int(3 * BIT_NS), "start_ns": start,
+            "end_ns": end, "id": IDS[node], "ext": False, "rtr": False, "fd": False,
+            "brs": False, "esi": False, "dlc": 8, "data": bytes(8), "bits": FRAME_BITS,
+            "duration_ns": end - start, "file": "synthetic.frames", "line": line}
+
+
 def generate(slots: int, fault: str = "none", culprit: str = "alpha", p: float = 0.3,
              attribute: bool = True, seed: int = 1, fault_from_slot: int = 0,
              fd: bool = False, status_every: int = 0) -> Synth:

@@ -181,13 +181,8 @@ def _rule_b_log(others_passive: bool) -> synth.Synth:
     def frame(node: str) -> None:
         nonlocal t, line
         line += 1
-        end = t + int(synth.FRAME_BITS * synth.BIT_NS)
-        s.frames.append({"run": "r1", "bus": "can0", "t_ns": end - int(3 * synth.BIT_NS),
-                         "start_ns": t, "end_ns": end, "id": synth.IDS[node], "ext": False,
-                         "rtr": False, "fd": False, "brs": False, "esi": False, "dlc": 8,
-                         "data": bytes(8), "bits": synth.FRAME_BITS,
-                         "duration_ns": end - t, "file": "synthetic.frames", "line": line})
-        t = end
+        s.frames.append(synth.frame_row(node, t, line))
+        t = s.frames[-1]["end_ns"]
 
     def error(node: str, by: str | None) -> None:
         nonlocal t, line
@@ -237,13 +232,8 @@ def test_an_unidentified_error_goes_to_the_sender_of_the_error_right_after_it() 
     def frame(node: str) -> None:
         nonlocal t, line
         line += 1
-        end = t + int(synth.FRAME_BITS * synth.BIT_NS)
-        s.frames.append({"run": "r1", "bus": "can0", "t_ns": end - int(3 * synth.BIT_NS),
-                         "start_ns": t, "end_ns": end, "id": synth.IDS[node], "ext": False,
-                         "rtr": False, "fd": False, "brs": False, "esi": False, "dlc": 8,
-                         "data": bytes(8), "bits": synth.FRAME_BITS,
-                         "duration_ns": end - t, "file": "synthetic.frames", "line": line})
-        t = end
+        s.frames.append(synth.frame_row(node, t, line))
+        t = s.frames[-1]["end_ns"]
 
     def error(node: str | None) -> None:
         nonlocal t, line

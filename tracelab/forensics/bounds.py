@@ -165,14 +165,22 @@ def _bound_guessed(ev: BusEvidence, n: int, bonus: bool, first: dict[str, Any],
 NODE_TEMPER = 3.0
 
 
+def _tempered_share(h: Hypothesis, rivals: list[Hypothesis]) -> float:
+    """h's posterior among ``rivals`` (h one of them) with likelihoods tempered by
+    NODE_TEMPER; 1 when h has no finite rival but itself."""
+    lls = [x.loglik for x in rivals if math.isfinite(x.loglik)]
+    if len(lls) < 2 or not math.isfinite(h.loglik):
+        return 1.0
+    best = max(lls)
+    total = sum(math.exp((ll - best) / NODE_TEMPER) for ll in lls)
+    return math.exp((h.loglik - best) / NODE_TEMPER) / total
+
+
 def _node_share(h: Hypothesis, hyps: list[Hypothesis]) -> float:
     """The tempered posterior of h's node among the receive faults of every node."""
-    rivals = [x.loglik for x in hyps if x.kind == "receive-fault" and math.isfinite(x.loglik)]
-    if len(rivals) < 2 or not any(x is h for x in hyps) or not math.isfinite(h.loglik):
+    if not any(x is h for x in hyps):
         return 1.0
-    best = max(rivals)
-    total = sum(math.exp((ll - best) / NODE_TEMPER) for ll in rivals)
-    return math.exp((h.loglik - best) / NODE_TEMPER) / total
+    return _tempered_share(h, [x for x in hyps if x.kind == "receive-fault"])
 
 
 def _kind_share(h: Hypothesis, hyps: list[Hypothesis]) -> float:
@@ -180,14 +188,9 @@ def _kind_share(h: Hypothesis, hyps: list[Hypothesis]) -> float:
     against the other of the two at the same node: a receive-faulty node fails its own
     frames too, so when it sends short frames the two readings differ by a few nats only."""
     kinds = ("transmit-fault", "receive-fault")
-    if h.kind not in kinds or h.node is None or not any(x is h for x in hyps) \
-            or not math.isfinite(h.loglik):
+    if h.kind not in kinds or h.node is None or not any(x is h for x in hyps):
         return 1.0
-    rivals = [x.loglik for x in hyps if x.kind in kinds and x.node == h.node
-              and math.isfinite(x.loglik)]
-    best = max(rivals)
-    total = sum(math.exp((ll - best) / NODE_TEMPER) for ll in rivals)
-    return math.exp((h.loglik - best) / NODE_TEMPER) / total
+    return _tempered_share(h, [x for x in hyps if x.kind in kinds and x.node == h.node])
 
 
 def calibrated_score(ev: BusEvidence, h: Hypothesis, hyps: list[Hypothesis],

@@ -219,18 +219,16 @@ def load_bus_evidence(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run:
     n_frames = int(by_id["frames"].sum() or 0) if by_id["frames"].null_count() == 0 else \
         int(con.sql(f"SELECT count(*) {scan}").fetchall()[0][0])
     own_sizes = np.zeros(len(nodes), dtype=np.int64)
-    for code, count in zip(by_id["code"].fill_null(-1).to_list(),
-                           by_id["frames"].fill_null(0).to_list(), strict=True):
+    busy = np.zeros(len(nodes), dtype=np.float64)
+    for code, count, ns in zip(by_id["code"].fill_null(-1).to_list(),
+                               by_id["frames"].fill_null(0).to_list(),
+                               by_id["busy_ns"].to_list(), strict=True):
         if code >= 0:
             own_sizes[code] += int(count)
+            busy[code] += float(ns or 0)
     frames = load_frames(con, scan, codes, len(nodes), any_ext, any_fd, total=n_frames,
                          own_sizes=own_sizes)
     frame_t, frame_node, own_t = frames.t, frames.node, frames.own
-    busy = np.zeros(len(nodes), dtype=np.float64)
-    for code, ns in zip(by_id["code"].fill_null(-1).to_list(), by_id["busy_ns"].to_list(),
-                        strict=True):
-        if code >= 0:
-            busy[code] += float(ns or 0)
     total = float(by_id["busy_ns"].sum() or 0.0)
     share = busy / total if total > 0 else np.full(len(nodes), 1.0 / max(1, len(nodes)))
     events = _retransmitted(_events(con, where, codes, nodes), frame_t, frame_node)
