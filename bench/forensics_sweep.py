@@ -367,6 +367,11 @@ def _truth_expectation(s: Scenario, truth: dict[str, Any], bus: str) -> dict[str
                   and f["kind"] in ("rx-noise", "tx-noise", "local-noise")]
         if not behind:
             behind = [f for f in faults if f["kind"] == "bus-noise"]
+        if not behind:
+            # a receive fault elsewhere destroys the others' frames: their transmitters can
+            # degrade first (TEC +8 per own frame) while its own REC still climbs
+            behind = [f for f in faults if f["kind"] in ("rx-noise", "local-noise")
+                      and f.get("start_ns", 0) <= first["t_ns"]]
         if vanish and any(f["node"] == first["node"] for f in vanish):
             f = next(f for f in vanish if f["node"] == first["node"])
             exp.update(node=f["node"], state="silent", t_ns=f["start_ns"],

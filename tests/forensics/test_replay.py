@@ -257,3 +257,61 @@ def test_an_unidentified_error_goes_to_the_sender_of_the_error_right_after_it() 
     blind = ev.events.filter(pl.col("id").is_null())
     assert [ev.nodes[i] for i in blind["tx"].to_list()] == ["delta", "charlie"]
     assert blind["tx_inferred"].to_list() == [True, True]
+
+
+def _arbitration_log(errors: int) -> synth.Synth:
+    """Alpha's frames destroyed ``errors`` times by a flag in the arbitration field
+    (unattributed), each followed by its successful retransmission, among the others'."""
+    s = synth.Synth()
+    t, line = 0, 0
+
+    def frame(node: str) -> None:
+        nonlocal t, line
+        line += 1
+        s.frames.append(synth.frame_row(node, t, line))
+        t = s.frames[-1]["end_ns"]
+
+    for node in ("bravo", "charlie", "delta"):
+        frame(node)
+    for _ in range(errors):
+        line += 1
+        s.errors.append({"run": "r1", "bus": "can0", "t_ns": t + int(9 * synth.BIT_NS),
+                         "type": "stuff", "field": "arbitration", "id": synth.IDS["alpha"],
+                         "ext": False, "form": "s", "by": None,
+                         "file": "synthetic.frames", "line": line})
+        t += int((9 + 14 + 8 + 3) * synth.BIT_NS)
+        frame("alpha")
+        frame("bravo")
+    return s
+
+
+def test_a_flag_from_another_receiver_in_arbitration_does_not_raise_the_senders_tec() -> None:
+    # from memory: ISO 11898-1:2015 clause 10.x (a transmitter that sends a recessive bit of
+    # the arbitration field and monitors a dominant one has lost arbitration and goes on as
+    # a receiver) and 12.1.4.2 rule c exception 2 (a stuff error during arbitration on a
+    # recessive stuff bit read dominant does not raise TEC). Another node's error flag in
+    # the arbitration field overwrites one or the other, so the sender's TEC stays; as a
+    # receiver that detects the flag it gets REC +1 (rule a). Its own monitoring (no
+    # foreign flags) counts +8.
+    s = _arbitration_log(errors=3)
+    ev = load_bus_evidence(s.connect(), synth.catalog(), "r1", "can0")
+    alpha = ev.nodes.index("alpha")
+    own = replay_node(ev, alpha)
+    foreign = replay_node(ev, alpha, foreign_flags=True)
+    assert (own.max_tec, own.max_rec) == (3 * 8 - 2, 0)  # +8 each, -1 per success between
+    assert (foreign.max_tec, foreign.max_rec) == (0, 1)  # +1, then -1 at the next reception
+
+
+def test_receive_fault_hypotheses_replay_the_others_with_foreign_flags() -> None:
+    # the readings differ only in where the flag came from: under a receive fault of
+    # charlie its flags cost alpha arbitration (above); under a disturbance of the whole
+    # bus alpha's own monitoring finds each error (TEC +8, then -1 per own success)
+    from tracelab.forensics.verdict import CatalogView, analyse
+
+    s = _arbitration_log(errors=20)
+    ev = load_bus_evidence(s.connect(), synth.catalog(), "r1", "can0")
+    alpha = ev.nodes.index("alpha")
+    hyps = {h.name: h for h in analyse(ev, None, CatalogView(set(), {}, set())).hyps}
+    assert hyps["bus-disturbance"].replays[alpha].max_tec > 8
+    assert hyps["receive-fault:charlie"].replays[alpha].max_tec == 0
+    assert hyps["transmit-fault:alpha"].replays[alpha].max_tec > 8  # its own bit errors

@@ -42,7 +42,8 @@ def bound_first(ev: BusEvidence, h: Hypothesis, first: dict[str, Any],
     if n < 0:
         return
     bonus = h.kind == "receive-fault" and h.node == n
-    _bound_guessed(ev, n, bonus, first, config)
+    foreign = h.kind == "receive-fault" and h.node is not None and h.node != n
+    _bound_guessed(ev, n, bonus, first, config, foreign)
     lo = loss_before(ev, t + 1)
     if lo is None:
         return
@@ -52,7 +53,7 @@ def bound_first(ev: BusEvidence, h: Hypothesis, first: dict[str, Any],
     for src in (up, ev):
         if src is None:
             continue
-        rep = replay_node(src, n, bonus, config, keep_rows=False)
+        rep = replay_node(src, n, bonus, config, keep_rows=False, foreign_flags=foreign)
         tr = rep.first_degradation()
         if tr is not None:
             readings.append(int(tr["t_ns"]))
@@ -114,7 +115,7 @@ def guess_candidates(ev: BusEvidence, t_ns: np.ndarray) -> np.ndarray:
 
 
 def _bound_guessed(ev: BusEvidence, n: int, bonus: bool, first: dict[str, Any],
-                   config: ConfinementConfig) -> None:
+                   config: ConfinementConfig, foreign: bool = False) -> None:
     """Errors whose transmitter was guessed (flag inside the identifier): the first
     degradation of node n with every such error that n can have sent charged to n, and with
     only those that nobody else can have sent (guess_candidates); the others go to another
@@ -146,7 +147,8 @@ def _bound_guessed(ev: BusEvidence, n: int, bonus: bool, first: dict[str, Any],
         alt = ev.events.with_columns(pl.Series("tx", tx_alt, dtype=pl.Int16))
         src = dataclasses.replace(ev, events=alt, _recovery_cache={})
         prepare_counts(src)
-        tr = replay_node(src, n, bonus, config, keep_rows=False).first_degradation()
+        tr = replay_node(src, n, bonus, config, keep_rows=False,
+                         foreign_flags=foreign).first_degradation()
         if tr is not None:
             times.append(int(tr["t_ns"]))
     if times:

@@ -25,8 +25,9 @@ def assumptions(config: ConfinementConfig, attributed: bool, h: Hypothesis) -> l
         "transmitter of an errored frame: the catalog sender of the frame in progress",
         "ACK errors concern the transmitter only; an error-passive transmitter sees no "
         "dominant bit in its passive flag (rule c exception 1 applies)",
-        "rule c exception 2 (stuff error on a recessive stuff bit in arbitration) is not "
-        "applied: the log does not show the bit; such errors count +8",
+        "errors logged in the arbitration field: +8 to the sender when its own monitoring "
+        "found them; under a receive fault of another node its flag cost the sender "
+        "arbitration or fell on a recessive stuff bit (rule c exception 2): no TEC change",
         "the log shows every error frame that destroyed a frame; errors only one node saw "
         "while error-passive are invisible",
     ]

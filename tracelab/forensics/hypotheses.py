@@ -257,8 +257,10 @@ def find_floods(ev: BusEvidence, periods: dict[tuple[int, bool], int]) -> list[F
 
 
 def candidates(ev: BusEvidence, base: list[NodeReplay], first: list[NodeReplay],
-               silences: list[Silence], floods: list[Flood] | None = None) -> list[Hypothesis]:
-    """The hypotheses worth scoring for this bus."""
+               silences: list[Silence], floods: list[Flood] | None = None,
+               rx_base: list[NodeReplay] | None = None) -> list[Hypothesis]:
+    """The hypotheses worth scoring for this bus; ``rx_base``: the other nodes' replays
+    under a receive fault (replay.base_replays with foreign_flags), default ``base``."""
     errors = ev.events.filter(pl.col("kind") == KIND_ERROR)
     tx = errors["tx"].to_numpy()
     ack = (errors["type"] == "ack").to_numpy()
@@ -267,7 +269,7 @@ def candidates(ev: BusEvidence, base: list[NodeReplay], first: list[NodeReplay],
     for n, name in enumerate(ev.nodes):  # loop over nodes
         on_own = int(np.sum(tx == n))
         if first[n].first_bonus_events or bool(np.any(by == n)):
-            reps = list(base)
+            reps = list(base if rx_base is None else rx_base)
             reps[n] = first[n]
             out.append(Hypothesis(f"receive-fault:{name}", "receive-fault", n, reps))
         if on_own:

@@ -127,11 +127,20 @@ class NodeReplay:
 ROLE_NONE, ROLE_TX, ROLE_TX_ACK, ROLE_RX, ROLE_RX_FIRST, ROLE_RX_UNKNOWN, ROLE_STATUS = range(7)
 
 
-def _role_array(ev: BusEvidence, node: int) -> np.ndarray:
-    """What each event is to this node (vectorised over events)."""
+def _role_array(ev: BusEvidence, node: int, foreign_flags: bool = False) -> np.ndarray:
+    """What each event is to this node (vectorised over events).
+
+    ``foreign_flags``: the reading has another node's receiver detect first (a receive
+    fault elsewhere). An error flag that arrives during arbitration then overwrites a
+    recessive bit of this node's identifier (it has lost arbitration and goes on as a
+    receiver, rule a) or its recessive stuff bit (rule c exception 2): either way its TEC
+    does not rise, so its errors logged in the arbitration field count as receptions.
+    """
     e = ev.events
     kind = e["kind"].to_numpy()
     tx = e["tx"].to_numpy()
+    if foreign_flags:
+        tx = np.where((e["field"] == "arbitration").fill_null(False).to_numpy(), -1, tx)
     by = e["by_node"].to_numpy()
     ack = (e["type"] == "ack").fill_null(False).to_numpy()
     status = kind == KIND_STATUS
@@ -144,8 +153,8 @@ def _role_array(ev: BusEvidence, node: int) -> np.ndarray:
     return role.astype(np.int64)
 
 
-def _roles(ev: BusEvidence, node: int) -> list[int]:
-    return [int(r) for r in _role_array(ev, node).tolist()]
+def _roles(ev: BusEvidence, node: int, foreign_flags: bool = False) -> list[int]:
+    return [int(r) for r in _role_array(ev, node, foreign_flags).tolist()]
 
 
 def _reflected_walk(jumps: np.ndarray, declines: np.ndarray) -> np.ndarray:
@@ -161,11 +170,14 @@ def _reflected_walk(jumps: np.ndarray, declines: np.ndarray) -> np.ndarray:
 
 
 def base_replays(ev: BusEvidence, config: ConfinementConfig = DEFAULT_CONFIG,
-                 keep_rows: bool = True) -> list[NodeReplay]:
+                 keep_rows: bool = True, foreign_flags: bool = False) -> list[NodeReplay]:
     """Every node's replay without the first-detector bonus; which nodes could flag actively
-    before each event is kept on the evidence for others_active (computed once)."""
-    reps = [replay_node(ev, m, False, config, keep_rows=keep_rows)
+    before each event is kept on the evidence for others_active (computed once).
+    ``foreign_flags``: as seen by the nodes other than a receive fault's (see _role_array)."""
+    reps = [replay_node(ev, m, False, config, keep_rows=keep_rows, foreign_flags=foreign_flags)
             for m in range(len(ev.nodes))]
+    if foreign_flags:
+        return reps
     states = np.array([rep.state_before for rep in reps], dtype=object).reshape(
         len(ev.nodes), len(ev.ev_t))
     ev._active_cache[config] = (ev.events, (states == "error-active") | (states == "warning"))
@@ -189,7 +201,8 @@ def others_active(ev: BusEvidence, node: int, config: ConfinementConfig) -> np.n
 
 
 def _quiet_replay(ev: BusEvidence, node: int, assume_first: bool,
-                  config: ConfinementConfig, keep_rows: bool) -> NodeReplay | None:
+                  config: ConfinementConfig, keep_rows: bool,
+                  foreign_flags: bool = False) -> NodeReplay | None:
     """The replay of a node that never reaches the warning level, without a Python loop.
 
     Below the warning level no exception of the rules applies (no ACK exception, no REC
@@ -199,7 +212,7 @@ def _quiet_replay(ev: BusEvidence, node: int, assume_first: bool,
     """
     if ev.losses.shape[0] or not ev.ev_t:
         return None
-    role = _role_array(ev, node)
+    role = _role_array(ev, node, foreign_flags)
     if bool(np.any(role == ROLE_STATUS)):
         return None
     own = np.asarray(ev.ev_own_before[node], dtype=np.int64)
@@ -242,17 +255,19 @@ def _quiet_replay(ev: BusEvidence, node: int, assume_first: bool,
 
 
 def replay_node(ev: BusEvidence, node: int, assume_first: bool = False,
-                config: ConfinementConfig = DEFAULT_CONFIG, keep_rows: bool = True) -> NodeReplay:
+                config: ConfinementConfig = DEFAULT_CONFIG, keep_rows: bool = True,
+                foreign_flags: bool = False) -> NodeReplay:
     """Apply the rules table to one node, event by event (a loop over error/status events).
 
     keep_rows=False keeps transitions, bus-off episodes and status checks but not every
-    counter change (for candidate replays that may not win).
+    counter change (for candidate replays that may not win). ``foreign_flags``: see
+    _role_array (the node's replay under a receive fault of another node).
 
     The hot path (successes, receive errors) is written out with the rule constants of
     tracelab.physics.confinement; rare paths (transmit errors with their exceptions, bus-off,
     recovery, status records) go through NodeCounters.
     """
-    quiet = _quiet_replay(ev, node, assume_first, config, keep_rows)
+    quiet = _quiet_replay(ev, node, assume_first, config, keep_rows, foreign_flags)
     if quiet is not None:
         return quiet
     out = NodeReplay(ev.nodes[node], assume_first)
@@ -263,7 +278,7 @@ def replay_node(ev: BusEvidence, node: int, assume_first: bool = False,
     own_before = ev.ev_own_before[node]
     frames_before = ev.ev_frames_before
     loss_since = ev.ev_loss_since_prev
-    roles = _roles(ev, node)
+    roles = _roles(ev, node, foreign_flags)
     reactors = others_active(ev, node, config).tolist() \
         if assume_first and ROLE_RX_UNKNOWN in roles else None
     fb_prev = ob_prev = 0

@@ -209,6 +209,7 @@ def analyse(ev: BusEvidence, gaps: pl.DataFrame | None, cat: CatalogView,
     keep = original_rows(walk) if walk is not None else None
     src = walk if walk is not None else ev
     base = [_logged(rep, keep) for rep in base_replays(src, config)]
+    rx_base = _receive_fault_base(src, config, keep, base)
     attributed = bool((ev.events.filter(pl.col("kind") == KIND_ERROR)["by_node"]
                        >= 0).all()) if ev.events.height else True
     first = base if attributed else [
@@ -216,7 +217,7 @@ def analyse(ev: BusEvidence, gaps: pl.DataFrame | None, cat: CatalogView,
         for n in range(len(ev.nodes))]
     silences = node_silences(ev, gaps, cat.keys)
     floods = find_floods(ev, cat.periods)
-    hyps = candidates(ev, base, first, silences, floods)
+    hyps = candidates(ev, base, first, silences, floods, rx_base)
     readings = _loss_variants(ev, hyps, config) if walk is not None and not attributed else []
     if walk is None:
         readings += _attribution_variants(ev, hyps, config)
@@ -254,6 +255,7 @@ def _loss_variants(ev: BusEvidence, hyps: list[Hypothesis],
         src = alt if alt is not None else ev
         keep = original_rows(alt) if alt is not None else None
         base = [_logged(rep, keep) for rep in base_replays(src, config)]
+        base = _receive_fault_base(src, config, keep, base)
         for h in rx:  # loop over the receive-fault hypotheses (one per node)
             assert h.node is not None
             reps = list(base)
@@ -280,7 +282,7 @@ def _attribution_variants(ev: BusEvidence, hyps: list[Hypothesis],
         return []
     tx_now = ev.events["tx"].to_numpy().astype(np.int64)
     cand = guess_candidates(ev, ev.events["t_ns"].to_numpy()[guessed].astype(np.int64))
-    readings: dict[int, tuple[BusEvidence, list[NodeReplay]] | None] = {}
+    readings: dict[int, tuple[BusEvidence, list[NodeReplay], list[NodeReplay]] | None] = {}
     out: list[Hypothesis] = []
     for h in hyps:  # loop over the node hypotheses (a few per node)
         n = h.node
@@ -297,13 +299,15 @@ def _attribution_variants(ev: BusEvidence, hyps: list[Hypothesis],
                     ev, events=ev.events.with_columns(pl.Series("tx", tx_alt, dtype=pl.Int16)),
                     _recovery_cache={}, _active_cache={})
                 prepare_counts(alt)
-                readings[n] = (alt, base_replays(alt, config, keep_rows=False))
+                base = base_replays(alt, config, keep_rows=False)
+                readings[n] = (alt, base, _receive_fault_base(alt, config, None, base, False))
         reading = readings[n]
         if reading is None:
             continue
-        alt, base = reading
+        alt, base, rx_base = reading
         reps = list(base)
         if h.kind == "receive-fault":
+            reps = list(rx_base)
             reps[n] = replay_node(alt, n, True, config, keep_rows=False)
         v = Hypothesis(h.name, h.kind, n, reps, prior=h.prior, evidence=alt)
         v.facts = dict(h.facts)
@@ -334,6 +338,18 @@ def _best_readings(hyps: list[Hypothesis], readings: list[Hypothesis]) -> list[H
         for h, w in zip(kept, weights, strict=True):
             h.score = w / total
     return kept
+
+
+def _receive_fault_base(ev: BusEvidence, config: ConfinementConfig, keep: np.ndarray | None,
+                        base: list[NodeReplay], keep_rows: bool = True) -> list[NodeReplay]:
+    """The replays of the nodes other than a receive fault's: ``base`` unless some error was
+    logged in the arbitration field of a known sender's frame, which such a fault does not
+    charge to the sender's TEC (replay._role_array, foreign_flags)."""
+    e = ev.events
+    if not bool(((e["field"] == "arbitration") & (e["tx"] >= 0)).fill_null(False).any()):
+        return base
+    return [_logged(rep, keep) for rep in base_replays(ev, config, keep_rows=keep_rows,
+                                                        foreign_flags=True)]
 
 
 def _logged(rep: NodeReplay, keep: np.ndarray | None) -> NodeReplay:
