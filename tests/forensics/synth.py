@@ -76,6 +76,33 @@ def frame_row(node: str, start: int, line: int) -> dict[str, Any]:
             "duration_ns": end - start, "file": "synthetic.frames", "line": line}
 
 
+@dataclass
+class Timeline:
+    """A hand-written log: frames and error frames laid end to end on the bus, in order."""
+
+    log: Synth = field(default_factory=Synth)
+    t: int = 0
+    line: int = 0
+
+    def frame(self, node: str) -> None:
+        self.line += 1
+        self.log.frames.append(frame_row(node, self.t, self.line))
+        self.t = self.log.frames[-1]["end_ns"]
+
+    def error(self, node: str | None, at_bits: int, field: str = "data", by: str | None = None,
+              etype: str = "stuff", bits: int | None = None) -> None:
+        """An error ``at_bits`` into a frame of ``node`` (None: not identified, id and form
+        ``- -``), the error frame ending ``bits`` after the frame's start (default: the
+        superposed flag, delimiter and intermission after the error)."""
+        self.line += 1
+        self.log.errors.append({
+            "run": "r1", "bus": "can0", "t_ns": self.t + int(at_bits * BIT_NS), "type": etype,
+            "field": field, "id": None if node is None else IDS[node],
+            "ext": None if node is None else False, "form": None if node is None else "s",
+            "by": by, "file": "synthetic.frames", "line": self.line})
+        self.t += int((at_bits + 12 + 8 + 3 if bits is None else bits) * BIT_NS)
+
+
 def generate(slots: int, fault: str = "none", culprit: str = "alpha", p: float = 0.3,
              attribute: bool = True, seed: int = 1, fault_from_slot: int = 0,
              fd: bool = False, status_every: int = 0) -> Synth:

@@ -175,34 +175,17 @@ def _rule_b_log(others_passive: bool) -> synth.Synth:
     """A log in which alpha, bravo and delta first fail 16 of their own frames each (so, by
     rule c, they are error-passive) or not, then 10 unattributed errors hit alpha's frames
     back to back. Charlie is the candidate first detector of those 10."""
-    s = synth.Synth()
-    t, line = 0, 0
-
-    def frame(node: str) -> None:
-        nonlocal t, line
-        line += 1
-        s.frames.append(synth.frame_row(node, t, line))
-        t = s.frames[-1]["end_ns"]
-
-    def error(node: str, by: str | None) -> None:
-        nonlocal t, line
-        line += 1
-        s.errors.append({"run": "r1", "bus": "can0", "t_ns": t + int(62 * synth.BIT_NS),
-                         "type": "bit" if by == node else "stuff", "field": "data",
-                         "id": synth.IDS[node], "ext": False, "form": "s", "by": by,
-                         "file": "synthetic.frames", "line": line})
-        t += int(synth.ERROR_BITS * synth.BIT_NS)
-
+    log = synth.Timeline()
     for node in ("alpha", "bravo", "charlie", "delta"):
-        frame(node)
+        log.frame(node)
     if others_passive:
         for node in ("alpha", "bravo", "delta"):
             for _ in range(16):  # its own monitoring finds each error: TEC +8, 16 x -> 128
-                error(node, by=node)
+                log.error(node, 62, by=node, etype="bit", bits=synth.ERROR_BITS)
     for _ in range(10):
-        error("alpha", by=None)
-    frame("bravo")
-    return s
+        log.error("alpha", 62, bits=synth.ERROR_BITS)
+    log.frame("bravo")
+    return log.log
 
 
 @pytest.mark.parametrize("others_passive", [False, True])
@@ -226,33 +209,15 @@ def test_an_unidentified_error_goes_to_the_sender_of_the_error_right_after_it() 
     # the next bus idle; when that attempt fails too, the next thing on the bus is its error
     # record (which names the frame), not the next complete frame, which can be another
     # sender's. An unidentified error followed by a complete frame keeps that frame's sender.
-    s = synth.Synth()
-    t, line = 0, 0
-
-    def frame(node: str) -> None:
-        nonlocal t, line
-        line += 1
-        s.frames.append(synth.frame_row(node, t, line))
-        t = s.frames[-1]["end_ns"]
-
-    def error(node: str | None) -> None:
-        nonlocal t, line
-        line += 1
-        s.errors.append({"run": "r1", "bus": "can0", "t_ns": t + int(20 * synth.BIT_NS),
-                         "type": "stuff", "field": "arbitration" if node is None else "data",
-                         "id": None if node is None else synth.IDS[node],
-                         "ext": None if node is None else False,
-                         "form": None if node is None else "s", "by": None,
-                         "file": "synthetic.frames", "line": line})
-        t += int(synth.ERROR_BITS * synth.BIT_NS)
-
-    frame("alpha")
-    error(None)        # delta's attempt, unidentified
-    error("delta")     # delta's retransmission fails too, identified
-    frame("bravo")     # bravo wins the next arbitration
-    error(None)        # charlie's attempt, unidentified; charlie's retransmission succeeds
-    frame("charlie")
-    frame("delta")
+    log = synth.Timeline()
+    log.frame("alpha")
+    log.error(None, 20, field="arbitration", bits=synth.ERROR_BITS)  # delta's, unidentified
+    log.error("delta", 20, bits=synth.ERROR_BITS)  # its retransmission fails too, identified
+    log.frame("bravo")     # bravo wins the next arbitration
+    log.error(None, 20, field="arbitration", bits=synth.ERROR_BITS)  # charlie's, unidentified
+    log.frame("charlie")   # charlie's retransmission succeeds
+    log.frame("delta")
+    s = log.log
     ev = load_bus_evidence(s.connect(), synth.catalog(), "r1", "can0")
     blind = ev.events.filter(pl.col("id").is_null())
     assert [ev.nodes[i] for i in blind["tx"].to_list()] == ["delta", "charlie"]
@@ -262,27 +227,14 @@ def test_an_unidentified_error_goes_to_the_sender_of_the_error_right_after_it() 
 def _arbitration_log(errors: int) -> synth.Synth:
     """Alpha's frames destroyed ``errors`` times by a flag in the arbitration field
     (unattributed), each followed by its successful retransmission, among the others'."""
-    s = synth.Synth()
-    t, line = 0, 0
-
-    def frame(node: str) -> None:
-        nonlocal t, line
-        line += 1
-        s.frames.append(synth.frame_row(node, t, line))
-        t = s.frames[-1]["end_ns"]
-
+    log = synth.Timeline()
     for node in ("bravo", "charlie", "delta"):
-        frame(node)
+        log.frame(node)
     for _ in range(errors):
-        line += 1
-        s.errors.append({"run": "r1", "bus": "can0", "t_ns": t + int(9 * synth.BIT_NS),
-                         "type": "stuff", "field": "arbitration", "id": synth.IDS["alpha"],
-                         "ext": False, "form": "s", "by": None,
-                         "file": "synthetic.frames", "line": line})
-        t += int((9 + 14 + 8 + 3) * synth.BIT_NS)
-        frame("alpha")
-        frame("bravo")
-    return s
+        log.error("alpha", 9, field="arbitration")
+        log.frame("alpha")
+        log.frame("bravo")
+    return log.log
 
 
 def test_a_flag_from_another_receiver_in_arbitration_does_not_raise_the_senders_tec() -> None:
