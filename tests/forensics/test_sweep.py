@@ -68,3 +68,22 @@ def test_the_scorer_rejects_a_wrong_node() -> None:
     assert not sweep.score_result(s, truth, bad)["right"]
     late = dict(good, first_degraded=dict(good["first_degraded"], t_ns=650_000_000))
     assert not sweep.score_result(s, truth, late)["right"]
+
+
+def test_the_scorer_takes_a_receive_fault_elsewhere_behind_a_transmitter_degrading_first(
+) -> None:
+    # common practice, no source: a receive fault destroys every sender's frames (each
+    # sender TEC +8 per own frame), so a busy sender can reach warning before the faulty
+    # receiver; the fault behind that degradation is the receive fault, not "unknown"
+    s = next(x for x in FAST if x.group == "rx-noise")
+    truth = {"faults": [{"kind": "rx-noise", "node": "ecu_e", "bus": "can0",
+                         "start_ns": 500_000_000}],
+             "nodes": [{"node": n, "bus": "can0"} for n in sweep.NODES],
+             "first_degraded": [{"bus": "can0", "first_warning": {
+                 "node": "ecu_b", "state": "warning", "t_ns": 900_000_000}}]}
+    fd = {"node": "ecu_b", "state": "warning", "t_ns": 900_000_000, "confidence": 1.0}
+    named = {"bus": "can0", "cause": {"kind": "receive-fault", "node": "ecu_e"},
+             "first_degraded": fd, "hypotheses": [], "score": 1.0}
+    assert sweep.score_result(s, truth, named)["right"]
+    assert not sweep.score_result(s, truth, dict(named, cause={"kind": "receive-fault",
+                                                                "node": "ecu_b"}))["right"]
