@@ -52,14 +52,19 @@ def test_no_wrong_verdict_scores_high(rows: list[dict[str, Any]]) -> None:
     assert all(r["right"] for r in rows if r["score"] >= 0.9)
 
 
+def _truth(kind: str, node: str, first: str, t_ns: int) -> dict[str, Any]:
+    """A truth file of one fault (``kind`` at ``node`` from 500 ms) on can0 whose first
+    warning is ``first``'s at ``t_ns``."""
+    return {"faults": [{"kind": kind, "node": node, "bus": "can0", "start_ns": 500_000_000}],
+            "nodes": [{"node": n, "bus": "can0"} for n in sweep.NODES],
+            "first_degraded": [{"bus": "can0", "first_warning": {
+                "node": first, "state": "warning", "t_ns": t_ns}}]}
+
+
 def test_the_scorer_rejects_a_wrong_node() -> None:
     # the yardstick itself: a verdict naming another node is scored wrong
     s = next(x for x in FAST if x.group == "tx-noise")
-    truth = {"faults": [{"kind": "tx-noise", "node": "ecu_b", "bus": "can0",
-                         "start_ns": 500_000_000}],
-             "nodes": [{"node": n, "bus": "can0"} for n in sweep.NODES],
-             "first_degraded": [{"bus": "can0", "first_warning": {
-                 "node": "ecu_b", "state": "warning", "t_ns": 600_000_000}}]}
+    truth = _truth("tx-noise", "ecu_b", "ecu_b", 600_000_000)
     good = {"bus": "can0", "cause": {"kind": "transmit-fault", "node": "ecu_b"},
             "first_degraded": {"node": "ecu_b", "state": "warning", "t_ns": 600_100_000,
                                "confidence": 1.0}, "hypotheses": [], "score": 1.0}
@@ -76,11 +81,7 @@ def test_the_scorer_takes_a_receive_fault_elsewhere_behind_a_transmitter_degradi
     # sender TEC +8 per own frame), so a busy sender can reach warning before the faulty
     # receiver; the fault behind that degradation is the receive fault, not "unknown"
     s = next(x for x in FAST if x.group == "rx-noise")
-    truth = {"faults": [{"kind": "rx-noise", "node": "ecu_e", "bus": "can0",
-                         "start_ns": 500_000_000}],
-             "nodes": [{"node": n, "bus": "can0"} for n in sweep.NODES],
-             "first_degraded": [{"bus": "can0", "first_warning": {
-                 "node": "ecu_b", "state": "warning", "t_ns": 900_000_000}}]}
+    truth = _truth("rx-noise", "ecu_e", "ecu_b", 900_000_000)
     fd = {"node": "ecu_b", "state": "warning", "t_ns": 900_000_000, "confidence": 1.0}
     named = {"bus": "can0", "cause": {"kind": "receive-fault", "node": "ecu_e"},
              "first_degraded": fd, "hypotheses": [], "score": 1.0}

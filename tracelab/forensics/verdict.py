@@ -254,8 +254,7 @@ def _loss_variants(ev: BusEvidence, hyps: list[Hypothesis],
         alt = _loss_reading(ev, mode)
         src = alt if alt is not None else ev
         keep = original_rows(alt) if alt is not None else None
-        base = [_logged(rep, keep) for rep in base_replays(src, config)]
-        base = _receive_fault_base(src, config, keep, base)
+        base = _receive_fault_base(src, config, keep)
         for h in rx:  # loop over the receive-fault hypotheses (one per node)
             assert h.node is not None
             reps = list(base)
@@ -341,15 +340,18 @@ def _best_readings(hyps: list[Hypothesis], readings: list[Hypothesis]) -> list[H
 
 
 def _receive_fault_base(ev: BusEvidence, config: ConfinementConfig, keep: np.ndarray | None,
-                        base: list[NodeReplay], keep_rows: bool = True) -> list[NodeReplay]:
-    """The replays of the nodes other than a receive fault's: ``base`` unless some error was
-    logged in the arbitration field of a known sender's frame, which such a fault does not
-    charge to the sender's TEC (replay._role_array, foreign_flags)."""
+                        base: list[NodeReplay] | None = None,
+                        keep_rows: bool = True) -> list[NodeReplay]:
+    """The replays of the nodes other than a receive fault's. They differ from the plain
+    ones (``base``, replayed here when not given) only when some error was logged in the
+    arbitration field of a known sender's frame, which such a fault does not charge to the
+    sender's TEC (replay._role_array, foreign_flags)."""
     e = ev.events
-    if not bool(((e["field"] == "arbitration") & (e["tx"] >= 0)).fill_null(False).any()):
+    foreign = bool(((e["field"] == "arbitration") & (e["tx"] >= 0)).fill_null(False).any())
+    if base is not None and not foreign:
         return base
     return [_logged(rep, keep) for rep in base_replays(ev, config, keep_rows=keep_rows,
-                                                        foreign_flags=True)]
+                                                        foreign_flags=foreign)]
 
 
 def _logged(rep: NodeReplay, keep: np.ndarray | None) -> NodeReplay:
