@@ -197,7 +197,7 @@ def faults(dataset: Path, catalog: Path, run: str | None = None) -> Any:
     with ds.writing("faults"):  # one writer at a time
         gaps = ds.read_analysis("gaps") if ds.has_analysis("gaps") else None
         with ds.connect() as con:
-            result = replay_faults(con, cat, run=run, gaps=gaps)
+            result = replay_faults(con, cat, run=run, gaps=gaps, frame_files=ds.frame_files)
         _store(ds, "counters", result.counters, run)
         _store(ds, "node_states", result.node_states, run)
         _store(ds, "verdicts", result.verdicts, run)

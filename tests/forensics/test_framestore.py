@@ -8,6 +8,8 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from tests.forensics import synth
 from tracelab.forensics import framestore
@@ -148,3 +150,56 @@ def test_replay_with_spilled_frames_equals_the_replay_in_memory(
     assert sum(len(n["transitions"]) for n in result["nodes"]) > 20
     assert any(n["bus_off"] for n in result["nodes"])
     assert (result["evidence"]["esi_frames"] > 0) == fd
+
+
+@pytest.mark.parametrize("fault, fd", [("tx", False), ("rx", True)])
+def test_frames_read_from_the_part_files_give_the_replay_of_the_view(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch, fault: str, fd: bool) -> None:
+    """The frame pass over the stored columns of the part files (row groups decoded ahead
+    by pyarrow) gives what the pass over the DuckDB view gives, ESI flags included."""
+    import polars as pl
+
+    from tracelab.forensics import evidence, replay_faults
+    from tracelab.store import schema
+
+    s = synth.generate(6000, fault=fault, culprit="bravo", p=0.3, seed=2, fault_from_slot=500,
+                       fd=fd, status_every=0)
+    cat = synth.catalog(fd=fd)
+    monkeypatch.chdir(tmp_path)
+    files = [tmp_path / "0.parquet", tmp_path / "1.parquet"]  # two files, small row groups
+    frames = schema.conform(pl.DataFrame(s.frames, schema=schema.TABLES["frames"], orient="row"),
+                            "frames")
+    half = frames.height // 2
+    frames[:half].write_parquet(files[0], row_group_size=700)
+    frames[half:].write_parquet(files[1], row_group_size=700)
+    reads: list[list[str]] = []
+    real = evidence.stored_row_groups
+
+    def counted(paths: list[Path], columns: list[str]):  # type: ignore[no-untyped-def]
+        reads.append(list(columns))
+        return real(paths, columns)
+
+    monkeypatch.setattr(evidence, "stored_row_groups", counted)
+    con = s.connect()
+    con.execute("DROP VIEW frames")
+    listing = ", ".join(f"'{f}'" for f in files)
+    con.execute(f"CREATE VIEW frames AS SELECT * FROM read_parquet([{listing}])")
+    direct = replay_faults(con, cat, frame_files=files)
+    assert reads == [["t_ns", "id"] + (["fd", "esi"] if fd else [])]  # the direct path ran
+    viewed = replay_faults(s.connect(), cat)
+    assert direct.as_json() == viewed.as_json()
+    assert direct.counters.equals(viewed.counters)
+    assert direct.node_states.equals(viewed.node_states)
+    assert (viewed.as_json()["results"][0]["evidence"]["esi_frames"] > 0) == fd
+
+
+@given(st.lists(st.integers(0, 50), min_size=2, max_size=200), st.integers(0, 60),
+       st.booleans())
+@settings(max_examples=300, deadline=None)
+def test_steps_over_a_limit_are_those_numpy_diff_finds(steps: list[int], limit: int,
+                                                       half: bool) -> None:
+    """The stretch-wise search finds exactly the steps numpy's diff finds over the limit."""
+    values = np.cumsum(np.asarray(steps, dtype=np.int64))
+    lim = limit + (0.5 if half else 0.0)
+    assert np.array_equal(framestore._steps_over(values, lim),
+                          np.flatnonzero(np.diff(values) > lim))

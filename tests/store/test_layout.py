@@ -98,3 +98,22 @@ def test_parts_are_plain_parquet_and_the_derivation_is_the_documented_one(
         duration = (bits - data_bits) * 2000 + data_bits * 500
         start = t_ns - (duration - 3 * 2000) if bus == "P" else t_ns
         assert view[line] == (start, start + duration, duration)
+
+
+def test_the_frame_files_are_named_only_when_the_view_reads_them_in_one_scan(
+        old: Path, tmp_path: Path) -> None:
+    """Dataset.frame_files (the replay's direct read): the files of a one-scan view, in the
+    view's row order; None once two layouts need two scans."""
+    fresh = tmp_path / "fresh.ds"
+    ingest_logs([LOG], fresh, quiet=True)
+    ds = open_dataset(fresh)
+    with ds.connect() as con:
+        assert ds.frame_files == ds.part_files("frames")
+        stored = pl.concat(pl.read_parquet(f, columns=["t_ns", "id"]) for f in ds.frame_files)
+        assert stored.equals(con.sql("SELECT t_ns, id FROM frames").pl())
+    log = tmp_path / "second.frames"
+    log.write_text(LOG.read_text().replace("run=layout-one", "run=second"))
+    ingest_logs([log], old, quiet=True)  # layout 1 and layout 2 parts: two scans
+    mixed = open_dataset(old)
+    with mixed.connect():
+        assert mixed.frame_files is None

@@ -10,7 +10,7 @@ frames before it (all and per sender), the one vectorised pass the counter walk 
 from __future__ import annotations
 
 import dataclasses
-from collections.abc import Iterator
+from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Protocol
@@ -18,9 +18,12 @@ from typing import Any, Protocol
 import duckdb
 import numpy as np
 import polars as pl
+import pyarrow as pa
+import pyarrow.compute as pc
 
 from tracelab.forensics.framestore import Column, Spill
 from tracelab.store.limits import current_limits
+from tracelab.store.row_groups import stored_row_groups
 from tracelab.store.schema import manifest_buses, sql_string
 
 KIND_ERROR = 0
@@ -163,9 +166,12 @@ def frames_by_id(con: duckdb.DuckDBPyConnection, run: str | None = None,
     ``pair``: the dataset holds this (run, bus) only; the scan then groups by identifier.
     """
     if pair is not None:
+        # EXISTS, not bool_or: the Parquet row groups' min/max statistics let DuckDB skip
+        # every row group of a log without extended or FD frames (ms instead of a scan)
         any_ext, fd_frames, total = con.execute(
-            "SELECT coalesce(bool_or(ext), false), count(*) FILTER (WHERE fd), count(*) "
-            "FROM frames").fetchall()[0]
+            "SELECT EXISTS (SELECT 1 FROM frames WHERE ext), "
+            "EXISTS (SELECT 1 FROM frames WHERE fd), (SELECT count(*) FROM frames)"
+            ).fetchall()[0]
         if not any_ext and not fd_frames and total >= SAMPLED_BY_ID_FRAMES:
             # Counts per identifier from a scan of the identifiers alone; the bus time per
             # identifier from a 2 % block sample of durations (frame lengths barely vary
@@ -196,10 +202,14 @@ def frames_by_id(con: duckdb.DuckDBPyConnection, run: str | None = None,
 
 def load_bus_evidence(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run: str,
                       bus: str, by_id: pl.DataFrame | None = None,
-                      only_pair: bool = False) -> BusEvidence:
+                      only_pair: bool = False,
+                      frame_files: Sequence[Path] | None = None) -> BusEvidence:
     """Read frames, errors, status and losses of one (run, bus) into arrays.
 
     ``only_pair``: the views hold this (run, bus) only, so the frame scans need no filter.
+    ``frame_files``: the frames view's part files when it reads them in one scan
+    (``Dataset.frame_files``); with ``only_pair`` the frame pass reads their stored columns
+    directly (store/row_groups.py).
     """
     nodes = list(catalog.nodes_on(bus))
     codes = _sender_codes(catalog, bus, nodes)
@@ -227,7 +237,7 @@ def load_bus_evidence(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run:
             own_sizes[code] += int(count)
             busy[code] += float(ns or 0)
     frames = load_frames(con, scan, codes, len(nodes), any_ext, any_fd, total=n_frames,
-                         own_sizes=own_sizes)
+                         own_sizes=own_sizes, files=frame_files if only_pair else None)
     frame_t, frame_node, own_t = frames.t, frames.node, frames.own
     total = float(by_id["busy_ns"].sum() or 0.0)
     share = busy / total if total > 0 else np.full(len(nodes), 1.0 / max(1, len(nodes)))
@@ -288,13 +298,15 @@ IN_MEMORY_BYTES_PER_FRAME = 18
 
 def load_frames(con: duckdb.DuckDBPyConnection, scan: str, codes: pl.DataFrame, n_nodes: int,
                 any_ext: bool, any_fd: bool, total: int | None = None,
-                own_sizes: np.ndarray | None = None) -> Frames:
+                own_sizes: np.ndarray | None = None,
+                files: Sequence[Path] | None = None) -> Frames:
     """One streaming pass over the frames (``SELECT ... {scan}``) in record batches of
     ``BATCH_ROWS``: frame times, senders and per-sender times. When ``total`` frames fit the
     memory allowance they fill arrays of that size (each sender's times its stretch of one
     array, ``own_sizes`` frames long); otherwise they go into columns that spill beyond it.
     Frames out of time order (logs with backward time steps) are read again sorted by time,
-    in the view's order at equal times (as a stable sort would)."""
+    in the view's order at equal times (as a stable sort would). ``files``: the view's part
+    files in its order (one scan, no filter): the in-memory pass reads them directly."""
     cols = "t_ns, id" + (", ext" if any_ext else "") \
         + (", (fd::INT + (fd AND esi)::INT)::TINYINT AS esi" if any_fd else "")
     spill = _spill(con)
@@ -303,15 +315,30 @@ def load_frames(con: duckdb.DuckDBPyConnection, scan: str, codes: pl.DataFrame, 
     queries = [f"SELECT {cols} {scan}",
                f"SELECT {cols} FROM (SELECT *, row_number() OVER () AS _order {scan}) "
                "ORDER BY t_ns, _order"]
-    for query in queries:
-        batches = _Batches(con, query, codes, any_ext, any_fd)
+    for n, query in enumerate(queries):
+        source = _stored(files, any_ext, any_fd) if n == 0 and files and fits else \
+            con.sql(query).to_arrow_reader(BATCH_ROWS)
+        batches = _Batches(source, codes, any_ext, any_fd)
         frames = (_in_memory(batches, n_nodes, int(total or 0), own_sizes)
                   if fits and own_sizes is not None else _streamed(batches, n_nodes, spill))
         if frames is None and batches.ordered:  # counts that did not match: the plain way
-            frames = _streamed(_Batches(con, query, codes, any_ext, any_fd), n_nodes, spill)
+            frames = _streamed(_Batches(con.sql(query).to_arrow_reader(BATCH_ROWS), codes,
+                                        any_ext, any_fd), n_nodes, spill)
         if frames is not None:
             return frames
     raise AssertionError("frames sorted by time came out of order")  # pragma: no cover
+
+
+def _stored(files: Sequence[Path], any_ext: bool, any_fd: bool) -> Iterator[pa.RecordBatch]:
+    """The frame pass's columns (t_ns, id, ext, ESI flag: as load_frames' query selects
+    them) from the part files' stored columns, one batch per row group."""
+    columns = ["t_ns", "id"] + (["ext"] if any_ext else []) + (["fd", "esi"] if any_fd else [])
+    for table in stored_row_groups(files, columns):  # a loop over row groups
+        arrays = [table.column(c).combine_chunks() for c in columns[:3 if any_ext else 2]]
+        if any_fd:  # fd::INT + (fd AND esi)::INT
+            fd, esi = table.column("fd").combine_chunks(), table.column("esi").combine_chunks()
+            arrays.append(pc.add(pc.cast(fd, pa.int8()), pc.cast(pc.and_(fd, esi), pa.int8())))
+        yield pa.RecordBatch.from_arrays(arrays, names=[str(i) for i in range(len(arrays))])
 
 
 class _Batches:
@@ -319,9 +346,9 @@ class _Batches:
     ``ordered`` turns False (and the iteration stops) at the first frame earlier than the
     one before it."""
 
-    def __init__(self, con: duckdb.DuckDBPyConnection, query: str, codes: pl.DataFrame,
+    def __init__(self, reader: Iterable[pa.RecordBatch], codes: pl.DataFrame,
                  any_ext: bool, any_fd: bool) -> None:
-        self.reader = con.sql(query).to_arrow_reader(BATCH_ROWS)
+        self.reader = reader
         self.mapper = _KeyMap(codes, any_ext)
         self.any_ext, self.any_fd = any_ext, any_fd
         self.ordered = True

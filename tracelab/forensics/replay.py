@@ -249,8 +249,9 @@ def _quiet_replay(ev: BusEvidence, node: int, assume_first: bool,
         out.rows_frame = pl.DataFrame({
             "t_ns": t[k], "tec": np.where(o == 1, tec[k], pre_tec[k]).astype(np.int32),
             "rec": np.where(o == 1, rec[k], pre_rec[k]).astype(np.int32),
-            "state": "error-active", "cause": np.where(o == 1, "error", "successes"),
-            "uncertain": False})
+            "state": "error-active",
+            # from a table of two: polars builds the strings 30x faster than numpy's where
+            "cause": pl.Series(["successes", "error"]).gather(o), "uncertain": False})
     return out
 
 

@@ -95,12 +95,11 @@ def every_change(rows: pl.DataFrame, ev: BusEvidence, node: int,
     t = rows["t_ns"].to_numpy().astype(np.int64)
     tec = rows["tec"].to_numpy().astype(np.int64)
     rec = rows["rec"].to_numpy().astype(np.int64)
-    cause = rows["cause"].to_numpy()
     unc = rows["uncertain"].to_numpy()
     after = config.rec_after_passive_reception
     last = rows.height - 1
     # segments: (from row i-1 to a "successes" row i), and the tail after the last row
-    i = np.flatnonzero(cause[1:] == "successes") + 1
+    i = np.flatnonzero((rows["cause"] == "successes").fill_null(False).to_numpy()[1:]) + 1
     t0, t1 = t[i - 1], t[i]
     tec0, tec1, rec0, rec1 = tec[i - 1], tec[i], rec[i - 1], rec[i]
     seg_unc = unc[i]
@@ -142,15 +141,24 @@ def every_change(rows: pl.DataFrame, ev: BusEvidence, node: int,
     passive = rec0[s] > PASSIVE_LIMIT
     new_rec = np.where(passive, np.where(nr == 0, rec0[s], np.maximum(after - (nr - 1), rec1[s])),
                        np.maximum(rec0[s] - nr, rec1[s]))
-    added = pl.DataFrame({
-        "t_ns": when, "tec": new_tec, "rec": new_rec,
-        "state": pl.Series(_state_codes(new_tec, new_rec, config)).replace_strict(
-            dict(enumerate(STATE_NAMES)), return_dtype=pl.String),
-        "cause": pl.Series(["success"], dtype=pl.String).extend_constant("success", s.size - 1),
-        "uncertain": seg_unc[s].astype(bool),
-    }).select(pl.col(c).cast(rows.schema[c]) for c in rows.columns)
+    codes = _state_codes(new_tec, new_rec, config)
     # before the row they lead to: order by time, then the replay's own rows last at a tie
     t_all = np.concatenate([when, rows["t_ns"].to_numpy()])
     mine = np.concatenate([np.zeros(s.size, np.int8), np.ones(rows.height, np.int8)])
-    return pl.concat([added, rows], how="vertical").gather(
-        np.lexsort((np.arange(t_all.size), mine, t_all)))
+    order = np.lexsort((np.arange(t_all.size), mine, t_all))
+    # the numbers merged by numpy and the strings gathered from small tables: a gather of
+    # 100 k's of strings would be most of this step's time
+    def merged(new: np.ndarray, old: np.ndarray) -> np.ndarray:
+        return np.concatenate([new, old])[order]
+
+    own_rows = np.arange(rows.height)
+    return pl.DataFrame({
+        "t_ns": t_all[order],
+        "tec": merged(new_tec, rows["tec"].to_numpy()),
+        "rec": merged(new_rec, rows["rec"].to_numpy()),
+        "state": pl.Series(STATE_NAMES).append(rows["state"]).gather(
+            merged(codes.astype(np.int64), len(STATE_NAMES) + own_rows)),
+        "cause": pl.Series(["success"]).append(rows["cause"]).gather(
+            merged(np.zeros(s.size, np.int64), 1 + own_rows)),
+        "uncertain": pl.Series(seg_unc[s].astype(bool)).append(rows["uncertain"]).gather(order),
+    }).select(pl.col(c).cast(rows.schema[c]) for c in rows.columns)

@@ -42,12 +42,18 @@ def counters_frame(ev: BusEvidence, h: Hypothesis,
             continue
         # the step function the rules define: every decrement at the frame that made it
         frame = every_change(frame, ev, ev.node_index(rep.node), config)
-        parts.append(frame.with_columns(pl.lit(rep.node).alias("node")))
+        parts.append((rep.node, frame.with_columns(pl.lit(rep.node).alias("node"))))
     if not parts:
         return pl.DataFrame(schema=COUNTERS_SCHEMA)
-    out = pl.concat(parts).with_columns(pl.lit(ev.run).alias("run"), pl.lit(ev.bus).alias("bus"),
+    # by node, then time: each node's rows are in time order already (every_change), so
+    # ordering the parts by node gives the sort's result without sorting 100 k's of rows
+    parts.sort(key=lambda part: part[0])
+    in_order = len({node for node, _ in parts}) == len(parts) and \
+        all(part["t_ns"].is_sorted() for _, part in parts)
+    out = pl.concat([part for _, part in parts]).with_columns(pl.lit(ev.run).alias("run"), pl.lit(ev.bus).alias("bus"),
                                         pl.lit(h.name).alias("hypothesis"))
-    return out.select(list(COUNTERS_SCHEMA)).sort(["node", "t_ns"], maintain_order=True)
+    out = out.select(list(COUNTERS_SCHEMA))
+    return out if in_order else out.sort(["node", "t_ns"], maintain_order=True)
 
 
 def states_frame(ev: BusEvidence, h: Hypothesis) -> pl.DataFrame:

@@ -8,7 +8,9 @@ from __future__ import annotations
 
 import dataclasses
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass
+from pathlib import Path
 from typing import Any
 
 import duckdb
@@ -155,8 +157,10 @@ def _catalog_view(catalog: CatalogLike, bus: str, nodes: list[str]) -> CatalogVi
 
 def replay_faults(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run: str | None = None,
                   gaps: pl.DataFrame | None = None,
-                  config: ConfinementConfig = DEFAULT_CONFIG) -> FaultsResult:
-    """Replay every (run, bus) of the dataset views and give one verdict each."""
+                  config: ConfinementConfig = DEFAULT_CONFIG,
+                  frame_files: Sequence[Path] | None = None) -> FaultsResult:
+    """Replay every (run, bus) of the dataset views and give one verdict each.
+    ``frame_files``: ``Dataset.frame_files`` of the connection (see load_bus_evidence)."""
     results: list[dict[str, Any]] = []
     counters: list[pl.DataFrame] = []
     states: list[pl.DataFrame] = []
@@ -166,7 +170,8 @@ def replay_faults(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run: str
     pairs = run_buses(con, run, by_id)
     alone = len(pairs) == 1 and (run is None or pair is not None)
     for r, bus in pairs:  # loop over (run, bus) pairs
-        ev = load_bus_evidence(con, catalog, r, bus, by_id, only_pair=alone)
+        ev = load_bus_evidence(con, catalog, r, bus, by_id, only_pair=alone,
+                               frame_files=frame_files)
         frames += ev.frames
         events += ev.events.height
         bus_gaps = None

@@ -173,6 +173,9 @@ class Dataset:
 
     def __init__(self, path: str | Path) -> None:
         self.path = Path(path)
+        #: After connect(): the frames part files when the frames view reads them in one
+        #: scan, in its order (their stored columns are the view's as they are), else None.
+        self.frame_files: list[Path] | None = None
 
     # --- reading ------------------------------------------------------------------------
 
@@ -250,6 +253,7 @@ class Dataset:
         import duckdb  # here, not at import time: ingest never needs it (0.2 s of start-up)
 
         try:
+            self.frame_files = None
             con = duckdb.connect(":memory:")
             configure(con, self.path)  # memory budget, spill folder, threads (store/limits.py)
             manifest = self.manifest()
@@ -258,7 +262,11 @@ class Dataset:
                 files = self.part_files(table, shas)
                 if files and table == "frames":
                     _check_parts(files)
-                    con.execute(f"CREATE VIEW frames AS {self._frames_sql(manifest)}")
+                    groups = self._frame_groups(manifest)
+                    con.execute(f"CREATE VIEW frames AS {self._frames_sql(groups)}")
+                    # one scan: the stored columns as they are, in this order
+                    self.frame_files = next(iter(groups.values())) if len(groups) == 1 \
+                        else None
                 elif files:
                     _check_parts(files)
                     listing = ", ".join(schema.sql_string(_sql_path(f)) for f in files)
@@ -284,9 +292,16 @@ class Dataset:
         except duckdb.Error as error:
             raise StoreError(f"{self.path}: cannot open the dataset views ({error})") from error
 
-    def _frames_sql(self, manifest: pl.DataFrame) -> str:
+    def _frames_sql(self, groups: dict[tuple[int, tuple[BusTiming, ...]], list[Path]]) -> str:
         """The frames view over every part: files of the same layout and bus settings share
         one scan (store/frames_view.py derives start/end/duration for layout 2)."""
+        return frames_view_sql([
+            (layout, buses, ", ".join(schema.sql_string(_sql_path(f)) for f in files))
+            for (layout, buses), files in groups.items()])
+
+    def _frame_groups(self, manifest: pl.DataFrame
+                      ) -> dict[tuple[int, tuple[BusTiming, ...]], list[Path]]:
+        """The frames part files by (layout, bus settings), in manifest order."""
         groups: dict[tuple[int, tuple[BusTiming, ...]], list[Path]] = {}
         rows = manifest.select("sha256", "buses", pl.col("layout").fill_null(1)).iter_rows()
         for sha, buses, layout in rows:  # one row per ingested file, not per frame
@@ -294,9 +309,7 @@ class Dataset:
             if files:
                 key = (layout, bus_timings(schema.manifest_buses(buses)))
                 groups.setdefault(key, []).extend(files)
-        return frames_view_sql([
-            (layout, buses, ", ".join(schema.sql_string(_sql_path(f)) for f in files))
-            for (layout, buses), files in groups.items()])
+        return groups
 
     def _analysis_files(self) -> list[Path]:
         folder = self.path / ANALYSES_DIR
