@@ -22,6 +22,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 from tracelab import workflow  # noqa: E402
 from tracelab.store import schema  # noqa: E402
 from tracelab.store.dataset import open_dataset, sha16  # noqa: E402
+from tracelab.store.ingest import _PartWriter  # noqa: E402
 
 BIT_NS = 2_000  # 500 kbit/s
 NODES = ("ecu_a", "ecu_b", "ecu_c", "ecu_d", "ecu_e", "ecu_f")
@@ -45,9 +46,19 @@ def write_catalog(path: Path) -> Path:
     return path
 
 
-def write_dataset(path: Path, frames: int, error_ratio: float, seed: int = 1) -> Path:
+#: Frames per part file when the bench stores them as ingest does (an 8 MiB chunk of text).
+INGEST_CHUNK_FRAMES = 189_000
+
+
+def write_dataset(path: Path, frames: int, error_ratio: float, seed: int = 1,
+                  layout: str = "ingest") -> Path:
     """Frames back to back with some idle; errors mostly on one node's frames (it degrades
-    and goes bus-off now and then), the rest spread over the bus."""
+    and goes bus-off now and then), the rest spread over the bus.
+
+    ``layout``: "ingest" stores the frames as `tracelab ingest` does (parts layout 2: one
+    file per 8 MiB chunk, delta-encoded times, dictionary identifiers, zstd level 1);
+    "plain" as one layout-1 file with polars' default encodings (the bench's data before
+    2026-12-02, kept to compare with the figures measured on it)."""
     t0 = time.perf_counter()
     rng = np.random.default_rng(seed)
     ids = np.array([0x100 + 16 * n + k for n in range(len(NODES)) for k in range(IDS_PER_NODE)],
@@ -84,17 +95,31 @@ def write_dataset(path: Path, frames: int, error_ratio: float, seed: int = 1) ->
     sha = hashlib.sha256(f"bench-faults-{frames}-{seed}".encode()).hexdigest()
     part = path / "parts" / sha16(sha)
     tables = {"frames": frame, "errors": errors}
-    for table in schema.TABLES:
-        (part / table).mkdir(parents=True, exist_ok=True)
-        data = schema.conform(tables[table], table) if table in tables else schema.empty(table)
-        data.write_parquet(part / table / "0.parquet", compression="zstd",
-                           row_group_size=1_000_000)
+    if layout == "ingest":
+        part.mkdir(parents=True)
+        writer = _PartWriter(part, "bench", "bench.frames", ["can0"])
+        stored = frame.drop("start_ns", "end_ns", "duration_ns").with_columns(
+            pl.lit(0, pl.UInt16).alias("data_bits"), pl.lit(0, pl.Int8).alias("bus_code"))
+        for k, start_at in enumerate(range(0, frames, INGEST_CHUNK_FRAMES)):
+            writer.write("frames", stored.slice(start_at, INGEST_CHUNK_FRAMES), k)
+        for table in schema.TABLES:
+            if table != "frames":
+                writer.write(table, tables.get(table, schema.empty(table)).drop(
+                    "run", "file", strict=False), 0)
+    else:
+        for table in schema.TABLES:
+            (part / table).mkdir(parents=True, exist_ok=True)
+            data = schema.conform(tables[table], table) if table in tables else \
+                schema.empty(table)
+            data.write_parquet(part / table / "0.parquet", compression="zstd",
+                               row_group_size=1_000_000)
     manifest = {name: None for name in schema.MANIFEST}
     manifest.update(file="bench.frames", sha256=sha, frames=frames, errors=n_err, run="bench",
                     first_t_ns=int(t[0]), last_t_ns=int(t[-1]), meta="{}",
                     buses='[{"alias": "can0", "nominal_bps": 500000, "data_bps": null, '
                           '"stamp": "end", "name": null}]',
-                    origin="2026-11-30T21:00:00Z")
+                    origin="2026-11-30T21:00:00Z",
+                    layout=schema.PARTS_LAYOUT if layout == "ingest" else None)
     pl.DataFrame([manifest], schema=schema.MANIFEST).write_parquet(path / "manifest.parquet")
     print(f"dataset: {frames:,} frames, {n_err:,} error records, "
           f"{int(t[-1]) / 1e9:.0f} s of bus time, written in {time.perf_counter() - t0:.1f} s")
@@ -106,9 +131,11 @@ def main() -> None:
     parser.add_argument("--frames", type=int, default=2_000_000)
     parser.add_argument("--errors", type=float, default=0.001, help="error records per frame")
     parser.add_argument("--repeat", type=int, default=3, help="best of N runs of each")
+    parser.add_argument("--layout", choices=("ingest", "plain"), default="ingest",
+                        help="store the frames as ingest does, or as one plain layout-1 file")
     args = parser.parse_args()
     with tempfile.TemporaryDirectory() as tmp:
-        ds = write_dataset(Path(tmp) / "ds", args.frames, args.errors)
+        ds = write_dataset(Path(tmp) / "ds", args.frames, args.errors, layout=args.layout)
         cat = write_catalog(Path(tmp) / "catalog.toml")
         con = open_dataset(ds).connect()
         msgs = pl.DataFrame({"id": [0x100 + 16 * n + k for n in range(len(NODES))

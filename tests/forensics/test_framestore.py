@@ -159,8 +159,9 @@ def test_frames_read_from_the_part_files_give_the_replay_of_the_view(
     by pyarrow) gives what the pass over the DuckDB view gives, ESI flags included."""
     import polars as pl
 
-    from tracelab.forensics import evidence, replay_faults
+    from tracelab.forensics import replay_faults
     from tracelab.store import schema
+    from tracelab.store.row_groups import PartFiles
 
     s = synth.generate(6000, fault=fault, culprit="bravo", p=0.3, seed=2, fault_from_slot=500,
                        fd=fd, status_every=0)
@@ -173,13 +174,13 @@ def test_frames_read_from_the_part_files_give_the_replay_of_the_view(
     frames[:half].write_parquet(files[0], row_group_size=700)
     frames[half:].write_parquet(files[1], row_group_size=700)
     reads: list[list[str]] = []
-    real = evidence.stored_row_groups
+    real = PartFiles.row_groups
 
-    def counted(paths: list[Path], columns: list[str]):  # type: ignore[no-untyped-def]
+    def counted(self: PartFiles, columns: list[str]):  # type: ignore[no-untyped-def]
         reads.append(list(columns))
-        return real(paths, columns)
+        return real(self, columns)
 
-    monkeypatch.setattr(evidence, "stored_row_groups", counted)
+    monkeypatch.setattr(PartFiles, "row_groups", counted)
     con = s.connect()
     con.execute("DROP VIEW frames")
     listing = ", ".join(f"'{f}'" for f in files)
@@ -203,3 +204,37 @@ def test_steps_over_a_limit_are_those_numpy_diff_finds(steps: list[int], limit: 
     lim = limit + (0.5 if half else 0.0)
     assert np.array_equal(framestore._steps_over(values, lim),
                           np.flatnonzero(np.diff(values) > lim))
+
+
+@pytest.mark.parametrize("nominal", [500_000, 83_333])  # whole and not whole ns per bit
+def test_counts_per_identifier_from_the_part_files_equal_the_views_sums(
+        tmp_path: Path, nominal: int) -> None:
+    """frames_by_id from the stored id and bits equals DuckDB's count and sum of the view's
+    derived durations per identifier, exactly."""
+    from tracelab.forensics.evidence import frames_by_id
+    from tracelab.store.dataset import open_dataset
+    from tracelab.store.ingest import ingest_logs
+    from tracelab.store.row_groups import PartFiles
+
+    rng = np.random.default_rng(11)
+    lines = ["%tracelab-frames 1", "%origin 2026-11-30T21:04:05Z",
+             f"%bus S nominal={nominal} stamp=end", "%meta run=counted"]
+    t = 0
+    for _ in range(3000):  # varying lengths: the stuffing of random payloads differs too
+        t += int(rng.integers(300_000, 2_000_000))
+        dlc = int(rng.integers(0, 9))
+        data = bytes(rng.integers(0, 256, dlc, dtype=np.uint8)).hex().upper() or "-"
+        lines.append(f"{t}\tS\tframe\t{int(rng.integers(0, 0x800)):03X}\ts\t{dlc}\t{data}")
+    log = tmp_path / "counted.frames"
+    log.write_text("\n".join(lines) + "\n")
+    ingest_logs([log], tmp_path / "ds", quiet=True)
+    ds = open_dataset(tmp_path / "ds")
+    with ds.connect() as con:
+        assert ds.frame_files
+        stored = frames_by_id(con, None, ("counted", "S"), PartFiles(ds.frame_files))
+        viewed = con.sql("SELECT id, count(*) AS frames, sum(duration_ns)::BIGINT AS busy_ns "
+                         "FROM frames GROUP BY id ORDER BY id").pl()
+    assert stored["id"].to_list() == viewed["id"].to_list()
+    assert stored["frames"].to_list() == viewed["frames"].to_list()
+    assert stored["busy_ns"].to_list() == viewed["busy_ns"].to_list()
+    assert not stored["ext"].any() and stored["fd_frames"].sum() == 0

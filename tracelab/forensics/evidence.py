@@ -10,7 +10,7 @@ frames before it (all and per sender), the one vectorised pass the counter walk 
 from __future__ import annotations
 
 import dataclasses
-from collections.abc import Iterable, Iterator, Sequence
+from collections.abc import Iterable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Protocol
@@ -22,8 +22,9 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from tracelab.forensics.framestore import Column, Spill
+from tracelab.physics.bitlength import frame_durations_ns
 from tracelab.store.limits import current_limits
-from tracelab.store.row_groups import stored_row_groups
+from tracelab.store.row_groups import PartFiles
 from tracelab.store.schema import manifest_buses, sql_string
 
 KIND_ERROR = 0
@@ -127,15 +128,22 @@ def _nominal_bps(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run: str,
     spec = catalog.buses.get(bus) if hasattr(catalog.buses, "get") else None
     if spec is not None:
         return int(spec.nominal_bps), "catalog"
+    logged = _logged_bps(con, run, bus)
+    return (logged, "manifest") if logged is not None else (ASSUMED_BPS, "assumed")
+
+
+def _logged_bps(con: duckdb.DuckDBPyConnection, run: str, bus: str) -> int | None:
+    """The nominal bit rate the log's ``%bus`` line declared (manifest ``buses``): the one
+    the frames view derives durations with."""
     for (buses,) in con.execute(
             f"SELECT buses FROM manifest WHERE run = {sql_string(run)}").fetchall():
         try:
             for decl in manifest_buses(buses):
                 if decl.get("alias") == bus and decl.get("nominal_bps"):
-                    return int(decl["nominal_bps"]), "manifest"
+                    return int(decl["nominal_bps"])
         except (ValueError, TypeError, KeyError):
             continue
-    return ASSUMED_BPS, "assumed"
+    return None
 
 
 def single_pair(con: duckdb.DuckDBPyConnection, run: str | None = None
@@ -160,18 +168,35 @@ def single_pair(con: duckdb.DuckDBPyConnection, run: str | None = None
 
 
 def frames_by_id(con: duckdb.DuckDBPyConnection, run: str | None = None,
-                 pair: tuple[str, str] | None = None) -> pl.DataFrame:
-    """One scan: frames, bus time and FD frames per (run, bus, id, ext).
+                 pair: tuple[str, str] | None = None,
+                 parts: PartFiles | None = None) -> pl.DataFrame:
+    """One scan: frames, bus time and FD frames per (run, bus, id, ext), sorted (a hash
+    aggregate's row order is arbitrary, and hypotheses that tie keep this order).
 
     ``pair``: the dataset holds this (run, bus) only; the scan then groups by identifier.
+    ``parts``: the frames view's part files (one scan, see Dataset.frame_files): a log of
+    classic standard frames is then counted from their stored identifiers and bit counts.
     """
+    return _frames_by_id(con, run, pair, parts).sort("run", "bus", "id", "ext")
+
+
+def _frames_by_id(con: duckdb.DuckDBPyConnection, run: str | None = None,
+                 pair: tuple[str, str] | None = None,
+                 parts: PartFiles | None = None) -> pl.DataFrame:
+    """frames_by_id in the scan's order."""
     if pair is not None:
-        # EXISTS, not bool_or: the Parquet row groups' min/max statistics let DuckDB skip
-        # every row group of a log without extended or FD frames (ms instead of a scan)
-        any_ext, fd_frames, total = con.execute(
-            "SELECT EXISTS (SELECT 1 FROM frames WHERE ext), "
-            "EXISTS (SELECT 1 FROM frames WHERE fd), (SELECT count(*) FROM frames)"
-            ).fetchall()[0]
+        flags = (parts.any_true("ext"), parts.any_true("fd")) if parts else (None, None)
+        if None in flags:
+            # EXISTS, not bool_or: the Parquet row groups' min/max statistics let DuckDB
+            # skip every row group of a log without extended or FD frames (no scan)
+            flags = con.execute("SELECT EXISTS (SELECT 1 FROM frames WHERE ext), "
+                                "EXISTS (SELECT 1 FROM frames WHERE fd)").fetchall()[0]
+        any_ext, fd_frames = flags
+        bps = _logged_bps(con, *pair) if parts and not any_ext and not fd_frames else None
+        stored = _stored_by_id(parts, pair, bps) if parts is not None and bps else None
+        if stored is not None:
+            return stored
+        total = con.execute("SELECT count(*) FROM frames").fetchall()[0][0]
         if not any_ext and not fd_frames and total >= SAMPLED_BY_ID_FRAMES:
             # Counts per identifier from a scan of the identifiers alone; the bus time per
             # identifier from a 2 % block sample of durations (frame lengths barely vary
@@ -200,14 +225,49 @@ def frames_by_id(con: duckdb.DuckDBPyConnection, run: str | None = None,
         pl.col("id").cast(pl.UInt32), pl.col("ext").cast(pl.Boolean))
 
 
+#: Identifiers a classic standard frame can carry (11 bits).
+STANDARD_IDS = 1 << 11
+
+
+def _stored_by_id(parts: PartFiles, pair: tuple[str, str], nominal_bps: int
+                  ) -> pl.DataFrame | None:
+    """frames_by_id of a (run, bus) of classic standard frames, exact, from the stored id
+    and bits: a frame's time on the bus is its bits at the nominal rate, as the frames view
+    derives it (physics.frame_durations_ns, the same float64 steps). None past 2**53 ns of
+    bus time per identifier (about 104 days), where float64 sums of whole ns stop being
+    exact."""
+    frames = np.zeros(STANDARD_IDS, dtype=np.int64)
+    busy = np.zeros(STANDARD_IDS, dtype=np.float64)
+    ns_of_bits = frame_durations_ns(np.arange(1 << 16), np.zeros(1 << 16, np.int64),
+                                    nominal_bps, None).astype(np.float64)
+    for table in parts.row_groups(["id", "bits"]):  # a loop over row groups
+        ids = np.asarray(_one_chunk(table.column("id")).to_numpy(zero_copy_only=False))
+        bits = np.asarray(_one_chunk(table.column("bits")).to_numpy(zero_copy_only=False))
+        if ids.size == 0:
+            continue
+        if int(ids.max()) >= STANDARD_IDS:
+            return None  # not a standard identifier after all: the plain query decides
+        frames += np.bincount(ids, minlength=STANDARD_IDS)
+        busy += np.bincount(ids, weights=ns_of_bits[bits], minlength=STANDARD_IDS)
+    if busy.max(initial=0.0) >= 2.0 ** 53:
+        return None
+    seen = np.flatnonzero(frames)
+    return pl.DataFrame({
+        "run": pl.Series([pair[0]] * seen.size, dtype=pl.String),
+        "bus": pl.Series([pair[1]] * seen.size, dtype=pl.String),
+        "id": seen.astype(np.uint32), "ext": np.zeros(seen.size, dtype=bool),
+        "frames": frames[seen], "busy_ns": busy[seen].astype(np.int64),
+        "fd_frames": np.zeros(seen.size, dtype=np.int64)})
+
+
 def load_bus_evidence(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run: str,
                       bus: str, by_id: pl.DataFrame | None = None,
                       only_pair: bool = False,
-                      frame_files: Sequence[Path] | None = None) -> BusEvidence:
+                      parts: PartFiles | None = None) -> BusEvidence:
     """Read frames, errors, status and losses of one (run, bus) into arrays.
 
     ``only_pair``: the views hold this (run, bus) only, so the frame scans need no filter.
-    ``frame_files``: the frames view's part files when it reads them in one scan
+    ``parts``: the frames view's part files when it reads them in one scan
     (``Dataset.frame_files``); with ``only_pair`` the frame pass reads their stored columns
     directly (store/row_groups.py).
     """
@@ -237,7 +297,7 @@ def load_bus_evidence(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run:
             own_sizes[code] += int(count)
             busy[code] += float(ns or 0)
     frames = load_frames(con, scan, codes, len(nodes), any_ext, any_fd, total=n_frames,
-                         own_sizes=own_sizes, files=frame_files if only_pair else None)
+                         own_sizes=own_sizes, parts=parts if only_pair else None)
     frame_t, frame_node, own_t = frames.t, frames.node, frames.own
     total = float(by_id["busy_ns"].sum() or 0.0)
     share = busy / total if total > 0 else np.full(len(nodes), 1.0 / max(1, len(nodes)))
@@ -299,13 +359,13 @@ IN_MEMORY_BYTES_PER_FRAME = 18
 def load_frames(con: duckdb.DuckDBPyConnection, scan: str, codes: pl.DataFrame, n_nodes: int,
                 any_ext: bool, any_fd: bool, total: int | None = None,
                 own_sizes: np.ndarray | None = None,
-                files: Sequence[Path] | None = None) -> Frames:
+                parts: PartFiles | None = None) -> Frames:
     """One streaming pass over the frames (``SELECT ... {scan}``) in record batches of
     ``BATCH_ROWS``: frame times, senders and per-sender times. When ``total`` frames fit the
     memory allowance they fill arrays of that size (each sender's times its stretch of one
     array, ``own_sizes`` frames long); otherwise they go into columns that spill beyond it.
     Frames out of time order (logs with backward time steps) are read again sorted by time,
-    in the view's order at equal times (as a stable sort would). ``files``: the view's part
+    in the view's order at equal times (as a stable sort would). ``parts``: the view's part
     files in its order (one scan, no filter): the in-memory pass reads them directly."""
     cols = "t_ns, id" + (", ext" if any_ext else "") \
         + (", (fd::INT + (fd AND esi)::INT)::TINYINT AS esi" if any_fd else "")
@@ -316,7 +376,7 @@ def load_frames(con: duckdb.DuckDBPyConnection, scan: str, codes: pl.DataFrame, 
                f"SELECT {cols} FROM (SELECT *, row_number() OVER () AS _order {scan}) "
                "ORDER BY t_ns, _order"]
     for n, query in enumerate(queries):
-        source = _stored(files, any_ext, any_fd) if n == 0 and files and fits else \
+        source = _stored(parts, any_ext, any_fd) if n == 0 and parts and fits else \
             con.sql(query).to_arrow_reader(BATCH_ROWS)
         batches = _Batches(source, codes, any_ext, any_fd)
         frames = (_in_memory(batches, n_nodes, int(total or 0), own_sizes)
@@ -329,14 +389,19 @@ def load_frames(con: duckdb.DuckDBPyConnection, scan: str, codes: pl.DataFrame, 
     raise AssertionError("frames sorted by time came out of order")  # pragma: no cover
 
 
-def _stored(files: Sequence[Path], any_ext: bool, any_fd: bool) -> Iterator[pa.RecordBatch]:
+def _one_chunk(column: pa.ChunkedArray) -> pa.Array:
+    """The column as one array (combine_chunks copies even a single chunk)."""
+    return column.chunk(0) if column.num_chunks == 1 else column.combine_chunks()
+
+
+def _stored(parts: PartFiles, any_ext: bool, any_fd: bool) -> Iterator[pa.RecordBatch]:
     """The frame pass's columns (t_ns, id, ext, ESI flag: as load_frames' query selects
     them) from the part files' stored columns, one batch per row group."""
     columns = ["t_ns", "id"] + (["ext"] if any_ext else []) + (["fd", "esi"] if any_fd else [])
-    for table in stored_row_groups(files, columns):  # a loop over row groups
-        arrays = [table.column(c).combine_chunks() for c in columns[:3 if any_ext else 2]]
+    for table in parts.row_groups(columns):  # a loop over row groups
+        arrays = [_one_chunk(table.column(c)) for c in columns[:3 if any_ext else 2]]
         if any_fd:  # fd::INT + (fd AND esi)::INT
-            fd, esi = table.column("fd").combine_chunks(), table.column("esi").combine_chunks()
+            fd, esi = _one_chunk(table.column("fd")), _one_chunk(table.column("esi"))
             arrays.append(pc.add(pc.cast(fd, pa.int8()), pc.cast(pc.and_(fd, esi), pa.int8())))
         yield pa.RecordBatch.from_arrays(arrays, names=[str(i) for i in range(len(arrays))])
 
@@ -512,7 +577,7 @@ class _KeyMap:
         if self.keys.size == 0 or keys.size == 0:
             return np.full(keys.size, -1, dtype=np.int16)
         if self.table is not None and int(keys.max()) < 4096:
-            return self.table[keys]
+            return np.take(self.table, keys)  # faster than indexing with an array
         pos = np.minimum(np.searchsorted(self.keys, keys), self.keys.size - 1)
         found = self.keys[pos] == keys
         return np.where(found, self.codes[pos], np.int16(-1)).astype(np.int16)

@@ -52,6 +52,7 @@ from tracelab.forensics.tables import (
 )
 from tracelab.format.grammar import wall_time
 from tracelab.physics.confinement import DEFAULT_CONFIG, ConfinementConfig
+from tracelab.store.row_groups import PartFiles
 
 #: Below this posterior the verdict says the evidence does not decide.
 MIN_CONFIDENCE = 0.4
@@ -166,12 +167,12 @@ def replay_faults(con: duckdb.DuckDBPyConnection, catalog: CatalogLike, run: str
     states: list[pl.DataFrame] = []
     frames = events = 0
     pair = single_pair(con, run)
-    by_id = frames_by_id(con, run, pair)
+    parts = PartFiles(frame_files) if frame_files else None
+    by_id = frames_by_id(con, run, pair, parts)
     pairs = run_buses(con, run, by_id)
     alone = len(pairs) == 1 and (run is None or pair is not None)
     for r, bus in pairs:  # loop over (run, bus) pairs
-        ev = load_bus_evidence(con, catalog, r, bus, by_id, only_pair=alone,
-                               frame_files=frame_files)
+        ev = load_bus_evidence(con, catalog, r, bus, by_id, only_pair=alone, parts=parts)
         frames += ev.frames
         events += ev.events.height
         bus_gaps = None

@@ -1,10 +1,11 @@
 """Stored columns of part files, row group by row group, decoded ahead on a thread pool.
 
-For a pass over millions of frames that needs only stored columns (the replay's times and
-identifiers), pyarrow's Parquet reader decodes them at about two thirds of the CPU DuckDB's
-scan takes; reading the next row groups on worker threads while the caller works on the
-current one keeps both cores busy. Memory stays bounded: at most ``ahead`` row groups are
-decoded and waiting.
+For a pass over millions of frames that needs only stored columns (the replay's times,
+identifiers and bit counts), pyarrow's Parquet reader decodes them at about two thirds of
+the CPU DuckDB's scan takes; reading the next row groups on worker threads while the caller
+works on the current one keeps both cores busy. Memory stays bounded: at most ``ahead``
+row groups are decoded and waiting. The footers are read once, and their min/max
+statistics answer "does any row have this flag set" without reading a row.
 """
 
 from __future__ import annotations
@@ -22,13 +23,6 @@ from tracelab.errors import StoreError
 from tracelab.store.limits import ENV_THREADS
 
 
-def _metadata(path: Path) -> pq.FileMetaData:
-    try:
-        return pq.read_metadata(path)
-    except (OSError, pa.ArrowException) as error:
-        raise StoreError(f"{path}: cannot read the Parquet footer ({error})") from error
-
-
 def reader_threads() -> int:
     """The batch worker's share of threads (``TRACELAB_THREADS``), else up to two."""
     if threads := os.environ.get(ENV_THREADS):
@@ -36,30 +30,65 @@ def reader_threads() -> int:
     return max(1, min(2, os.cpu_count() or 1))
 
 
-def stored_row_groups(files: Sequence[Path], columns: Sequence[str],
-                      ahead: int | None = None) -> Iterator[pa.Table]:
-    """``columns`` of every row group of ``files``, in file and row order."""
-    metadata = {path: _metadata(path) for path in files}
-    work = [(path, i) for path in files for i in range(metadata[path].num_row_groups)]
-    ahead = ahead or reader_threads()
+class PartFiles:
+    """Part files of one table, in the order their view reads them."""
 
-    def read(path: Path, i: int) -> pa.Table:
-        try:  # a reader per call: a ParquetFile is not shared between threads
-            return pq.ParquetFile(path, metadata=metadata[path]).read_row_group(
-                i, columns=list(columns), use_threads=False)
-        except (OSError, pa.ArrowException) as error:
-            raise StoreError(f"{path}: cannot read row group {i} ({error})") from error
+    def __init__(self, files: Sequence[Path]) -> None:
+        self.files = list(files)
+        self.metadata: dict[Path, pq.FileMetaData] = {}
+        for path in self.files:  # a loop over files (one footer each)
+            try:
+                self.metadata[path] = pq.read_metadata(path)
+            except (OSError, pa.ArrowException) as error:
+                raise StoreError(f"{path}: cannot read the Parquet footer ({error})") from error
 
-    with ThreadPoolExecutor(ahead) as pool:
-        queue: deque[Future[pa.Table]] = deque()
-        todo = iter(work)
-        for path, i in todo:  # fill the pipeline, then one in for one out
-            queue.append(pool.submit(read, path, i))
-            if len(queue) >= ahead:
-                break
-        while queue:
-            table = queue.popleft().result()
-            nxt = next(todo, None)
-            if nxt is not None:
-                queue.append(pool.submit(read, *nxt))
-            yield table
+    @property
+    def rows(self) -> int:
+        return sum(md.num_rows for md in self.metadata.values())
+
+    def any_true(self, column: str) -> bool | None:
+        """Whether any row of a boolean column is true, from the row groups' statistics;
+        None when a row group has none (then the rows must be read to tell)."""
+        found = False
+        for md in self.metadata.values():  # a loop over files and row groups (footers)
+            names = [md.schema.column(j).name for j in range(md.num_columns)]
+            if column not in names:
+                return None
+            j = names.index(column)
+            for i in range(md.num_row_groups):
+                chunk = md.row_group(i).column(j)
+                stats = chunk.statistics
+                if chunk.num_values == 0:
+                    continue
+                if stats is None or not stats.has_min_max:
+                    return None
+                found = found or bool(stats.max)
+        return found
+
+    def row_groups(self, columns: Sequence[str], ahead: int | None = None
+                   ) -> Iterator[pa.Table]:
+        """``columns`` of every row group, in file and row order."""
+        work = [(path, i) for path in self.files
+                for i in range(self.metadata[path].num_row_groups)]
+        ahead = ahead or reader_threads()
+
+        def read(path: Path, i: int) -> pa.Table:
+            try:  # a reader per call: a ParquetFile is not shared between threads
+                return pq.ParquetFile(path, metadata=self.metadata[path]).read_row_group(
+                    i, columns=list(columns), use_threads=False)
+            except (OSError, pa.ArrowException) as error:
+                raise StoreError(f"{path}: cannot read row group {i} ({error})") from error
+
+        with ThreadPoolExecutor(ahead) as pool:
+            queue: deque[Future[pa.Table]] = deque()
+            todo = iter(work)
+            for path, i in todo:  # fill the pipeline, then one in for one out
+                queue.append(pool.submit(read, path, i))
+                if len(queue) >= ahead:
+                    break
+            while queue:
+                table = queue.popleft().result()
+                nxt = next(todo, None)
+                if nxt is not None:
+                    queue.append(pool.submit(read, *nxt))
+                yield table
