@@ -252,6 +252,12 @@ def scenarios() -> list[Scenario]:
                  [{"kind": "rx-noise", "node": "ecu_b", "start": "700ms", "rate": 0.3},
                   {"kind": "tx-noise", "node": "ecu_e", "start": "1700ms", "rate": 0.6}],
                  conditions=("two-faults",), seed=85))
+    # the receive fault's node is error-passive only briefly (7 frames) before the stronger
+    # transmit fault elsewhere (blind held-out seed 2048 ho08: ecu_b named first at 1.00)
+    add(Scenario("two-rx-brief-passive-then-tx", "two-faults",
+                 [{"kind": "rx-noise", "node": "ecu_c", "start": "1030ms", "rate": 0.11},
+                  {"kind": "tx-noise", "node": "ecu_b", "start": "2030ms", "rate": 0.22}],
+                 conditions=("two-faults",), seed=1008, fast=True))
     add(Scenario("two-rx-iso", "two-faults",
                  [{"kind": "rx-noise", "node": "ecu_b", "start": "400ms", "end": "1200ms",
                    "rate": 0.2},

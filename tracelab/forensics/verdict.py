@@ -67,8 +67,11 @@ WINDOW_MIN_ERRORS = 8
 #: Errors in the run that marks a node's transmit-side onset (at least 60 % on its frames).
 SEGMENT_RUN = 30
 #: A window's receive-fault verdict counts only when its node was error-passive over at least
-#: this many frames there (otherwise it predicts nothing the whole-bus reading does not).
+#: this many frames there (otherwise its own frames' errors predict nothing the whole-bus
+#: reading does not), or when the window's other evidence (flag lengths, error types, who
+#: flagged first) already puts it at WINDOW_DECISIVE or above.
 PASSIVE_MIN_FRAMES = 20
+WINDOW_DECISIVE = 0.95
 
 
 #: The assumption a result lists when neither the catalog nor the log names the bit rate.
@@ -593,8 +596,8 @@ def _segment(ev: BusEvidence, cat: CatalogView, config: ConfinementConfig,
             merged = analyse(evidence_window(ev, pending, hi), None, cat, config).hyps[0]
             if merged.kind == "receive-fault":
                 w, start = merged, pending
-        if w.score < MIN_CONFIDENCE or (w.kind == "receive-fault" and
-                                        w.facts.get("passive_frames", 0) < PASSIVE_MIN_FRAMES):
+        if w.score < MIN_CONFIDENCE or (w.kind == "receive-fault" and w.score < WINDOW_DECISIVE
+                                        and w.facts.get("passive_frames", 0) < PASSIVE_MIN_FRAMES):
             # undecided (a receive fault that never went passive here predicts nothing the
             # whole-bus reading does not): the next window starts where this one did
             if not open_start:
