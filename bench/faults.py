@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import argparse
 import hashlib
+import multiprocessing
 import sys
 import tempfile
 import time
@@ -135,7 +136,16 @@ def main() -> None:
                         help="store the frames as ingest does, or as one plain layout-1 file")
     args = parser.parse_args()
     with tempfile.TemporaryDirectory() as tmp:
-        ds = write_dataset(Path(tmp) / "ds", args.frames, args.errors, layout=args.layout)
+        # written by a child process: the gigabytes its frames take and free would otherwise
+        # stay in this process's heap, fragmenting the memory the measured runs allocate in
+        # (a `tracelab faults` command starts in a fresh process)
+        ds = Path(tmp) / "ds"
+        child = multiprocessing.get_context("spawn").Process(
+            target=write_dataset, args=(ds, args.frames, args.errors), kwargs={"layout": args.layout})
+        child.start()
+        child.join()
+        if child.exitcode != 0:
+            raise SystemExit(f"writing the bench dataset failed (exit {child.exitcode})")
         cat = write_catalog(Path(tmp) / "catalog.toml")
         con = open_dataset(ds).connect()
         msgs = pl.DataFrame({"id": [0x100 + 16 * n + k for n in range(len(NODES))

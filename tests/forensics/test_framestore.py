@@ -176,9 +176,9 @@ def test_frames_read_from_the_part_files_give_the_replay_of_the_view(
     reads: list[list[str]] = []
     real = PartFiles.row_groups
 
-    def counted(self: PartFiles, columns: list[str]):  # type: ignore[no-untyped-def]
+    def counted(self: PartFiles, columns: list[str], *args, **kwargs):  # type: ignore[no-untyped-def]
         reads.append(list(columns))
-        return real(self, columns)
+        return real(self, columns, *args, **kwargs)
 
     monkeypatch.setattr(PartFiles, "row_groups", counted)
     con = s.connect()

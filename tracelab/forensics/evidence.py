@@ -10,7 +10,7 @@ frames before it (all and per sender), the one vectorised pass the counter walk 
 from __future__ import annotations
 
 import dataclasses
-from collections.abc import Iterable, Iterator
+from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Protocol
@@ -376,9 +376,13 @@ def load_frames(con: duckdb.DuckDBPyConnection, scan: str, codes: pl.DataFrame, 
                f"SELECT {cols} FROM (SELECT *, row_number() OVER () AS _order {scan}) "
                "ORDER BY t_ns, _order"]
     for n, query in enumerate(queries):
-        source = _stored(parts, any_ext, any_fd) if n == 0 and parts and fits else \
-            con.sql(query).to_arrow_reader(BATCH_ROWS)
-        batches = _Batches(source, codes, any_ext, any_fd)
+        if n == 0 and parts and fits and own_sizes is not None:
+            # the reader threads also map and split each batch (numpy releases the GIL)
+            batches = _Batches(None, codes, any_ext, any_fd, split=n_nodes)
+            batches.reader = _stored(parts, any_ext, any_fd, batches.convert)
+        else:
+            batches = _Batches(con.sql(query).to_arrow_reader(BATCH_ROWS), codes, any_ext,
+                               any_fd)
         frames = (_in_memory(batches, n_nodes, int(total or 0), own_sizes)
                   if fits and own_sizes is not None else _streamed(batches, n_nodes, spill))
         if frames is None and batches.ordered:  # counts that did not match: the plain way
@@ -394,50 +398,71 @@ def _one_chunk(column: pa.ChunkedArray) -> pa.Array:
     return column.chunk(0) if column.num_chunks == 1 else column.combine_chunks()
 
 
-def _stored(parts: PartFiles, any_ext: bool, any_fd: bool) -> Iterator[pa.RecordBatch]:
+def _stored(parts: PartFiles, any_ext: bool, any_fd: bool,
+            convert: Callable[[pa.RecordBatch], _Batch]) -> Iterator[_Batch]:
     """The frame pass's columns (t_ns, id, ext, ESI flag: as load_frames' query selects
-    them) from the part files' stored columns, one batch per row group."""
+    them) from the part files' stored columns, one batch per row group, each converted by
+    ``convert`` on the reader's threads."""
     columns = ["t_ns", "id"] + (["ext"] if any_ext else []) + (["fd", "esi"] if any_fd else [])
-    for table in parts.row_groups(columns):  # a loop over row groups
+
+    def batch_of(table: pa.Table) -> _Batch:
         arrays = [_one_chunk(table.column(c)) for c in columns[:3 if any_ext else 2]]
         if any_fd:  # fd::INT + (fd AND esi)::INT
             fd, esi = _one_chunk(table.column("fd")), _one_chunk(table.column("esi"))
             arrays.append(pc.add(pc.cast(fd, pa.int8()), pc.cast(pc.and_(fd, esi), pa.int8())))
-        yield pa.RecordBatch.from_arrays(arrays, names=[str(i) for i in range(len(arrays))])
+        return convert(pa.RecordBatch.from_arrays(arrays,
+                                                  names=[str(i) for i in range(len(arrays))]))
+
+    yield from parts.row_groups(columns, then=batch_of)
+
+
+#: One batch of the frame pass: times, sender codes, ESI flags (FD logs) and, when it was
+#: split on a reader thread, each sender's times.
+_Batch = tuple[np.ndarray, np.ndarray, np.ndarray | None, list[np.ndarray] | None]
 
 
 class _Batches:
-    """The record batches of one frames query as (t_ns, sender, ESI flag or None) arrays;
-    ``ordered`` turns False (and the iteration stops) at the first frame earlier than the
-    one before it."""
+    """The record batches of one frames query as (t_ns, sender, ESI flag or None, each
+    sender's times or None) arrays; ``ordered`` turns False (and the iteration stops) at the
+    first frame earlier than the one before it. ``split``: nodes to split each batch into
+    where it is converted (a reader thread of the stored path), 0 for none."""
 
-    def __init__(self, reader: Iterable[pa.RecordBatch], codes: pl.DataFrame,
-                 any_ext: bool, any_fd: bool) -> None:
+    def __init__(self, reader: Iterable[pa.RecordBatch] | None, codes: pl.DataFrame,
+                 any_ext: bool, any_fd: bool, split: int = 0) -> None:
         self.reader = reader
         self.mapper = _KeyMap(codes, any_ext)
         self.any_ext, self.any_fd = any_ext, any_fd
+        self.split = split
         self.ordered = True
         self.esi_set = 0
 
-    def __iter__(self) -> Iterator[tuple[np.ndarray, np.ndarray, np.ndarray | None]]:
+    def convert(self, batch: pa.RecordBatch) -> _Batch:
+        """A record batch as arrays (reads nothing shared but the lookup table)."""
+        t = np.asarray(batch.column(0).to_numpy(), dtype=np.int64)
+        ids = batch.column(1).to_numpy()
+        keys = ids.astype(np.int64) * 2 + batch.column(2).to_numpy(zero_copy_only=False) \
+            if self.any_ext else ids
+        flag = None
+        if self.any_fd:
+            flag = np.asarray(batch.column(batch.num_columns - 1).to_numpy(
+                zero_copy_only=False), dtype=np.int8)
+        node = self.mapper(keys)
+        return t, node, flag, _split_by_node(t, node, self.split) if self.split else None
+
+    def __iter__(self) -> Iterator[_Batch]:
         last = None
-        for batch in self.reader:  # a loop over record batches
-            if batch.num_rows == 0:
+        assert self.reader is not None
+        for item in self.reader:  # a loop over record batches
+            t, node, flag, own = item if isinstance(item, tuple) else self.convert(item)
+            if t.size == 0:
                 continue
-            t = np.asarray(batch.column(0).to_numpy(), dtype=np.int64)
             if (last is not None and int(t[0]) < last) or bool(np.any(t[1:] < t[:-1])):
                 self.ordered = False
                 return
             last = int(t[-1])
-            ids = batch.column(1).to_numpy()
-            keys = ids.astype(np.int64) * 2 + batch.column(2).to_numpy(zero_copy_only=False) \
-                if self.any_ext else ids
-            flag = None
-            if self.any_fd:
-                flag = np.asarray(batch.column(batch.num_columns - 1).to_numpy(
-                    zero_copy_only=False), dtype=np.int8)
+            if flag is not None:
                 self.esi_set += int(np.count_nonzero(flag == 2))
-            yield t, self.mapper(keys), flag
+            yield t, node, flag, own
 
 
 def _esi_columns(t: np.ndarray, node: np.ndarray, flag: np.ndarray, n_nodes: int
@@ -462,7 +487,7 @@ def _in_memory(batches: _Batches, n_nodes: int, total: int,
     own_all = np.empty(int(ends[-1]) if ends.size else 0, dtype=np.int64)
     filled = (ends - own_sizes).tolist()
     at = 0
-    for bt, bn, bf in batches:
+    for bt, bn, bf, split in batches:
         if at + bt.size > total:
             return None  # more frames than counted: let the caller read again
         t[at:at + bt.size] = bt
@@ -470,7 +495,9 @@ def _in_memory(batches: _Batches, n_nodes: int, total: int,
         if flags is not None and bf is not None:
             flags[at:at + bt.size] = bf
         at += bt.size
-        for n, k in enumerate(_split_into(bt, bn, n_nodes, own_all, filled, ends)):
+        counts = _split_into(bt, bn, n_nodes, own_all, filled, ends) if split is None else \
+            _place(split, own_all, filled, ends)
+        for n, k in enumerate(counts):
             if k < 0:
                 return None
             filled[n] += k
@@ -489,7 +516,7 @@ def _streamed(batches: _Batches, n_nodes: int, spill: Spill) -> Frames | None:
     own = [Column(np.int64, spill) for _ in range(n_nodes)]
     esi = [(Column(np.int64, spill), Column(np.int64, spill))
            for _ in range(n_nodes + 1 if batches.any_fd else 0)]
-    for t, node, flag in batches:
+    for t, node, flag, _ in batches:
         t_col.append(t)
         node_col.append(node)
         for n, times in enumerate(_split_by_node(t, node, n_nodes)):
@@ -527,6 +554,17 @@ def _split_by_node(frame_t: np.ndarray, frame_node: np.ndarray, n: int,
     bounds = np.searchsorted(frame_node[order], np.arange(-1, n + 1, dtype=np.int16),
                              side="left")
     return [grouped[bounds[i + 1]:bounds[i + 2]] for i in range(n)]
+
+
+def _place(parts: list[np.ndarray], into: np.ndarray, at: list[int], ends: np.ndarray
+           ) -> list[int]:
+    """Each node's times of one batch (already split) copied to into[at[i]:]; per node the
+    number copied, -1 when they would not fit."""
+    if any(at[i] + part.size > ends[i] for i, part in enumerate(parts)):
+        return [-1] * len(parts)
+    for i, part in enumerate(parts):  # a loop over nodes
+        into[at[i]:at[i] + part.size] = part
+    return [int(part.size) for part in parts]
 
 
 def _split_into(frame_t: np.ndarray, frame_node: np.ndarray, n: int, into: np.ndarray,

@@ -12,15 +12,18 @@ from __future__ import annotations
 
 import os
 from collections import deque
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures import Future, ThreadPoolExecutor
 from pathlib import Path
+from typing import Any, TypeVar, overload
 
 import pyarrow as pa
 import pyarrow.parquet as pq
 
 from tracelab.errors import StoreError
 from tracelab.store.limits import ENV_THREADS
+
+T = TypeVar("T")
 
 
 def reader_threads() -> int:
@@ -65,22 +68,33 @@ class PartFiles:
                 found = found or bool(stats.max)
         return found
 
-    def row_groups(self, columns: Sequence[str], ahead: int | None = None
-                   ) -> Iterator[pa.Table]:
-        """``columns`` of every row group, in file and row order."""
+    @overload
+    def row_groups(self, columns: Sequence[str], ahead: int | None = None) -> Iterator[pa.Table]:
+        ...
+
+    @overload
+    def row_groups(self, columns: Sequence[str], ahead: int | None = None, *,
+                   then: Callable[[pa.Table], T]) -> Iterator[T]:
+        ...
+
+    def row_groups(self, columns: Sequence[str], ahead: int | None = None, *,
+                   then: Callable[[pa.Table], Any] | None = None) -> Iterator[Any]:
+        """``columns`` of every row group, in file and row order; with ``then``, what it
+        makes of each, run on the reading thread (the caller's next step, in parallel)."""
         work = [(path, i) for path in self.files
                 for i in range(self.metadata[path].num_row_groups)]
         ahead = ahead or reader_threads()
 
-        def read(path: Path, i: int) -> pa.Table:
+        def read(path: Path, i: int) -> Any:
             try:  # a reader per call: a ParquetFile is not shared between threads
-                return pq.ParquetFile(path, metadata=self.metadata[path]).read_row_group(
+                table = pq.ParquetFile(path, metadata=self.metadata[path]).read_row_group(
                     i, columns=list(columns), use_threads=False)
             except (OSError, pa.ArrowException) as error:
                 raise StoreError(f"{path}: cannot read row group {i} ({error})") from error
+            return table if then is None else then(table)
 
         with ThreadPoolExecutor(ahead) as pool:
-            queue: deque[Future[pa.Table]] = deque()
+            queue: deque[Future[Any]] = deque()
             todo = iter(work)
             for path, i in todo:  # fill the pipeline, then one in for one out
                 queue.append(pool.submit(read, path, i))
