@@ -258,6 +258,12 @@ def scenarios() -> list[Scenario]:
                  [{"kind": "rx-noise", "node": "ecu_c", "start": "1030ms", "rate": 0.11},
                   {"kind": "tx-noise", "node": "ecu_b", "start": "2030ms", "rate": 0.22}],
                  conditions=("two-faults",), seed=1008, fast=True))
+    # a receive fault first, a stronger transmit fault of another node later, and the whole
+    # log read as one receive fault (blind seed 2045 ho08: wrong at 1.00)
+    add(Scenario("two-rx-then-tx-read-as-rx", "two-faults",
+                 [{"kind": "rx-noise", "node": "ecu_e", "start": "250ms", "rate": 0.09},
+                  {"kind": "tx-noise", "node": "ecu_b", "start": "1250ms", "rate": 0.18}],
+                 conditions=("two-faults", "status"), status=True, seed=1008, fast=True))
     add(Scenario("two-rx-iso", "two-faults",
                  [{"kind": "rx-noise", "node": "ecu_b", "start": "400ms", "end": "1200ms",
                    "rate": 0.2},

@@ -66,6 +66,10 @@ ALTERNATIVE_RATIO = 0.2
 WINDOW_MIN_ERRORS = 8
 #: Errors in the run that marks a node's transmit-side onset (at least 60 % on its frames).
 SEGMENT_RUN = 30
+#: The share of that run after a receive-fault winner: its node's flags already put the
+#: errors on the other senders' frames in proportion to their traffic (a busy sender may
+#: carry 60 % by that alone).
+RX_SEGMENT_SHARE = 0.7
 #: A window's receive-fault verdict counts only when its node was error-passive over at least
 #: this many frames there (otherwise its own frames' errors predict nothing the whole-bus
 #: reading does not), or when the window's other evidence (flag lengths, error types, who
@@ -477,7 +481,7 @@ def bus_verdict(ev: BusEvidence, origin: str | None, gaps: pl.DataFrame | None,
                                                    winner.facts.get("fill", "rate"))
     findings = [_finding(ev, winner, None, None)] if not clean else []
     cause_h = winner
-    if not clean and winner.kind in ("bus-disturbance", "transmit-fault") \
+    if not clean and winner.kind in ("bus-disturbance", "transmit-fault", "receive-fault") \
             and not winner.facts.get("far_side"):
         cause_h, winner, findings = _segment(ev, cat, config, hyps, winner, findings, errors)
     findings.sort(key=lambda f: f["from_ns"])
@@ -562,6 +566,8 @@ def _segment(ev: BusEvidence, cat: CatalogView, config: ConfinementConfig,
              errors: pl.DataFrame) -> tuple[Hypothesis, Hypothesis, list[dict[str, Any]]]:
     """Several faults on one bus: cut the log where one node's frames start to carry most of
     the errors, give each window its own verdict, and keep the cause of the first degradation.
+    Runs after a whole-bus, transmit-fault or receive-fault winner (a receive fault first and
+    a stronger transmit fault of another node later read as one receive fault elsewhere).
 
     A later, stronger fault never rewrites who degraded first. A receive fault whose node,
     once error-passive, fails on its own frames is one story (the full-log hypothesis).
@@ -570,8 +576,12 @@ def _segment(ev: BusEvidence, cat: CatalogView, config: ConfinementConfig,
     t_err = errors["t_ns"].to_numpy()
     # a run of 30 errors, 60 % on one node's frames: by chance (a node with a quarter of the
     # bus time under a whole-bus disturbance) about 1e-4 (binomial tail, derived)
-    onsets = sorted({t for n in range(len(ev.nodes))
-                     if (t := _onset(ev, n, run=SEGMENT_RUN, share=0.6)) is not None})
+    # after a receive-fault winner, its own node's frames carrying the errors is its own
+    # story (once error-passive it fails on them): only another node's onset cuts the log
+    own = winner.node if winner.kind == "receive-fault" else None
+    share = 0.6 if own is None else RX_SEGMENT_SHARE
+    onsets = sorted({t for n in range(len(ev.nodes)) if n != own
+                     if (t := _onset(ev, n, run=SEGMENT_RUN, share=share)) is not None})
     cuts: list[int] = []
     for t in onsets:  # loop over a few onset times
         prev = cuts[-1] if cuts else int(t_err[0]) if t_err.size else ev.first_t_ns
