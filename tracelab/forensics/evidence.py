@@ -193,7 +193,7 @@ def _frames_by_id(con: duckdb.DuckDBPyConnection, run: str | None = None,
                                 "EXISTS (SELECT 1 FROM frames WHERE fd)").fetchall()[0]
         any_ext, fd_frames = flags
         bps = _logged_bps(con, *pair) if parts and not any_ext and not fd_frames else None
-        stored = _stored_by_id(parts, pair, bps) if parts is not None and bps else None
+        stored = _stored_by_id(parts, pair, bps) if parts and bps else None
         if stored is not None:
             return stored
         total = con.execute("SELECT count(*) FROM frames").fetchall()[0][0]
@@ -377,9 +377,7 @@ def load_frames(con: duckdb.DuckDBPyConnection, scan: str, codes: pl.DataFrame, 
                "ORDER BY t_ns, _order"]
     for n, query in enumerate(queries):
         if n == 0 and parts and fits and own_sizes is not None:
-            # the reader threads also map and split each batch (numpy releases the GIL)
-            batches = _Batches(None, codes, any_ext, any_fd, split=n_nodes)
-            batches.reader = _stored(parts, any_ext, any_fd, batches.convert)
+            batches = _Batches.stored(parts, codes, any_ext, any_fd, n_nodes)
         else:
             batches = _Batches(con.sql(query).to_arrow_reader(BATCH_ROWS), codes, any_ext,
                                any_fd)
@@ -427,7 +425,7 @@ class _Batches:
     first frame earlier than the one before it. ``split``: nodes to split each batch into
     where it is converted (a reader thread of the stored path), 0 for none."""
 
-    def __init__(self, reader: Iterable[pa.RecordBatch] | None, codes: pl.DataFrame,
+    def __init__(self, reader: Iterable[pa.RecordBatch | _Batch], codes: pl.DataFrame,
                  any_ext: bool, any_fd: bool, split: int = 0) -> None:
         self.reader = reader
         self.mapper = _KeyMap(codes, any_ext)
@@ -435,6 +433,15 @@ class _Batches:
         self.split = split
         self.ordered = True
         self.esi_set = 0
+
+    @classmethod
+    def stored(cls, parts: PartFiles, codes: pl.DataFrame, any_ext: bool, any_fd: bool,
+               n_nodes: int) -> _Batches:
+        """The batches of the part files' stored columns; the reader threads also map and
+        split each one (numpy releases the GIL)."""
+        batches = cls((), codes, any_ext, any_fd, split=n_nodes)
+        batches.reader = _stored(parts, any_ext, any_fd, batches.convert)
+        return batches
 
     def convert(self, batch: pa.RecordBatch) -> _Batch:
         """A record batch as arrays (reads nothing shared but the lookup table)."""
@@ -451,7 +458,6 @@ class _Batches:
 
     def __iter__(self) -> Iterator[_Batch]:
         last = None
-        assert self.reader is not None
         for item in self.reader:  # a loop over record batches
             t, node, flag, own = item if isinstance(item, tuple) else self.convert(item)
             if t.size == 0:
@@ -572,14 +578,7 @@ def _split_into(frame_t: np.ndarray, frame_node: np.ndarray, n: int, into: np.nd
     """_split_by_node written into ``into``: node i's times at at[i] (not past ends[i]);
     per node the number written, -1 when they would not fit."""
     if n > 8:
-        parts = _split_by_node(frame_t, frame_node, n)
-        out = []
-        for i, part in enumerate(parts):  # a loop over nodes
-            if at[i] + part.size > ends[i]:
-                return [-1] * n
-            into[at[i]:at[i] + part.size] = part
-            out.append(int(part.size))
-        return out
+        return _place(_split_by_node(frame_t, frame_node, n), into, at, ends)
     out = []
     for i in range(n):  # a loop over a few nodes
         mask = frame_node == i

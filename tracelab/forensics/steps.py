@@ -143,7 +143,7 @@ def every_change(rows: pl.DataFrame, ev: BusEvidence, node: int,
                        np.maximum(rec0[s] - nr, rec1[s]))
     codes = _state_codes(new_tec, new_rec, config)
     # before the row they lead to: order by time, then the replay's own rows last at a tie
-    t_all = np.concatenate([when, rows["t_ns"].to_numpy()])
+    t_all = np.concatenate([when, t])
     mine = np.concatenate([np.zeros(s.size, np.int8), np.ones(rows.height, np.int8)])
     order = np.lexsort((np.arange(t_all.size), mine, t_all))
     # the numbers merged by numpy and the strings gathered from small tables: a gather of

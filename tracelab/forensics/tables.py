@@ -50,8 +50,9 @@ def counters_frame(ev: BusEvidence, h: Hypothesis,
     parts.sort(key=lambda part: part[0])
     in_order = len({node for node, _ in parts}) == len(parts) and \
         all(part["t_ns"].is_sorted() for _, part in parts)
-    out = pl.concat([part for _, part in parts]).with_columns(pl.lit(ev.run).alias("run"), pl.lit(ev.bus).alias("bus"),
-                                        pl.lit(h.name).alias("hypothesis"))
+    out = pl.concat([part for _, part in parts]).with_columns(
+        pl.lit(ev.run).alias("run"), pl.lit(ev.bus).alias("bus"),
+        pl.lit(h.name).alias("hypothesis"))
     out = out.select(list(COUNTERS_SCHEMA))
     return out if in_order else out.sort(["node", "t_ns"], maintain_order=True)
 

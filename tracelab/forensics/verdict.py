@@ -64,8 +64,9 @@ ALTERNATIVE_RATIO = 0.2
 #: Errors before (after) a node-specific winner's onset that make the earlier (later) window
 #: worth a verdict of its own.
 WINDOW_MIN_ERRORS = 8
-#: Errors in the run that marks a node's transmit-side onset (at least 60 % on its frames).
+#: Errors in the run that marks a node's transmit-side onset, and the share on its frames.
 SEGMENT_RUN = 30
+SEGMENT_SHARE = 0.6
 #: The share of that run after a receive-fault winner: its node's flags already put the
 #: errors on the other senders' frames in proportion to their traffic (a busy sender may
 #: carry 60 % by that alone).
@@ -579,7 +580,7 @@ def _segment(ev: BusEvidence, cat: CatalogView, config: ConfinementConfig,
     # after a receive-fault winner, its own node's frames carrying the errors is its own
     # story (once error-passive it fails on them): only another node's onset cuts the log
     own = winner.node if winner.kind == "receive-fault" else None
-    share = 0.6 if own is None else RX_SEGMENT_SHARE
+    share = SEGMENT_SHARE if own is None else RX_SEGMENT_SHARE
     onsets = sorted({t for n in range(len(ev.nodes)) if n != own
                      if (t := _onset(ev, n, run=SEGMENT_RUN, share=share)) is not None})
     cuts: list[int] = []

@@ -144,9 +144,15 @@ def configure(con: duckdb.DuckDBPyConnection, folder: Path) -> Limits:
     con.execute(f"SET memory_limit = '{limits.duckdb_bytes // KIB}KiB'")
     con.execute("SET temp_directory = $dir", {"dir": str(limits.scratch(Path(folder)))})
     con.execute("SET enable_progress_bar = false")  # it would print into --json output
-    if threads := os.environ.get(ENV_THREADS):
-        con.execute(f"SET threads = {int(threads)}")
+    if threads := worker_threads():
+        con.execute(f"SET threads = {threads}")
     return limits
+
+
+def worker_threads() -> int | None:
+    """The batch worker's share of threads (``TRACELAB_THREADS``), None when not set."""
+    threads = os.environ.get(ENV_THREADS)
+    return int(threads) if threads else None
 
 
 def memory_limit_bytes(con: duckdb.DuckDBPyConnection) -> int:

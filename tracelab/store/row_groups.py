@@ -21,16 +21,14 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from tracelab.errors import StoreError
-from tracelab.store.limits import ENV_THREADS
+from tracelab.store.limits import worker_threads
 
 T = TypeVar("T")
 
 
 def reader_threads() -> int:
     """The batch worker's share of threads (``TRACELAB_THREADS``), else up to two."""
-    if threads := os.environ.get(ENV_THREADS):
-        return max(1, int(threads))
-    return max(1, min(2, os.cpu_count() or 1))
+    return max(1, worker_threads() or min(2, os.cpu_count() or 1))
 
 
 class PartFiles:
@@ -44,10 +42,6 @@ class PartFiles:
                 self.metadata[path] = pq.read_metadata(path)
             except (OSError, pa.ArrowException) as error:
                 raise StoreError(f"{path}: cannot read the Parquet footer ({error})") from error
-
-    @property
-    def rows(self) -> int:
-        return sum(md.num_rows for md in self.metadata.values())
 
     def any_true(self, column: str) -> bool | None:
         """Whether any row of a boolean column is true, from the row groups' statistics;
