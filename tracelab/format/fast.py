@@ -50,12 +50,22 @@ _HEX_VALUE = np.full(256, 255, dtype=np.uint8)
 _HEX_VALUE[np.frombuffer(b"0123456789", dtype=np.uint8)] = np.arange(10)
 _HEX_VALUE[np.frombuffer(b"abcdef", dtype=np.uint8)] = np.arange(10, 16)
 _HEX_VALUE[np.frombuffer(b"ABCDEF", dtype=np.uint8)] = np.arange(10, 16)
+#: The byte of each pair of characters read as one little-endian u16 (first character low),
+#: 256 for a pair that is not two hex digits: one lookup per output byte.
+_HEX_PAIR = (_HEX_VALUE.astype(np.uint16)[None, :] << 4
+             | _HEX_VALUE.astype(np.uint16)[:, None]).ravel()
+_HEX_PAIR[((_HEX_VALUE[None, :] == 255) | (_HEX_VALUE[:, None] == 255)).ravel()] = 256
+_HEX_PAIR.flags.writeable = False
+#: Arrow's binary view keeps values up to this many bytes inside the 16-byte view itself.
+_INLINE = 12
 
 
 def decode_hex(text: pl.Series) -> pl.Series | None:
-    """Hex text -> bytes by a table lookup over the column's whole character buffer (about
-    half the cost of ``str.decode("hex")``). None when any value is not an even number of
-    hex digits: the caller then decodes with polars, which gives null for those."""
+    """Hex text -> bytes by a table lookup over the column's whole character buffer, handed
+    to polars as an Arrow binary view built here (polars' own string -> binary route, and
+    its import of a large-binary array, each cost more than the decode). None when any value
+    is not an even number of hex digits: the caller then decodes with polars, which gives
+    null for those."""
     arr = text.to_arrow(compat_level=pl.CompatLevel.oldest())
     if isinstance(arr, pa.ChunkedArray):
         arr = arr.combine_chunks()
@@ -66,16 +76,59 @@ def decode_hex(text: pl.Series) -> pl.Series | None:
     offsets = raw_offsets - raw_offsets[0]
     if (offsets & 1).any():  # every length even <=> every offset even
         return None
-    data = (np.frombuffer(data_buf, dtype=np.uint8)[raw_offsets[0]: raw_offsets[-1]]
-            if data_buf is not None else np.zeros(0, dtype=np.uint8))
-    values = np.take(_HEX_VALUE, data)
-    if values.size and values.max() == 255:
+    n_out = int(offsets[-1]) // 2
+    if n_out >= 2**31:  # beyond a view's i32 offsets (a chunk is 8 MiB)
         return None
-    out = (values[0::2] << 4) | values[1::2]
-    decoded = pa.LargeBinaryArray.from_buffers(
-        pa.large_binary(), len(arr), [validity, pa.py_buffer(offsets >> 1), pa.py_buffer(out)])
-    return pl.Series(text.name, decoded)
+    pairs = (np.frombuffer(data_buf, dtype="<u2", count=n_out, offset=int(raw_offsets[0]))
+             if n_out else np.zeros(0, dtype=np.uint16))
+    decoded = np.take(_HEX_PAIR, pairs)
+    if decoded.size and decoded.max() == 256:
+        return None
+    out = decoded.astype(np.uint8)
+    views = _binary_views(out, offsets >> 1)
+    buffers = [validity, pa.py_buffer(views)]
+    if views.size and (np.diff(offsets) > 2 * _INLINE).any():
+        buffers.append(pa.py_buffer(out))
+    return pl.Series(text.name, pa.Array.from_buffers(pa.binary_view(), len(arr), buffers))
 
+
+def _binary_views(out: np.ndarray, offsets: np.ndarray) -> np.ndarray:
+    """Arrow binary views (n x 16 bytes) of the values ``out[offsets[i]:offsets[i+1]]``: the
+    length (i32), then the value itself when it fits 12 bytes, else its first 4 bytes, buffer
+    0 and its offset in ``out`` (the Arrow columnar format, variable-size binary view layout)."""
+    n = len(offsets) - 1
+    lengths = np.diff(offsets).astype("<i4")
+    views = np.zeros((n, 16), dtype=np.uint8)
+    views[:, :4] = lengths.view(np.uint8).reshape(n, 4)
+    if not out.size:
+        return views
+    present = lengths > 0
+    width = int(lengths.max())
+    if int(lengths[present].min()) == width:  # one length (and empty values): a reshape
+        rows = out.reshape(-1, width)
+        if width == 8:  # classic frames: each view is two u64 words, length | bytes 0-3, 4-7
+            words = np.zeros(n, dtype="<u8")
+            words[present] = out.view("<u8")
+            pair = views.view("<u8")
+            pair[:, 0] = lengths.astype("<u8") | (words << np.uint64(32))
+            pair[:, 1] = words >> np.uint64(32)
+            return views
+        present_rows = np.flatnonzero(present)
+        if width <= _INLINE:
+            views[present_rows, 4:4 + width] = rows
+            return views
+        views[present_rows, 4:8] = rows[:, :4]
+    else:  # mixed lengths: each byte to its row's view
+        row = np.repeat(np.arange(n), lengths)
+        at = np.arange(out.size) - offsets[row]
+        inline = lengths[row] <= _INLINE
+        views.reshape(-1)[row[inline] * 16 + 4 + at[inline]] = out[inline]
+        long_rows = lengths > _INLINE
+        for k in range(4):  # the prefix of each long value
+            views[long_rows, 4 + k] = out[offsets[:-1][long_rows] + k]
+    long_rows = lengths > _INLINE
+    views[long_rows, 12:16] = offsets[:-1][long_rows].astype("<i4").view(np.uint8).reshape(-1, 4)
+    return views
 
 
 def _plain_record_ok(f: list[pl.Expr]) -> pl.Expr:
